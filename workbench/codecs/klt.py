@@ -1,0 +1,172 @@
+"""Block KLT codec: patches -> KLT coefficients -> deadzone quantiser -> adaptive range coder.
+
+Per image payload (little-endian)::
+
+    step f32 | kept u16 | inline u8 | plane means i16 x planes
+    [inline basis: precision u8 x kept | u32 length | vector stream]
+    coefficient stream (see :mod:`workbench.coefcode`)
+
+``kept`` is the number of leading components that carry any non-zero coefficient in this
+image (at most the requested count): trailing all-zero components cost neither basis
+vectors nor symbols. With an inline basis the vectors are quantised to a precision that
+follows each component's spread relative to the step (:func:`workbench.klt.quantise_vectors`).
+"""
+
+from __future__ import annotations
+
+import struct
+from dataclasses import dataclass
+
+import numpy as np
+
+from .. import coefcode, klt, tiling
+from ..basisfile import basis_from_bytes, basis_to_bytes
+from ..errors import BundleError
+
+_HEAD = struct.Struct("<fHB")
+MAX_STEP = 1e5
+
+
+@dataclass
+class Analysis:
+    """An image prepared for quantisation at any step (the expensive part done once)."""
+
+    patches: list[np.ndarray]
+    means: list[int]
+    shapes: list[tuple[int, int]]
+    basis: klt.Basis
+    inline: bool
+    settings: object
+
+
+@dataclass
+class Coded:
+    """One image quantised at one step."""
+
+    step: float
+    q: list[np.ndarray]
+    kept: int
+    ints: np.ndarray | None
+    bits: np.ndarray | None
+    planes: list[np.ndarray]
+    analysis: Analysis
+
+
+def synthesise(q, synthesis, step, means, shapes, block):
+    """Planes from quantised coefficients: ``mean + (q * step) @ S`` per patch, untiled."""
+    out = []
+    for qp, m, shape in zip(q, means, shapes):
+        kept = qp.shape[2]
+        patches = (qp.astype(np.float64) * step) @ synthesis[:kept] + m
+        out.append(tiling.from_patches(patches, shape, block))
+    return out
+
+
+def deadzone_quantise(c: np.ndarray, step: float, offset: float) -> np.ndarray:
+    """``sign(c) * floor(|c| / step + offset)``; offset 0.5 is rounding."""
+    return (np.sign(c) * np.floor(np.abs(c) / step + offset)).astype(np.int64)
+
+
+class KLTCodec:
+    name = "klt"
+
+    # ------------------------------------------------------------- shared side
+    def prepare_shared(self, plane_sets, settings):
+        """Folder scope: one basis for all images, returned with its stored bytes (the basis
+        is rebuilt from those bytes so the encoder uses what the decoder will). Image scope
+        (``plane_sets`` is None): nothing shared."""
+        if plane_sets is None:
+            return None, None
+        patches = (tiling.to_patches(p, settings.block) for planes in plane_sets for p in planes)
+        data = basis_to_bytes(klt.fit_basis(patches, settings.block), settings.kept)
+        return basis_from_bytes(data), data
+
+    def shared_from_bytes(self, data: bytes) -> klt.Basis:
+        return basis_from_bytes(data)
+
+    # ---------------------------------------------------------------- encoding
+    def analyse(self, planes, settings, shared=None) -> Analysis:
+        patches, means = [], []
+        for p in planes:
+            m = int(np.clip(np.round(p.mean()), -32768, 32767))
+            patches.append(tiling.to_patches(p, settings.block) - m)
+            means.append(m)
+        if shared is None:
+            basis = klt.fit_basis(patches, settings.block)
+        else:
+            if shared.block != settings.block:
+                raise BundleError(f"basis is for block {shared.block}, settings ask for block {settings.block}")
+            basis = shared
+        return Analysis(patches, means, [p.shape for p in planes], basis, shared is None, settings)
+
+    def quantise(self, a: Analysis, step: float) -> Coded:
+        """Quantise at ``step`` and reconstruct exactly as the decoder will."""
+        step = float(np.float32(step))
+        k = a.settings.kept
+        if a.inline:
+            ints, bits = klt.quantise_vectors(a.basis, k, step)
+            synthesis = klt.dequantise_vectors(ints, bits)
+            analysis_m = np.linalg.pinv(synthesis)
+        else:
+            ints = bits = None
+            synthesis = a.basis.vectors[:, :k].T
+            analysis_m = synthesis.T
+        q = [deadzone_quantise(p @ analysis_m, step, a.settings.deadzone) for p in a.patches]
+        nz = [np.flatnonzero(np.any(qp != 0, axis=(0, 1))) for qp in q]
+        kept = max([int(i[-1]) + 1 for i in nz if i.size] or [1])
+        q = [qp[:, :, :kept] for qp in q]
+        planes = synthesise(q, synthesis, step, a.means, a.shapes, a.settings.block)
+        if a.inline:
+            ints, bits = ints[:kept], bits[:kept]
+        return Coded(step, q, kept, ints, bits, planes, a)
+
+    def serialise(self, c: Coded) -> bytes:
+        a = c.analysis
+        parts = [_HEAD.pack(c.step, c.kept, int(a.inline)), struct.pack(f"<{len(a.means)}h", *a.means)]
+        if a.inline:
+            vec = coefcode.encode_grids([c.ints.reshape(1, c.kept, -1)], [2])
+            parts += [c.bits.astype(np.uint8).tobytes(), struct.pack("<I", len(vec)), vec]
+        kinds = [0] + [1] * (len(c.q) - 1)
+        parts.append(coefcode.encode_grids(c.q, kinds))
+        return b"".join(parts)
+
+    # ---------------------------------------------------------------- decoding
+    def decode(self, payload: bytes, shapes, settings, shared=None) -> list[np.ndarray]:
+        """Planes of one image from its payload; ``shapes`` come from the bundle metadata."""
+        n_planes = len(shapes)
+        block, n = settings.block, settings.block**2
+        pos = _HEAD.size + 2 * n_planes
+        if len(payload) < pos:
+            raise BundleError("image payload is truncated")
+        step, kept, inline = _HEAD.unpack_from(payload, 0)
+        means = struct.unpack_from(f"<{n_planes}h", payload, _HEAD.size)
+        if not (np.isfinite(step) and 0 < step <= MAX_STEP):
+            raise BundleError(f"image payload has an invalid step {step!r}")
+        if not 1 <= kept <= settings.kept or inline not in (0, 1):
+            raise BundleError(f"image payload claims {kept} components (settings allow {settings.kept})")
+        if inline:
+            if len(payload) < pos + kept + 4:
+                raise BundleError("image payload is truncated in its basis")
+            bits = np.frombuffer(payload, np.uint8, kept, pos).copy()
+            if bits.max() > 12:
+                raise BundleError("image payload has an invalid basis precision")
+            (vlen,) = struct.unpack_from("<I", payload, pos + kept)
+            pos += kept + 4
+            if pos + vlen > len(payload):
+                raise BundleError("image payload is truncated in its basis")
+            ints = coefcode.decode_grids(payload[pos : pos + vlen], [(1, kept, n)], [2])[0].reshape(kept, n)
+            pos += vlen
+            synthesis = klt.dequantise_vectors(ints, bits)
+        else:
+            if shared is None:
+                raise BundleError("image needs a shared basis that the bundle does not provide")
+            if shared.block != block:
+                raise BundleError(f"basis is for block {shared.block}, bundle uses block {block}")
+            synthesis = shared.vectors[:, :kept].T
+        grid = [tiling.grid_shape(s, block) + (kept,) for s in shapes]
+        kinds = [0] + [1] * (n_planes - 1)
+        q = coefcode.decode_grids(payload[pos:], grid, kinds)
+        return synthesise(q, synthesis, float(step), means, shapes, block)
+
+
+CODEC = KLTCodec()

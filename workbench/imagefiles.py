@@ -1,0 +1,332 @@
+"""Reading source images and writing decoded ones.
+
+Accepted: 8- and 16-bit grey, RGB and RGBA (and grey + alpha). Palette, 1-bit, CMYK and
+other colour modes are converted to RGB(A) or grey by Pillow; EXIF orientation is applied.
+Alpha is carried losslessly. Pillow's decompression-bomb guard stays on. 16-bit colour PNGs
+(which Pillow cannot hold) are read and written by the small PNG codec below (ISO/IEC 15948).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import struct
+import tempfile
+import warnings
+import zlib
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+from PIL import Image, ImageOps, UnidentifiedImageError
+
+from .errors import InputError
+
+IMAGE_SUFFIXES = {".png", ".jpg", ".jpeg", ".tif", ".tiff", ".bmp", ".webp", ".gif", ".ppm", ".pgm", ".pnm"}
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
+
+
+@dataclass
+class SourceImage:
+    """One image ready for coding.
+
+    Attributes
+    ----------
+    name : str
+        Name inside the bundle (the file name for files).
+    pixels : ndarray
+        (H, W) grey or (H, W, 3) RGB, dtype uint8 or uint16.
+    alpha : ndarray or None
+        (H, W) alpha plane of the same dtype, carried losslessly.
+    """
+
+    name: str
+    pixels: np.ndarray
+    alpha: np.ndarray | None = None
+
+    def __post_init__(self):
+        self.pixels, self.alpha = check_pixels(self.pixels, self.alpha, self.name)
+
+    @property
+    def bits(self) -> int:
+        return 16 if self.pixels.dtype == np.uint16 else 8
+
+    @property
+    def peak(self) -> int:
+        return 65535 if self.bits == 16 else 255
+
+    @property
+    def height(self) -> int:
+        return self.pixels.shape[0]
+
+    @property
+    def width(self) -> int:
+        return self.pixels.shape[1]
+
+    @property
+    def channels(self) -> int:
+        return 1 if self.pixels.ndim == 2 else 3
+
+    def checksum(self) -> str:
+        """SHA-256 of the pixels (and alpha), independent of the file format."""
+        h = hashlib.sha256(f"{self.pixels.shape}{self.pixels.dtype.str}".encode())
+        h.update(np.ascontiguousarray(self.pixels).tobytes())
+        if self.alpha is not None:
+            h.update(np.ascontiguousarray(self.alpha).tobytes())
+        return h.hexdigest()
+
+    def full(self) -> np.ndarray:
+        """Pixels with alpha appended as a last channel, as written to disk."""
+        if self.alpha is None:
+            return self.pixels
+        base = self.pixels if self.pixels.ndim == 3 else self.pixels[..., None]
+        return np.concatenate([base, self.alpha[..., None]], axis=-1)
+
+
+MAX_SIDE = 1 << 16
+
+
+def check_pixels(pixels, alpha=None, name="image"):
+    """Validate and normalise an array to (H, W) or (H, W, 3) uint8/uint16 plus alpha."""
+    a = np.asarray(pixels)
+    if a.dtype == bool:
+        a = a.astype(np.uint8) * 255
+    if a.dtype not in (np.uint8, np.uint16):
+        raise InputError(f"{name}: pixels must be uint8 or uint16, got dtype {a.dtype}")
+    if a.ndim == 3 and a.shape[2] in (2, 4) and alpha is None:
+        a, alpha = a[..., :-1], a[..., -1]
+        if a.shape[2] == 1:
+            a = a[..., 0]
+    if a.ndim == 3 and a.shape[2] == 1:
+        a = a[..., 0]
+    if not (a.ndim == 2 or (a.ndim == 3 and a.shape[2] == 3)):
+        raise InputError(f"{name}: expected (H, W), (H, W, 3) or (H, W, 4) pixels, got shape {a.shape}")
+    if min(a.shape[:2]) < 1 or max(a.shape[:2]) > MAX_SIDE:
+        raise InputError(f"{name}: image sides must be 1..{MAX_SIDE}, got {a.shape[1]}x{a.shape[0]}")
+    if alpha is not None:
+        alpha = np.asarray(alpha)
+        if alpha.shape != a.shape[:2] or alpha.dtype != a.dtype:
+            raise InputError(f"{name}: alpha must be {a.shape[:2]} {a.dtype}, got {alpha.shape} {alpha.dtype}")
+        alpha = np.ascontiguousarray(alpha)
+    return np.ascontiguousarray(a), alpha
+
+
+def _from_pillow(im: Image.Image, name: str) -> SourceImage:
+    im = ImageOps.exif_transpose(im)
+    mode = im.mode
+    if mode in ("I;16", "I;16L", "I;16B", "I;16N"):
+        return SourceImage(name, np.asarray(im).astype(np.uint16))
+    if mode == "I":
+        a = np.asarray(im)
+        if a.min() < 0 or a.max() > 65535:
+            raise InputError(f"{name}: 32-bit integer pixels outside 0..65535 are not supported")
+        return SourceImage(name, a.astype(np.uint16))
+    if mode == "F":
+        raise InputError(f"{name}: floating-point images are not supported (save as 16-bit integer)")
+    if mode in ("1", "L"):
+        return SourceImage(name, np.asarray(im.convert("L")))
+    if mode == "LA":
+        a = np.asarray(im)
+        return SourceImage(name, a[..., 0].copy(), a[..., 1].copy())
+    has_alpha = mode in ("RGBA", "PA", "La") or (mode == "P" and "transparency" in im.info)
+    if has_alpha:
+        a = np.asarray(im.convert("RGBA"))
+        return SourceImage(name, a[..., :3].copy(), a[..., 3].copy())
+    return SourceImage(name, np.asarray(im.convert("RGB")))
+
+
+def read_image(path: str | os.PathLike, name: str | None = None) -> SourceImage:
+    """Read one image file.
+
+    Raises
+    ------
+    InputError
+        For a missing, unreadable, oversized or unsupported file, naming it.
+    """
+    path = Path(path)
+    name = name or path.name
+    try:
+        with open(path, "rb") as f:
+            head = f.read(32)
+        if head.startswith(PNG_SIGNATURE) and _png_is_16bit_colour(path):
+            return _read_png16(path, name)
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", Image.DecompressionBombWarning)
+            with Image.open(path) as im:
+                im.load()
+                return _from_pillow(im, name)
+    except InputError:
+        raise
+    except (Image.DecompressionBombError, Image.DecompressionBombWarning) as exc:
+        raise InputError(f"{name}: refused as a possible decompression bomb ({exc})") from None
+    except FileNotFoundError:
+        raise InputError(f"{name}: no such file") from None
+    except (UnidentifiedImageError, OSError, SyntaxError, ValueError, struct.error, zlib.error) as exc:
+        raise InputError(f"{name}: not a readable image ({exc.__class__.__name__}: {exc})") from None
+
+
+def list_inputs(inputs) -> list[Path]:
+    """Expand files and folders (non-recursive, sorted) into image file paths."""
+    out: list[Path] = []
+    for item in inputs:
+        p = Path(item)
+        if p.is_dir():
+            out.extend(sorted(q for q in p.iterdir() if q.is_file() and q.suffix.lower() in IMAGE_SUFFIXES))
+        elif p.exists():
+            out.append(p)
+        else:
+            raise InputError(f"{p}: no such file or folder")
+    return out
+
+
+def read_many(inputs) -> tuple[list[SourceImage], list[tuple[str, str]]]:
+    """Read files and folders; unreadable files are skipped and reported.
+
+    Returns
+    -------
+    images : list of SourceImage
+    skipped : list of (name, reason)
+    """
+    images, skipped, seen = [], [], set()
+    for path in list_inputs(inputs):
+        name = path.name
+        if name in seen:
+            name = f"{path.parent.name}/{path.name}"
+        try:
+            images.append(read_image(path, name))
+            seen.add(name)
+        except InputError as exc:
+            skipped.append((name, str(exc)))
+    return images, skipped
+
+
+# ---------------------------------------------------------------- atomic writes
+
+
+def write_atomic(path: str | os.PathLike, data: bytes, *, protect: set[Path] | None = None) -> None:
+    """Write ``data`` to ``path`` through a temporary file and a rename.
+
+    Parameters
+    ----------
+    protect : set of Path, optional
+        Files that must never be replaced (the sources being compressed).
+    """
+    path = Path(path)
+    if protect and path.resolve() in {p.resolve() for p in protect}:
+        raise InputError(f"{path}: refusing to overwrite a source image")
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except FileNotFoundError:
+            pass
+        raise
+
+
+def encode_png(pixels: np.ndarray) -> bytes:
+    """PNG bytes of (H, W[, C]) uint8/uint16 pixels, C in 1..4 (grey, grey+alpha, RGB, RGBA)."""
+    a = np.asarray(pixels)
+    if a.ndim == 2:
+        a = a[..., None]
+    if a.dtype == np.uint8 and a.shape[2] != 2:
+        import io
+
+        buf = io.BytesIO()
+        Image.fromarray(a[..., 0] if a.shape[2] == 1 else a).save(buf, format="PNG")
+        return buf.getvalue()
+    h, w, c = a.shape
+    colour_type = {1: 0, 2: 4, 3: 2, 4: 6}[c]
+    depth = 16 if a.dtype == np.uint16 else 8
+    raw = a.astype(">u2" if depth == 16 else "u1").reshape(h, -1).view(np.uint8)
+    rows = np.concatenate([np.zeros((h, 1), np.uint8), raw], axis=1)  # filter type 0 per row
+
+    def chunk(tag: bytes, body: bytes) -> bytes:
+        return struct.pack(">I", len(body)) + tag + body + struct.pack(">I", zlib.crc32(tag + body))
+
+    ihdr = struct.pack(">IIBBBBB", w, h, depth, colour_type, 0, 0, 0)
+    return PNG_SIGNATURE + chunk(b"IHDR", ihdr) + chunk(b"IDAT", zlib.compress(rows.tobytes(), 6)) + chunk(b"IEND", b"")
+
+
+def _png_chunks(data: bytes):
+    pos = 8
+    while pos + 8 <= len(data):
+        (length,) = struct.unpack(">I", data[pos : pos + 4])
+        tag = data[pos + 4 : pos + 8]
+        body = data[pos + 8 : pos + 8 + length]
+        if len(body) != length:
+            raise InputError("truncated PNG chunk")
+        yield tag, body
+        pos += 12 + length
+
+
+def _png_is_16bit_colour(path: Path) -> bool:
+    with open(path, "rb") as f:
+        head = f.read(33)
+    if len(head) < 33 or head[12:16] != b"IHDR":
+        return False
+    depth, colour_type = head[24], head[25]
+    return depth == 16 and colour_type in (2, 4, 6)
+
+
+def _read_png16(path: Path, name: str) -> SourceImage:
+    data = path.read_bytes()
+    ihdr, idat = None, []
+    for tag, body in _png_chunks(data):
+        if tag == b"IHDR":
+            ihdr = struct.unpack(">IIBBBBB", body[:13])
+        elif tag == b"IDAT":
+            idat.append(body)
+    if ihdr is None:
+        raise InputError(f"{name}: PNG without IHDR")
+    w, h, depth, colour_type, _, _, interlace = ihdr
+    if interlace:
+        raise InputError(f"{name}: interlaced 16-bit colour PNG is not supported")
+    if w * h > 2 * Image.MAX_IMAGE_PIXELS:
+        raise InputError(f"{name}: refused as a possible decompression bomb ({w}x{h})")
+    c = {2: 3, 4: 2, 6: 4}[colour_type]
+    bpp = 2 * c
+    stride = w * bpp
+    raw = np.frombuffer(zlib.decompress(b"".join(idat)), np.uint8)
+    if raw.size != h * (stride + 1):
+        raise InputError(f"{name}: PNG image data has the wrong size")
+    rows = raw.reshape(h, stride + 1)
+    out = np.zeros((h, stride), np.uint8)
+    prev = np.zeros(stride, np.int32)
+    for y in range(h):
+        ftype, line = rows[y, 0], rows[y, 1:].astype(np.int32)
+        if ftype == 1:
+            line = np.cumsum(line.reshape(w, bpp), axis=0).reshape(-1) & 255
+        elif ftype == 2:
+            line = (line + prev) & 255
+        elif ftype in (3, 4):
+            line = _unfilter_slow(line, prev, bpp, ftype)
+        elif ftype != 0:
+            raise InputError(f"{name}: bad PNG filter type {ftype}")
+        out[y] = line
+        prev = line.astype(np.int32)
+    a = out.view(">u2").reshape(h, w, c).astype(np.uint16)
+    return SourceImage(name, a)
+
+
+def _unfilter_slow(line, prev, bpp, ftype):
+    # Average and Paeth depend on the pixel just decoded, so they run sample by sample.
+    out = line.copy()
+    for i in range(len(out)):
+        left = out[i - bpp] if i >= bpp else 0
+        up = prev[i]
+        if ftype == 3:
+            out[i] = (out[i] + ((left + up) >> 1)) & 255
+        else:
+            ul = prev[i - bpp] if i >= bpp else 0
+            p = left + up - ul
+            pa, pb, pc = abs(p - left), abs(p - up), abs(p - ul)
+            pred = left if (pa <= pb and pa <= pc) else (up if pb <= pc else ul)
+            out[i] = (out[i] + pred) & 255
+    return out

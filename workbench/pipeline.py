@@ -1,0 +1,265 @@
+"""From images to a bundle and back: colour planes, codec, rate control, alpha, metrics.
+
+This is the one place the CLI, the Python API, the GUI and the quality sheet call to
+encode and decode, so the numbers they show are the same numbers.
+"""
+
+from __future__ import annotations
+
+import zlib
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import __version__, bundle, codecs, color, container, metrics
+from .errors import BundleError, InputError
+from .imagefiles import SourceImage
+from .jobs import Progress, run
+from .settings import Settings
+
+STEP_RANGE = (0.05, 1024.0)
+SEARCH_ITERATIONS = 14
+
+
+# ------------------------------------------------------------------ planes
+
+
+def plane_shapes(height: int, width: int, channels: int, chroma: str) -> list[tuple[int, int]]:
+    if channels == 1:
+        return [(height, width)]
+    c = ((height + 1) // 2, (width + 1) // 2) if chroma == "420" else (height, width)
+    return [(height, width), c, c]
+
+
+def image_planes(img: SourceImage, chroma: str) -> list[np.ndarray]:
+    return color.to_planes(img.pixels, chroma, 255.0 / img.peak)
+
+
+def planes_to_pixels(planes, shape, chroma, bits) -> np.ndarray:
+    peak = 65535 if bits == 16 else 255
+    x = color.from_planes(planes, shape, chroma) * (peak / 255.0)
+    return np.clip(np.round(x), 0, peak).astype(np.uint16 if bits == 16 else np.uint8)
+
+
+def encode_alpha(alpha: np.ndarray) -> bytes:
+    """Lossless alpha: horizontal differences (mod 2^bits), deflated."""
+    d = np.diff(alpha, axis=1, prepend=alpha.dtype.type(0))
+    return zlib.compress(d.astype(alpha.dtype.newbyteorder("<")).tobytes(), 9)
+
+
+def decode_alpha(data: bytes, height: int, width: int, bits: int) -> np.ndarray:
+    dtype = np.dtype("<u2" if bits == 16 else "u1")
+    need = height * width * dtype.itemsize
+    try:
+        d = zlib.decompressobj()
+        raw = d.decompress(data, need + 1)
+    except zlib.error as exc:
+        raise BundleError(f"alpha chunk is unreadable ({exc})") from None
+    if len(raw) != need:
+        raise BundleError("alpha chunk has the wrong size")
+    a = np.frombuffer(raw, dtype).reshape(height, width)
+    return np.cumsum(a, axis=1, dtype=dtype).astype(np.uint16 if bits == 16 else np.uint8)
+
+
+# ------------------------------------------------------------------ results
+
+
+@dataclass
+class ImageResult:
+    """What one image became: the numbers of the saved bundle and the decoded pixels."""
+
+    name: str
+    width: int
+    height: int
+    bits: int
+    channels: int
+    payload_bytes: int
+    step: float
+    kept: int
+    psnr: float
+    ssim: float
+    reconstruction: np.ndarray
+    bytes: float = 0.0
+    bpp: float = 0.0
+    target_met: bool | None = None
+
+    @property
+    def pixels(self) -> int:
+        return self.width * self.height
+
+    @property
+    def ratio(self) -> float:
+        raw = self.pixels * (self.channels + (1 if self.reconstruction.ndim == 3 and self.reconstruction.shape[2] in (2, 4) else 0)) * self.bits / 8
+        return raw / self.bytes if self.bytes else float("inf")
+
+    def summary(self) -> dict:
+        return {"name": self.name, "width": self.width, "height": self.height, "bytes": round(self.bytes, 1),
+                "bpp": self.bpp, "psnr": self.psnr, "ssim": self.ssim, "step": self.step,
+                "components": self.kept, "target_met": self.target_met}
+
+
+@dataclass
+class EncodeResult:
+    data: bytes
+    settings: Settings
+    images: list[ImageResult] = field(default_factory=list)
+
+    @property
+    def size(self) -> int:
+        return len(self.data)
+
+
+# ------------------------------------------------------------------ rate control
+
+
+def _measure(kind: str, img: SourceImage, coded_planes, chroma: str) -> float:
+    rec = planes_to_pixels(coded_planes, img.pixels.shape[:2], chroma, img.bits)
+    if kind == "psnr":
+        return metrics.psnr(img.pixels, rec, data_range=img.peak)
+    return metrics.ssim(img.pixels, rec, data_range=img.peak)
+
+
+def search_step(evaluate, kind: str, target: float, lo: float = STEP_RANGE[0], hi: float = STEP_RANGE[1]):
+    """Largest step whose quality stays at or above ``target`` (psnr, ssim) or whose rate stays
+    at or below it (bpp), by bisection on log(step); quality and rate fall as the step grows.
+
+    Returns
+    -------
+    step : float
+    met : bool
+        False when even the finest step misses the target (the finest step is returned).
+    """
+    ok = (lambda v: v <= target) if kind == "bpp" else (lambda v: v >= target)
+    if ok(evaluate(hi)):
+        return hi, True
+    if not ok(evaluate(lo)):
+        return lo, False
+    a, b = np.log(lo), np.log(hi)
+    for _ in range(SEARCH_ITERATIONS):
+        mid = 0.5 * (a + b)
+        if ok(evaluate(float(np.exp(mid)))):
+            a = mid
+        else:
+            b = mid
+    return float(np.exp(a)), True
+
+
+# ------------------------------------------------------------------ encoding
+
+
+def _image_meta(img: SourceImage) -> dict:
+    return {"name": img.name, "width": img.width, "height": img.height, "bits": img.bits,
+            "channels": img.channels, "sha256": img.checksum()}
+
+
+def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, shared_ref: str | None = None):
+    """Generator job: encode ``images`` into one bundle.
+
+    Parameters
+    ----------
+    images : list of SourceImage
+    settings : Settings
+    shared : object, optional
+        An external shared side (a KLT basis from a ``.wbasis`` file, a conv model); the
+        bundle then refers to it by ``shared_ref`` (its content hash) instead of carrying it.
+
+    Returns
+    -------
+    EncodeResult
+    """
+    if not images:
+        raise InputError("nothing to encode: no readable images")
+    codec = codecs.get(settings.method)
+    total = len(images) + 1
+    shared_bytes = None
+    yield Progress(0, total, "preparing")
+    if shared is None:
+        shared, shared_bytes = codec.prepare_shared([image_planes(i, settings.chroma) for i in images]
+                                                    if settings.basis_scope == "folder" else None, settings)
+    payloads, alphas, results = [], [], []
+    for n, img in enumerate(images):
+        yield Progress(n + 0.5, total, f"encoding {img.name}")
+        planes = image_planes(img, settings.chroma)
+        analysis = codec.analyse(planes, settings, shared)
+        met = None
+        step = settings.step
+        if settings.target is not None:
+            kind, value = settings.target
+            overhead = 8 * (60 + len(container.pack_json(_image_meta(img))))
+            if kind == "bpp":
+                def evaluate(s):
+                    return (8 * len(codec.serialise(codec.quantise(analysis, s))) + overhead) / img.pixels
+            else:
+                def evaluate(s):
+                    return _measure(kind, img, codec.quantise(analysis, s).planes, settings.chroma)
+            step, met = search_step(evaluate, kind, value)
+        coded = codec.quantise(analysis, step)
+        payload = codec.serialise(coded)
+        rec = planes_to_pixels(coded.planes, img.pixels.shape[:2], settings.chroma, img.bits)
+        full = rec if img.alpha is None else SourceImage(img.name, rec, img.alpha).full()
+        results.append(ImageResult(
+            img.name, img.width, img.height, img.bits, img.channels, len(payload), coded.step, coded.kept,
+            metrics.psnr(img.pixels, rec, data_range=img.peak),
+            metrics.ssim(img.pixels, rec, data_range=img.peak) if min(img.height, img.width) > 11 else float("nan"),
+            full, target_met=met))
+        payloads.append(payload)
+        alphas.append(None if img.alpha is None else encode_alpha(img.alpha))
+    meta = {"format": "wbundle", "version": bundle.VERSION, "tool": f"workbench {__version__}",
+            "settings": settings.to_dict(), "images": [_image_meta(i) for i in images]}
+    if shared_ref is not None:
+        meta["basis_sha256"] = shared_ref
+    data = bundle.assemble(meta, shared_bytes, payloads, alphas)
+    own = [len(p) + (len(a) if a else 0) for p, a in zip(payloads, alphas)]
+    overhead = len(data) - sum(own)
+    pixels = sum(r.pixels for r in results)
+    for r, b in zip(results, own):
+        r.bytes = b + overhead * r.pixels / pixels
+        r.bpp = 8 * r.bytes / r.pixels
+    yield Progress(total, total, "done")
+    return EncodeResult(data, settings, results)
+
+
+def encode(images, settings: Settings, **kw) -> EncodeResult:
+    """Blocking form of :func:`encode_job`."""
+    return run(encode_job(images, settings, **kw))
+
+
+# ------------------------------------------------------------------ decoding
+
+
+@dataclass
+class Decoded:
+    name: str
+    pixels: np.ndarray
+    checksum: str
+
+
+def decode_job(data: bytes, *, shared=None, shared_ref: str | None = None):
+    """Generator job: decode every image of a bundle; returns ``(Contents, list[Decoded])``."""
+    contents = bundle.parse(data)
+    s = contents.settings
+    codec = codecs.get(s.method)
+    if contents.shared is not None:
+        shared = codec.shared_from_bytes(contents.shared)
+    elif contents.basis_ref is not None:
+        if shared is None and hasattr(codec, "builtin"):
+            shared, shared_ref = codec.builtin(contents.basis_ref), contents.basis_ref
+        if shared is None:
+            raise BundleError(f"this bundle needs its external basis/model (sha256 {contents.basis_ref[:12]}…); pass it with --basis/--model")
+        if shared_ref != contents.basis_ref:
+            raise BundleError(f"the basis/model given (sha256 {str(shared_ref)[:12]}…) is not the one this bundle was made with ({contents.basis_ref[:12]}…)")
+    out = []
+    for n, e in enumerate(contents.entries):
+        yield Progress(n, len(contents.entries), f"decoding {e.name}")
+        shapes = plane_shapes(e.height, e.width, e.channels, s.chroma)
+        planes = codec.decode(e.payload, shapes, s, shared)
+        px = planes_to_pixels(planes, (e.height, e.width), s.chroma, e.bits)
+        if e.alpha is not None:
+            px = SourceImage(e.name, px, decode_alpha(e.alpha, e.height, e.width, e.bits)).full()
+        out.append(Decoded(e.name, px, e.checksum))
+    yield Progress(len(contents.entries), len(contents.entries), "done")
+    return contents, out
+
+
+def decode(data: bytes, **kw):
+    return run(decode_job(data, **kw))

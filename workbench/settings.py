@@ -1,0 +1,116 @@
+"""One frozen settings object shared by the CLI, the GUI, bundle metadata and caches."""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+from dataclasses import dataclass
+
+from .errors import InputError
+
+BLOCK_SIZES = (4, 8, 16, 32)
+CHROMA_MODES = ("420", "444")
+BASIS_SCOPES = ("image", "folder")
+TARGET_KINDS = ("psnr", "ssim", "bpp")
+
+
+@dataclass(frozen=True)
+class Settings:
+    """Codec settings.
+
+    Parameters
+    ----------
+    method : str
+        Registered codec name (``"klt"`` or ``"conv"``).
+    block : int
+        Patch side B for the KLT, one of 4, 8, 16, 32.
+    components : int or None
+        KLT components kept per patch (1..B*B); ``None`` keeps all.
+    step : float
+        Quantiser step, in units of one 8-bit grey level (1/255 of full scale), so that
+        the same step means the same relative precision for 8- and 16-bit sources.
+    chroma : str
+        ``"420"`` (chroma halved in both directions) or ``"444"``.
+    basis_scope : str
+        ``"image"``: one basis per image, stored in the bundle; ``"folder"``: one basis fitted
+        on all images of the bundle and stored once.
+    target : tuple or None
+        ``("psnr", dB)``, ``("ssim", value)`` or ``("bpp", rate)``: search the step per image.
+    latent : int or None
+        Latent channels kept by the learned encoder; ``None`` keeps all.
+    deadzone : float
+        Rounding offset of the quantiser (0.5 is plain rounding, smaller widens the zero bin).
+    """
+
+    method: str = "klt"
+    block: int = 8
+    components: int | None = None
+    step: float = 8.0
+    chroma: str = "420"
+    basis_scope: str = "image"
+    target: tuple[str, float] | None = None
+    latent: int | None = None
+    deadzone: float = 0.38
+
+    def __post_init__(self):
+        if self.block not in BLOCK_SIZES:
+            raise InputError(f"block size must be one of {BLOCK_SIZES}, got {self.block!r}")
+        if self.components is not None and not (1 <= int(self.components) <= self.block**2):
+            raise InputError(
+                f"components must be between 1 and {self.block**2} for block {self.block}, "
+                f"got {self.components!r}"
+            )
+        if not (0.01 <= float(self.step) <= 4096):
+            raise InputError(f"step must be between 0.01 and 4096 grey levels, got {self.step!r}")
+        if self.chroma not in CHROMA_MODES:
+            raise InputError(f"chroma must be one of {CHROMA_MODES}, got {self.chroma!r}")
+        if self.basis_scope not in BASIS_SCOPES:
+            raise InputError(f"basis scope must be one of {BASIS_SCOPES}, got {self.basis_scope!r}")
+        if not (0.0 < float(self.deadzone) <= 0.5):
+            raise InputError(f"deadzone rounding offset must be in (0, 0.5], got {self.deadzone!r}")
+        if self.latent is not None and int(self.latent) < 1:
+            raise InputError(f"latent channels must be at least 1, got {self.latent!r}")
+        if self.target is not None:
+            kind, value = self.target
+            if kind not in TARGET_KINDS:
+                raise InputError(f"target kind must be one of {TARGET_KINDS}, got {kind!r}")
+            limits = {"psnr": (5.0, 120.0), "ssim": (0.0, 1.0), "bpp": (0.001, 64.0)}[kind]
+            if not (limits[0] < float(value) <= limits[1]):
+                raise InputError(f"target {kind} must be in ({limits[0]}, {limits[1]}], got {value!r}")
+            object.__setattr__(self, "target", (kind, float(value)))
+
+    @property
+    def kept(self) -> int:
+        """Number of KLT components kept."""
+        return self.block**2 if self.components is None else int(self.components)
+
+    def replace(self, **changes) -> "Settings":
+        """Return a copy with ``changes`` applied (validated again)."""
+        return dataclasses.replace(self, **changes)
+
+    def to_dict(self) -> dict:
+        d = dataclasses.asdict(self)
+        d["target"] = list(self.target) if self.target else None
+        return d
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "Settings":
+        if not isinstance(d, dict):
+            raise InputError("settings must be a JSON object")
+        known = {f.name for f in dataclasses.fields(cls)}
+        unknown = set(d) - known
+        if unknown:
+            raise InputError(f"unknown settings: {sorted(unknown)}")
+        d = dict(d)
+        if d.get("target") is not None:
+            t = d["target"]
+            if not (isinstance(t, (list, tuple)) and len(t) == 2):
+                raise InputError(f"target must be a [kind, value] pair, got {t!r}")
+            d["target"] = (str(t[0]), float(t[1]))
+        try:
+            return cls(**d)
+        except TypeError as exc:
+            raise InputError(f"bad settings: {exc}") from None
+
+    def cache_key(self) -> str:
+        return json.dumps(self.to_dict(), sort_keys=True)
