@@ -57,11 +57,13 @@ def unpack(data: bytes, magic: bytes, versions: tuple[int, ...], what: str) -> l
     data = memoryview(data)
     if len(data) < HEADER.size:
         raise BundleError(f"not a {what}: file is only {len(data)} bytes")
-    got_magic, version, _reserved, count, table_crc = HEADER.unpack_from(data, 0)
+    got_magic, version, reserved, count, table_crc = HEADER.unpack_from(data, 0)
     if got_magic != magic:
         raise BundleError(f"not a {what} (unrecognised file signature)")
     if version not in versions:
         raise BundleError(f"{what} version {version} is not supported (this build reads {list(versions)})")
+    if reserved != 0:
+        raise BundleError(f"{what} header is corrupted (reserved field is {reserved})")
     if count > MAX_CHUNKS:
         raise BundleError(f"{what} claims {count} chunks (limit {MAX_CHUNKS})")
     table_end = HEADER.size + ENTRY.size * count

@@ -216,7 +216,10 @@ def write_atomic(path: str | os.PathLike, data: bytes, *, protect: set[Path] | N
         raise InputError(f"{path}: refusing to overwrite a source image")
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+    umask = os.umask(0)
+    os.umask(umask)
     try:
+        os.chmod(tmp, 0o666 & ~umask)
         with os.fdopen(fd, "wb") as f:
             f.write(data)
             f.flush()

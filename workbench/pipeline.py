@@ -11,7 +11,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import __version__, bundle, codecs, color, container, metrics
+from . import __version__, bundle, codecs, color, metrics
 from .errors import BundleError, InputError
 from .imagefiles import SourceImage
 from .jobs import Progress, run
@@ -120,24 +120,38 @@ def _measure(kind: str, img: SourceImage, coded_planes, chroma: str) -> float:
 
 
 def search_step(evaluate, kind: str, target: float, lo: float = STEP_RANGE[0], hi: float = STEP_RANGE[1]):
-    """Largest step whose quality stays at or above ``target`` (psnr, ssim) or whose rate stays
-    at or below it (bpp), by bisection on log(step); quality and rate fall as the step grows.
+    """Step search by bisection on log(step); quality and rate both fall as the step grows.
+
+    For ``psnr``/``ssim``: the largest (cheapest) step whose value stays at or above
+    ``target``. For ``bpp``: the smallest (best) step whose rate stays at or below it.
 
     Returns
     -------
     step : float
     met : bool
-        False when even the finest step misses the target (the finest step is returned).
+        False when no step in range meets the target (the closest end is returned).
     """
-    ok = (lambda v: v <= target) if kind == "bpp" else (lambda v: v >= target)
-    if ok(evaluate(hi)):
+    if kind == "bpp":
+        if evaluate(lo) <= target:
+            return lo, True
+        if evaluate(hi) > target:
+            return hi, False
+        a, b = np.log(lo), np.log(hi)  # invariant: a misses, b meets
+        for _ in range(SEARCH_ITERATIONS):
+            mid = 0.5 * (a + b)
+            if evaluate(float(np.exp(mid))) <= target:
+                b = mid
+            else:
+                a = mid
+        return float(np.exp(b)), True
+    if evaluate(hi) >= target:
         return hi, True
-    if not ok(evaluate(lo)):
+    if evaluate(lo) < target:
         return lo, False
-    a, b = np.log(lo), np.log(hi)
+    a, b = np.log(lo), np.log(hi)  # invariant: a meets, b misses
     for _ in range(SEARCH_ITERATIONS):
         mid = 0.5 * (a + b)
-        if ok(evaluate(float(np.exp(mid)))):
+        if evaluate(float(np.exp(mid))) >= target:
             a = mid
         else:
             b = mid
@@ -152,7 +166,23 @@ def _image_meta(img: SourceImage) -> dict:
             "channels": img.channels, "sha256": img.checksum()}
 
 
-def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, shared_ref: str | None = None):
+def _meta(settings: Settings, images: list[SourceImage], shared_ref: str | None) -> dict:
+    meta = {"format": "wbundle", "version": bundle.VERSION, "tool": f"workbench {__version__}",
+            "settings": settings.to_dict(), "images": [_image_meta(i) for i in images]}
+    if shared_ref is not None:
+        meta["basis_sha256"] = shared_ref
+    return meta
+
+
+def _overhead_bytes(img: SourceImage, settings: Settings, shared_ref: str | None) -> int:
+    """Bytes a one-image bundle spends besides the image payload (headers, metadata, alpha);
+    in a folder bundle the real share is smaller, so a rate target stays met."""
+    alpha = None if img.alpha is None else encode_alpha(img.alpha)
+    return len(bundle.assemble(_meta(settings, [img], shared_ref), None, [b""], [alpha]))
+
+
+def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, shared_ref: str | None = None,
+               embed: bool = False):
     """Generator job: encode ``images`` into one bundle.
 
     Parameters
@@ -173,7 +203,9 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
     total = len(images) + 1
     shared_bytes = None
     yield Progress(0, total, "preparing")
-    if shared is None:
+    if shared is not None and embed:
+        shared_bytes, shared_ref = codec.shared_to_bytes(shared), None
+    elif shared is None:
         shared, shared_bytes = codec.prepare_shared([image_planes(i, settings.chroma) for i in images]
                                                     if settings.basis_scope == "folder" else None, settings)
     payloads, alphas, results = [], [], []
@@ -185,10 +217,10 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
         step = settings.step
         if settings.target is not None:
             kind, value = settings.target
-            overhead = 8 * (60 + len(container.pack_json(_image_meta(img))))
+            overhead = 8 * _overhead_bytes(img, settings, shared_ref)
             if kind == "bpp":
                 def evaluate(s):
-                    return (8 * len(codec.serialise(codec.quantise(analysis, s))) + overhead) / img.pixels
+                    return (8 * len(codec.serialise(codec.quantise(analysis, s))) + overhead) / (img.width * img.height)
             else:
                 def evaluate(s):
                     return _measure(kind, img, codec.quantise(analysis, s).planes, settings.chroma)
@@ -204,11 +236,7 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
             full, target_met=met))
         payloads.append(payload)
         alphas.append(None if img.alpha is None else encode_alpha(img.alpha))
-    meta = {"format": "wbundle", "version": bundle.VERSION, "tool": f"workbench {__version__}",
-            "settings": settings.to_dict(), "images": [_image_meta(i) for i in images]}
-    if shared_ref is not None:
-        meta["basis_sha256"] = shared_ref
-    data = bundle.assemble(meta, shared_bytes, payloads, alphas)
+    data = bundle.assemble(_meta(settings, images, shared_ref), shared_bytes, payloads, alphas)
     own = [len(p) + (len(a) if a else 0) for p, a in zip(payloads, alphas)]
     overhead = len(data) - sum(own)
     pixels = sum(r.pixels for r in results)

@@ -53,6 +53,10 @@ class Settings:
     deadzone: float = 0.38
 
     def __post_init__(self):
+        from .codecs import REGISTRY
+
+        if self.method not in REGISTRY:
+            raise InputError(f"unknown method {self.method!r}; choose one of {', '.join(REGISTRY)}")
         if self.block not in BLOCK_SIZES:
             raise InputError(f"block size must be one of {BLOCK_SIZES}, got {self.block!r}")
         if self.components is not None and not (1 <= int(self.components) <= self.block**2):

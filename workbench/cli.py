@@ -1,0 +1,259 @@
+"""Command line: ``workbench encode | decode | info | fit-basis | sheet | train | gui``.
+
+Each command turns its flags into one :class:`~workbench.settings.Settings` and calls the
+same core functions the GUI uses. Bad input ends with exit status 2 and one ``error:`` line.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+
+from . import __version__
+from .errors import Cancelled, WorkbenchError
+from .settings import BLOCK_SIZES, Settings
+
+EPILOG = "Steps are in 8-bit grey levels (1/255 of full scale) for 8- and 16-bit sources alike."
+
+
+def _add_codec_options(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("codec")
+    g.add_argument("--method", default="klt", choices=["klt", "conv"], help="transform: block KLT or the learned conv encoder (default klt)")
+    g.add_argument("--block", type=int, default=8, choices=BLOCK_SIZES, help="KLT patch side B (default 8)")
+    g.add_argument("--components", type=int, metavar="K", help="KLT components kept per patch (default all B*B)")
+    g.add_argument("--latent", type=int, metavar="C", help="conv latent channels kept (default all)")
+    g.add_argument("--chroma", default="420", choices=["420", "444"], help="chroma sampling for colour images (default 420)")
+    g.add_argument("--basis-scope", default="image", choices=["image", "folder"],
+                   help="KLT basis per image, or one for all images stored once in the bundle (default image)")
+    g.add_argument("--basis", metavar="FILE", help="external .wbasis file: bundles refer to it by hash instead of carrying a basis")
+    g.add_argument("--model", metavar="FILE", help="conv model file (.wmodel); default: the shipped model")
+    g.add_argument("--embed-model", action="store_true", help="carry the conv model inside the bundle")
+    r = p.add_argument_group("rate (choose one)").add_mutually_exclusive_group()
+    r.add_argument("--step", type=float, help="quantiser step in 8-bit grey levels (default 8)")
+    r.add_argument("--target-psnr", type=float, metavar="DB", help="per image, the coarsest step whose PSNR reaches DB")
+    r.add_argument("--target-ssim", type=float, metavar="S", help="per image, the coarsest step whose SSIM reaches S")
+    r.add_argument("--target-bpp", type=float, metavar="R", help="per image, the finest step whose rate stays within R bits per pixel")
+
+
+def settings_from_args(a) -> Settings:
+    target = None
+    for kind in ("psnr", "ssim", "bpp"):
+        v = getattr(a, f"target_{kind}", None)
+        if v is not None:
+            target = (kind, v)
+    kw = dict(method=a.method, block=a.block, components=a.components, chroma=a.chroma,
+              basis_scope=a.basis_scope, target=target, latent=a.latent)
+    if a.step is not None:
+        kw["step"] = a.step
+    elif a.method == "conv":
+        kw["step"] = 1.0
+    return Settings(**kw)
+
+
+def _shared_from_args(a):
+    """External shared side (basis or model) and its hash, or (None, None)."""
+    if getattr(a, "basis", None):
+        from .basisfile import load_basis
+
+        return load_basis(a.basis)
+    if getattr(a, "method", "klt") == "conv" or getattr(a, "model", None):
+        from .codecs import get
+
+        return get("conv").load_model(a.model)
+    return None, None
+
+
+def _read_inputs(inputs):
+    from .imagefiles import read_many
+
+    images, skipped = read_many(inputs)
+    for name, why in skipped:
+        print(f"warning: skipped {why}", file=sys.stderr)
+    return images, skipped
+
+
+def _progress(p):
+    if sys.stderr.isatty():
+        width = 30
+        n = int(width * p.fraction)
+        sys.stderr.write(f"\r[{'#' * n}{'.' * (width - n)}] {100 * p.fraction:5.1f}% {p.text[:40]:<40}")
+        if p.fraction >= 1:
+            sys.stderr.write("\n")
+        sys.stderr.flush()
+
+
+def cmd_encode(a) -> int:
+    from . import pipeline
+    from .imagefiles import list_inputs, write_atomic
+    from .jobs import run
+
+    settings = settings_from_args(a)
+    shared, ref = _shared_from_args(a)
+    images, _ = _read_inputs(a.inputs)
+    job = pipeline.encode_job(images, settings, shared=shared, shared_ref=ref, embed=a.embed_model)
+    result = run(job, _progress)
+    write_atomic(a.output, result.data, protect=set(list_inputs(a.inputs)))
+    if a.json:
+        print(json.dumps({"bundle": str(a.output), "bytes": result.size,
+                          "images": [{k: r.summary()[k] for k in ("name", "width", "height", "bpp", "psnr", "ssim")}
+                                     for r in result.images]}))
+    else:
+        for r in result.images:
+            note = "" if r.target_met in (None, True) else "  (target not reached)"
+            print(f"{r.name}: {r.width}x{r.height}  {r.bpp:.3f} bpp  PSNR {r.psnr:.2f} dB  SSIM {r.ssim:.4f}  "
+                  f"step {r.step:.3g}{note}")
+        print(f"wrote {a.output} ({result.size} bytes)")
+    return 0
+
+
+def cmd_decode(a) -> int:
+    from . import pipeline
+    from .imagefiles import encode_png, write_atomic
+
+    data = _read_bundle(a.bundle)
+    shared, ref = _shared_from_args(a)
+    _, decoded = pipeline.decode(data, shared=shared, shared_ref=ref)
+    out = Path(a.output)
+    out.mkdir(parents=True, exist_ok=True)
+    targets = []
+    for d in decoded:
+        t = out / (Path(d.name).stem + ".png")
+        if t.exists() and not a.force:
+            raise WorkbenchError(f"{t} exists; choose another folder or pass --force")
+        targets.append((t, d))
+    for t, d in targets:
+        write_atomic(t, encode_png(d.pixels))
+        print(f"wrote {t}")
+    return 0
+
+
+def _read_bundle(path) -> bytes:
+    try:
+        return Path(path).read_bytes()
+    except OSError as exc:
+        raise WorkbenchError(f"{path}: cannot read ({exc.strerror})") from None
+
+
+def cmd_info(a) -> int:
+    from . import bundle
+
+    c = bundle.parse(_read_bundle(a.bundle))
+    info = {"bundle": str(a.bundle), "bytes": c.size, "tool": c.meta.get("tool"), "settings": c.settings.to_dict(),
+            "basis": "external " + c.basis_ref if c.basis_ref else ("shared in bundle" if c.shared else "per image"),
+            "images": [{"name": e.name, "width": e.width, "height": e.height, "bits": e.bits, "channels": e.channels,
+                        "alpha": e.alpha is not None, "payload_bytes": len(e.payload), "sha256": e.checksum}
+                       for e in c.entries]}
+    if a.json:
+        print(json.dumps(info))
+        return 0
+    s = c.settings
+    print(f"{a.bundle}: {c.size} bytes, {len(c.entries)} image(s), made by {info['tool']}")
+    print(f"method {s.method}, block {s.block}, components {s.kept}, chroma {s.chroma}, basis {info['basis']}")
+    for e in info["images"]:
+        print(f"  {e['name']}: {e['width']}x{e['height']} {e['bits']}-bit {e['channels']} ch"
+              f"{' +alpha' if e['alpha'] else ''}, {e['payload_bytes']} bytes")
+    return 0
+
+
+def cmd_fit_basis(a) -> int:
+    from . import pipeline
+    from .basisfile import save_basis
+    from .codecs.klt import CODEC
+    from .imagefiles import list_inputs
+
+    images, _ = _read_inputs(a.inputs)
+    if not images:
+        raise WorkbenchError("no readable images to fit a basis on")
+    s = Settings(block=a.block, chroma=a.chroma, basis_scope="folder")
+    basis, _ = CODEC.prepare_shared([pipeline.image_planes(i, s.chroma) for i in images], s)
+    if Path(a.output).resolve() in {p.resolve() for p in list_inputs(a.inputs)}:
+        raise WorkbenchError(f"{a.output}: refusing to overwrite a source image")
+    digest = save_basis(a.output, basis, sources=[i.name for i in images])
+    energy = basis.energy_kept()
+    marks = ", ".join(f"K={k}: {100 * energy[k - 1]:.1f}%" for k in (1, 4, 16) if k <= len(energy))
+    print(f"wrote {a.output} (block {a.block}, {len(images)} images, sha256 {digest[:16]}…; energy kept {marks})")
+    return 0
+
+
+def cmd_gui(a) -> int:
+    from .gui.app import main as gui_main
+
+    return gui_main(a.folder)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="workbench", description="Compress image folders with a transform learned from "
+                                "the folder itself, and measure what it costs.", epilog=EPILOG)
+    p.add_argument("--version", action="version", version=f"workbench {__version__}")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+
+    e = sub.add_parser("encode", help="compress images or folders into one bundle", epilog=EPILOG)
+    e.add_argument("inputs", nargs="+", metavar="INPUT", help="image files or folders")
+    e.add_argument("-o", "--output", required=True, metavar="OUT.wbundle")
+    e.add_argument("--json", action="store_true", help="print one JSON object instead of text")
+    _add_codec_options(e)
+    e.set_defaults(func=cmd_encode)
+
+    d = sub.add_parser("decode", help="decode a bundle into PNG files (16-bit PNG for 16-bit sources)")
+    d.add_argument("bundle", metavar="BUNDLE")
+    d.add_argument("-o", "--output", required=True, metavar="OUTDIR")
+    d.add_argument("--basis", metavar="FILE", help="the .wbasis file the bundle was made with, if external")
+    d.add_argument("--model", metavar="FILE", help="the .wmodel file the bundle was made with, if not the shipped one")
+    d.add_argument("--force", action="store_true", help="replace existing files in OUTDIR")
+    d.set_defaults(func=cmd_decode, method="klt")
+
+    i = sub.add_parser("info", help="describe a bundle without decoding it")
+    i.add_argument("bundle", metavar="BUNDLE")
+    i.add_argument("--json", action="store_true")
+    i.set_defaults(func=cmd_info)
+
+    f = sub.add_parser("fit-basis", help="fit one KLT basis on many images of one source")
+    f.add_argument("inputs", nargs="+", metavar="INPUT")
+    f.add_argument("-o", "--output", required=True, metavar="FILE.wbasis")
+    f.add_argument("--block", type=int, default=8, choices=BLOCK_SIZES)
+    f.add_argument("--chroma", default="420", choices=["420", "444"])
+    f.set_defaults(func=cmd_fit_basis)
+
+    g = sub.add_parser("gui", help="open the desktop app on a folder")
+    g.add_argument("folder", nargs="?", help="image folder (default: the last one, or the samples)")
+    g.set_defaults(func=cmd_gui)
+
+    for extra in _EXTRA_COMMANDS:
+        extra(sub)
+    return p
+
+
+_EXTRA_COMMANDS: list = []
+
+
+def command(register):
+    """Decorator for modules that add a sub-command (sheet, train)."""
+    _EXTRA_COMMANDS.append(register)
+    return register
+
+
+def main(argv=None) -> int:
+    from . import cli_extra  # noqa: F401  (registers sheet and train)
+
+    parser = build_parser()
+    a = parser.parse_args(argv)
+    if a.command is None:
+        a = parser.parse_args(["gui"])
+    try:
+        return a.func(a)
+    except (WorkbenchError, OSError) as exc:
+        msg = str(exc).splitlines()[0] if str(exc) else exc.__class__.__name__
+        print(f"error: {msg}", file=sys.stderr)
+        return 2
+    except Cancelled:
+        print("error: cancelled", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("error: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,1 @@
+"""Sub-commands that live with their own features (the quality sheet, training)."""
