@@ -44,9 +44,10 @@ def test_420_planes_have_half_size_rounded_up(chelsea):
 
 
 def test_444_round_trip_is_lossless_before_quantisation(chelsea):
+    # The decoder side works in float32: far below the half level that rounding removes.
     planes = color.to_planes(chelsea, "444", 1.0)
     back = color.from_planes(planes, chelsea.shape[:2], "444")
-    assert np.abs(back - chelsea).max() < 1e-9
+    assert np.abs(back - chelsea).max() < 1e-3
 
 
 def test_chroma_resampling_keeps_a_constant_plane():

@@ -53,7 +53,7 @@ def compress(images, method: str = "klt", *, basis: Basis | None = None, basis_r
     (64, 64)
     """
     s = Settings(method=method, **settings)
-    return pipeline.encode(_sources(images), s, shared=basis, shared_ref=basis_ref).data
+    return pipeline.encode(_sources(images), s, shared=basis, shared_ref=basis_ref, measure=False).data
 
 
 def decompress(data: bytes, basis: Basis | None = None, basis_ref: str | None = None) -> dict[str, np.ndarray]:

@@ -36,9 +36,18 @@ def image_planes(img: SourceImage, chroma: str) -> list[np.ndarray]:
 
 
 def planes_to_pixels(planes, shape, chroma, bits) -> np.ndarray:
+    """Decoded planes to integer pixels: colour back to RGB, rounded and clipped."""
     peak = 65535 if bits == 16 else 255
-    x = color.from_planes(planes, shape, chroma) * (peak / 255.0)
-    return np.clip(np.round(x), 0, peak).astype(np.uint16 if bits == 16 else np.uint8)
+    dtype = np.uint16 if bits == 16 else np.uint8
+    k = np.float32(peak / 255.0)
+    out = []
+    for c in color.to_channels(planes, shape, chroma):
+        if bits == 16:
+            c = c * k
+        np.rint(c, out=c)
+        np.clip(c, 0, peak, out=c)
+        out.append(c.astype(dtype))
+    return out[0] if len(out) == 1 else np.dstack(out)
 
 
 def encode_alpha(alpha: np.ndarray) -> bytes:
@@ -78,7 +87,7 @@ class ImageResult:
     kept: int
     psnr: float
     ssim: float
-    reconstruction: np.ndarray
+    reconstruction: np.ndarray | None
     bytes: float = 0.0
     bpp: float = 0.0
     target_met: bool | None = None
@@ -89,7 +98,8 @@ class ImageResult:
 
     @property
     def ratio(self) -> float:
-        raw = self.pixels * (self.channels + (1 if self.reconstruction.ndim == 3 and self.reconstruction.shape[2] in (2, 4) else 0)) * self.bits / 8
+        """Uncompressed colour samples (at the source bit depth) over compressed bytes."""
+        raw = self.pixels * self.channels * self.bits / 8
         return raw / self.bytes if self.bytes else float("inf")
 
     def summary(self) -> dict:
@@ -182,7 +192,7 @@ def _overhead_bytes(img: SourceImage, settings: Settings, shared_ref: str | None
 
 
 def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, shared_ref: str | None = None,
-               embed: bool = False):
+               embed: bool = False, measure: bool = True):
     """Generator job: encode ``images`` into one bundle.
 
     Parameters
@@ -227,13 +237,16 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
             step, met = search_step(evaluate, kind, value)
         coded = codec.quantise(analysis, step)
         payload = codec.serialise(coded)
-        rec = planes_to_pixels(coded.planes, img.pixels.shape[:2], settings.chroma, img.bits)
-        full = rec if img.alpha is None else SourceImage(img.name, rec, img.alpha).full()
-        results.append(ImageResult(
-            img.name, img.width, img.height, img.bits, img.channels, len(payload), coded.step, coded.kept,
-            metrics.psnr(img.pixels, rec, data_range=img.peak),
-            metrics.ssim(img.pixels, rec, data_range=img.peak) if min(img.height, img.width) > 11 else float("nan"),
-            full, target_met=met))
+        p = s = float("nan")
+        full = None
+        if measure:
+            rec = planes_to_pixels(coded.planes, img.pixels.shape[:2], settings.chroma, img.bits)
+            full = rec if img.alpha is None else SourceImage(img.name, rec, img.alpha).full()
+            p = metrics.psnr(img.pixels, rec, data_range=img.peak)
+            if min(img.height, img.width) > 11:
+                s = metrics.ssim(img.pixels, rec, data_range=img.peak)
+        results.append(ImageResult(img.name, img.width, img.height, img.bits, img.channels, len(payload),
+                                   coded.step, coded.kept, p, s, full, target_met=met))
         payloads.append(payload)
         alphas.append(None if img.alpha is None else encode_alpha(img.alpha))
     data = bundle.assemble(_meta(settings, images, shared_ref), shared_bytes, payloads, alphas)
@@ -291,3 +304,42 @@ def decode_job(data: bytes, *, shared=None, shared_ref: str | None = None):
 
 def decode(data: bytes, **kw):
     return run(decode_job(data, **kw))
+
+
+# ------------------------------------------------------------------ rate–distortion
+
+
+@dataclass(frozen=True)
+class RDPoint:
+    step: float
+    bytes: int
+    bpp: float
+    psnr: float
+    ssim: float
+
+
+DEFAULT_STEPS = (1.5, 2.5, 4.0, 6.0, 9.0, 13.0, 19.0, 28.0)
+
+
+def rd_points(img: SourceImage, settings: Settings, steps=None, *, shared=None, shared_ref=None,
+              with_ssim: bool = True) -> list[RDPoint]:
+    """Rate–distortion points of one image, each the size of a real one-image bundle.
+
+    The transform is fitted once; each step is quantised, entropy-coded and laid out as a
+    complete bundle whose length is the rate.
+    """
+    codec = codecs.get(settings.method)
+    steps = steps or getattr(codec, "default_steps", DEFAULT_STEPS)
+    analysis = codec.analyse(image_planes(img, settings.chroma), settings, shared)
+    alpha = None if img.alpha is None else encode_alpha(img.alpha)
+    meta = _meta(settings, [img], shared_ref)
+    out = []
+    for step in steps:
+        coded = codec.quantise(analysis, step)
+        size = len(bundle.assemble(dict(meta, images=[dict(m) for m in meta["images"]]), None,
+                                   [codec.serialise(coded)], [alpha]))
+        rec = planes_to_pixels(coded.planes, img.pixels.shape[:2], settings.chroma, img.bits)
+        out.append(RDPoint(coded.step, size, 8 * size / (img.width * img.height),
+                           metrics.psnr(img.pixels, rec, data_range=img.peak),
+                           metrics.ssim(img.pixels, rec, data_range=img.peak) if with_ssim else float("nan")))
+    return sorted(out, key=lambda p: p.bpp)

@@ -41,15 +41,24 @@ class Analysis:
 
 @dataclass
 class Coded:
-    """One image quantised at one step."""
+    """One image quantised at one step; ``planes`` is the decoder's exact reconstruction,
+    computed on first use (compressing alone does not need it)."""
 
     step: float
     q: list[np.ndarray]
     kept: int
     ints: np.ndarray | None
     bits: np.ndarray | None
-    planes: list[np.ndarray]
+    synthesis: np.ndarray
     analysis: Analysis
+    _planes: list[np.ndarray] | None = None
+
+    @property
+    def planes(self) -> list[np.ndarray]:
+        if self._planes is None:
+            a = self.analysis
+            self._planes = synthesise(self.q, self.synthesis, self.step, a.means, a.shapes, a.settings.block)
+        return self._planes
 
 
 def synthesise(q, synthesis, step, means, shapes, block):
@@ -121,10 +130,9 @@ class KLTCodec:
         nz = [np.flatnonzero(np.any(qp != 0, axis=(0, 1))) for qp in q]
         kept = max([int(i[-1]) + 1 for i in nz if i.size] or [1])
         q = [qp[:, :, :kept] for qp in q]
-        planes = synthesise(q, synthesis, step, a.means, a.shapes, a.settings.block)
         if a.inline:
             ints, bits = ints[:kept], bits[:kept]
-        return Coded(step, q, kept, ints, bits, planes, a)
+        return Coded(step, q, kept, ints, bits, synthesis, a)
 
     def serialise(self, c: Coded) -> bytes:
         a = c.analysis

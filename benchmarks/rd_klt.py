@@ -1,0 +1,160 @@
+"""KLT benchmark: rate–distortion and BD-rate against Pillow's codecs, speed, memory.
+
+Run: python benchmarks/rd_klt.py [--quick]
+Prints, in one run and side by side: per-image BD-rate (PSNR) of the per-image-basis KLT
+against JPEG, JPEG 2000, WebP and AVIF on scikit-image's colour photographs; the folder-basis
+KLT on held-out images of one source; encode/decode time of a 4-megapixel image as ratios
+to Pillow's JPEG at the same rate (medians of repeated runs); and peak memory.
+"""
+
+from __future__ import annotations
+
+import argparse
+import resource
+import statistics
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+from skimage import data
+from skimage.transform import resize
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "scripts"))
+
+import workbench  # noqa: E402
+import workbench.basisfile  # noqa: E402
+import workbench.codecs  # noqa: E402
+import workbench.metrics  # noqa: E402
+from workbench import baselines, bdrate, klt, pipeline, tiling  # noqa: E402
+from workbench.imagefiles import SourceImage  # noqa: E402
+from workbench.settings import Settings  # noqa: E402
+
+PHOTOS = ["astronaut", "coffee", "chelsea", "rocket"]
+STEPS = (2.0, 3.0, 4.5, 6.5, 9.0, 13.0, 18.0, 26.0)
+
+
+def bd_against(img, ours, names=("jpeg", "jpeg2000", "webp", "avif")):
+    out = {}
+    for n in names:
+        b = baselines.get(n)
+        pts = baselines.sweep(b, img, with_ssim=False)
+        lo, hi = min(p.bpp for p in ours), max(p.bpp for p in ours)
+        pts = [p for p in pts if 0.7 * lo <= p.bpp <= 1.4 * hi] or pts
+        out[n] = bdrate.bd_rate([p.bpp for p in pts], [p.psnr for p in pts],
+                                [p.bpp for p in ours], [p.psnr for p in ours])
+    return out
+
+
+def section_per_image():
+    print("\n== Per-image basis (stored in each bundle), BD-rate by PSNR, negative = fewer bits than the codec")
+    rows = []
+    for name in PHOTOS:
+        img = getattr(data, name)()
+        ours = pipeline.rd_points(SourceImage(name, img), Settings(), STEPS, with_ssim=False)
+        bd = bd_against(img, ours)
+        rows.append(bd)
+        pts = ", ".join(f"{p.bpp:.2f}/{p.psnr:.1f}" for p in ours[::2])
+        print(f"{name:10s} " + "  ".join(f"{k} {v:+6.1f}%" for k, v in bd.items()) + f"   (bpp/dB: {pts})")
+    mean = {k: statistics.mean(r[k] for r in rows) for k in rows[0]}
+    print(f"{'mean':10s} " + "  ".join(f"{k} {v:+6.1f}%" for k, v in mean.items()))
+    return mean
+
+
+def _tiles(img, side):
+    h, w = img.shape[:2]
+    return [img[y:y + side, x:x + side] for y in range(0, h - side + 1, side) for x in range(0, w - side + 1, side)]
+
+
+def section_folder_basis():
+    print("\n== Folder basis fitted on other images of the same source, tested on held-out images")
+    import make_samples
+
+    rng = np.random.default_rng(99)
+    sources = {
+        "loom frames (synthetic)": [make_samples.fabric(rng, defect=(i == 5)) for i in range(10)],
+        "drone tiles (synthetic)": [make_samples.aerial(rng) for _ in range(10)],
+        "retina tiles (scikit-image)": _tiles(data.retina(), 352)[:16],
+    }
+    results = {}
+    for label, imgs in sources.items():
+        half = len(imgs) // 2
+        train, test = imgs[:half], imgs[half:]
+        s = Settings(basis_scope="folder")
+        codec = workbench.codecs.get("klt")
+        basis, raw = codec.prepare_shared([pipeline.image_planes(SourceImage("t", t), s.chroma) for t in train], s)
+        ref = workbench.basisfile.basis_hash(raw)
+        bds, bds_own = [], []
+        for i, img in enumerate(test):
+            src = SourceImage(f"t{i}", img)
+            ours = pipeline.rd_points(src, s, STEPS, shared=basis, shared_ref=ref, with_ssim=False)
+            own = pipeline.rd_points(src, Settings(), STEPS, with_ssim=False)
+            bds.append(bd_against(img, ours, ("jpeg",))["jpeg"])
+            bds_own.append(bd_against(img, own, ("jpeg",))["jpeg"])
+        results[label] = statistics.mean(bds)
+        print(f"{label:28s} folder basis vs JPEG {statistics.mean(bds):+6.1f}%   "
+              f"(per-image basis vs JPEG {statistics.mean(bds_own):+6.1f}%; {half} fit / {len(test)} held out)")
+    return results
+
+
+def four_mp():
+    return (resize(data.retina(), (2048, 2048), anti_aliasing=True) * 255).round().astype(np.uint8)
+
+
+def section_speed(repeats):
+    print("\n== 4-megapixel RGB (retina resized to 2048x2048): time ratios to Pillow JPEG at the same rate")
+    img = four_mp()
+    jpeg = baselines.get("jpeg")
+    times_enc, times_dec = [], []
+    for _ in range(repeats):
+        t = time.perf_counter()
+        b = workbench.compress({"x": img}, step=6.0)
+        times_enc.append(time.perf_counter() - t)
+        t = time.perf_counter()
+        workbench.decompress(b)
+        times_dec.append(time.perf_counter() - t)
+    bpp = 8 * len(b) / img.shape[0] / img.shape[1]
+    q = baselines.at_rate(jpeg, img, bpp).knob
+    je, jd = [], []
+    for _ in range(repeats):
+        t = time.perf_counter()
+        jb = baselines.encode(jpeg, img, q)
+        je.append(time.perf_counter() - t)
+        t = time.perf_counter()
+        baselines.decode(jb)
+        jd.append(time.perf_counter() - t)
+    e, d, e0, d0 = map(statistics.median, (times_enc, times_dec, je, jd))
+    print(f"ours {bpp:.2f} bpp: encode {e:.3f} s, decode {d:.3f} s | JPEG q{int(q)} {8*len(jb)/img.size*3:.2f} bpp: "
+          f"encode {e0:.3f} s, decode {d0:.3f} s | ratios encode {e/e0:.1f}x, decode {d/d0:.1f}x (median of {repeats})")
+    t0 = time.perf_counter()
+    for _ in range(repeats):
+        workbench.metrics.ssim(img, img)
+    print(f"SSIM of a 4-MP RGB image: {(time.perf_counter() - t0) / repeats * 1000:.0f} ms (mean of {repeats})")
+
+
+def section_memory():
+    code = ("import sys, tracemalloc, resource; sys.path.insert(0, %r); sys.path.insert(0, %r); import rd_klt, workbench; "
+            "img = rd_klt.four_mp(); tracemalloc.start(); b = workbench.compress({'x': img}, step=6.0); "
+            "c = tracemalloc.get_traced_memory()[1]; tracemalloc.reset_peak(); workbench.decompress(b); "
+            "d = tracemalloc.get_traced_memory()[1]; print(c, d, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)"
+            % (str(Path(__file__).parent), str(Path(__file__).resolve().parents[1])))
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.split()
+    c, d, rss = int(out[0]) / 2**20, int(out[1]) / 2**20, int(out[2]) / 1024
+    print(f"\n== Peak memory, 4-MP RGB: compress {c:.0f} MB, decompress {d:.0f} MB allocated at peak (tracemalloc); "
+          f"process peak RSS {rss:.0f} MB including the test-image preparation")
+
+
+def main():
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--quick", action="store_true", help="fewer repeats")
+    a = ap.parse_args()
+    section_per_image()
+    section_folder_basis()
+    section_speed(3 if a.quick else 5)
+    section_memory()
+
+
+if __name__ == "__main__":
+    main()
