@@ -1,6 +1,6 @@
 """KLT benchmark: rate–distortion and BD-rate against Pillow's codecs, speed, memory.
 
-Run: python benchmarks/rd_klt.py [--quick]
+Run: python tests/benchmarks/bench_klt.py [--quick]
 Prints, in one run and side by side: per-image BD-rate (PSNR) of the per-image-basis KLT
 against JPEG, JPEG 2000, WebP and AVIF on scikit-image's colour photographs; the folder-basis
 KLT on held-out images of one source; encode/decode time of a 4-megapixel image as ratios
@@ -21,8 +21,9 @@ import numpy as np
 from skimage import data
 from skimage.transform import resize
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "scripts"))
+ROOT = Path(__file__).resolve().parents[2]
+sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "sample_images"))
 
 import workbench  # noqa: E402
 import workbench.basisfile  # noqa: E402
@@ -135,11 +136,11 @@ def section_speed(repeats):
 
 
 def section_memory():
-    code = ("import sys, tracemalloc, resource; sys.path.insert(0, %r); sys.path.insert(0, %r); import rd_klt, workbench; "
-            "img = rd_klt.four_mp(); tracemalloc.start(); b = workbench.compress({'x': img}, step=6.0); "
+    code = ("import sys, tracemalloc, resource; sys.path.insert(0, %r); sys.path.insert(0, %r); import bench_klt, workbench; "
+            "img = bench_klt.four_mp(); tracemalloc.start(); b = workbench.compress({'x': img}, step=6.0); "
             "c = tracemalloc.get_traced_memory()[1]; tracemalloc.reset_peak(); workbench.decompress(b); "
             "d = tracemalloc.get_traced_memory()[1]; print(c, d, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)"
-            % (str(Path(__file__).parent), str(Path(__file__).resolve().parents[1])))
+            % (str(Path(__file__).parent), str(ROOT)))
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.split()
     c, d, rss = int(out[0]) / 2**20, int(out[1]) / 2**20, int(out[2]) / 1024
     print(f"\n== Peak memory, 4-MP RGB: compress {c:.0f} MB, decompress {d:.0f} MB allocated at peak (tracemalloc); "

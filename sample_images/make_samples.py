@@ -1,4 +1,6 @@
-"""Generate the synthetic demo images in sample_images/ (deterministic, seed fixed).
+"""Generate the synthetic demo images in this folder (deterministic, seed fixed).
+
+Run: python sample_images/make_samples.py
 
 Scenario (fictional): the Harrowgate Weaving Cooperative photographs every bolt of cloth on
 its looms, a survey drone of the (equally fictional) Lowmarsh land trust maps its fields,
@@ -17,7 +19,7 @@ from scipy import ndimage
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from workbench.imagefiles import encode_png, write_atomic  # noqa: E402
 
-OUT = Path(__file__).resolve().parents[1] / "sample_images"
+OUT = Path(__file__).resolve().parent
 
 
 def smooth_noise(rng, shape, sigma):
