@@ -343,3 +343,64 @@ def rd_points(img: SourceImage, settings: Settings, steps=None, *, shared=None, 
                            metrics.psnr(img.pixels, rec, data_range=img.peak),
                            metrics.ssim(img.pixels, rec, data_range=img.peak) if with_ssim else float("nan")))
     return sorted(out, key=lambda p: p.bpp)
+
+
+# ------------------------------------------------------------------ interactive preview
+
+
+@dataclass
+class Numbers:
+    """Read-outs of one image at one setting: those of its one-image bundle."""
+
+    bytes: int
+    bpp: float
+    ratio: float
+    psnr: float
+    ssim: float
+    kept: int
+    step: float
+
+
+class ImagePreview:
+    """Fast what-ifs on one image: the transform is fitted once, then any step or
+    component count is quantised and reconstructed exactly as the decoder would.
+
+    ``reconstruct`` is the cheap part (follows a slider); ``numbers`` entropy-codes and
+    measures (the read-outs), giving the size of a real one-image bundle.
+    """
+
+    def __init__(self, img: SourceImage, settings: Settings, *, shared=None, shared_ref: str | None = None):
+        self.img = img
+        self.settings = settings
+        self.codec = codecs.get(settings.method)
+        self.shared_ref = shared_ref
+        self.analysis = self.codec.analyse(image_planes(img, settings.chroma), settings, shared)
+        self._overhead = _overhead_bytes(img, settings, shared_ref)
+
+    def compatible(self, settings: Settings) -> bool:
+        """Whether ``settings`` can reuse this fit (only the step, count or target differ)."""
+        a, b = self.settings, settings
+        return (a.method, a.block, a.chroma, a.basis_scope) == (b.method, b.block, b.chroma, b.basis_scope)
+
+    def energy_kept(self):
+        basis = getattr(self.analysis, "basis", None)
+        return None if basis is None else basis.energy_kept()
+
+    def reconstruct(self, settings: Settings):
+        """``(coded, pixels)`` at ``settings.step`` with ``settings``' component count."""
+        import dataclasses
+
+        if not self.compatible(settings):
+            raise InputError("settings changed the transform; make a new preview")
+        analysis = dataclasses.replace(self.analysis, settings=settings)
+        coded = self.codec.quantise(analysis, settings.step)
+        px = planes_to_pixels(coded.planes, self.img.pixels.shape[:2], settings.chroma, self.img.bits)
+        return coded, px
+
+    def numbers(self, coded, pixels) -> Numbers:
+        img = self.img
+        size = self._overhead + len(self.codec.serialise(coded))
+        p = metrics.psnr(img.pixels, pixels, data_range=img.peak)
+        s = metrics.ssim(img.pixels, pixels, data_range=img.peak) if min(img.height, img.width) > 11 else float("nan")
+        raw = img.width * img.height * img.channels * img.bits / 8
+        return Numbers(size, 8 * size / (img.width * img.height), raw / size, p, s, coded.kept, coded.step)

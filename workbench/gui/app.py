@@ -1,0 +1,45 @@
+"""Starting the desktop app."""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+STYLE = """
+QMainWindow, QWidget { background: #23252b; color: #e4e4e8; }
+QGroupBox { border: 1px solid #3a3d46; border-radius: 6px; margin-top: 14px; padding-top: 6px; }
+QGroupBox::title { subcontrol-origin: margin; left: 8px; color: #8fd3b0; }
+QLabel#paneTitle { color: #8fd3b0; font-weight: bold; padding: 2px; }
+QLabel#readoutValue { font-family: monospace; font-size: 13px; }
+QLabel#readout { font-family: monospace; color: #c8c8d0; }
+QWidget#notice { background: #4a3b1c; border-radius: 4px; }
+QListWidget { background: #1c1e22; border: none; }
+QListWidget::item:selected { background: #2f5a48; }
+QPushButton { background: #33363f; border: 1px solid #4a4e59; padding: 3px 10px; border-radius: 4px; }
+QComboBox, QSpinBox, QDoubleSpinBox { background: #2c2f36; border: 1px solid #4a4e59; padding: 2px 4px; }
+QToolBar { border: none; spacing: 6px; }
+"""
+
+
+def create_window(folder=None, store=None):
+    """Build the window (the QApplication must exist) and open ``folder``, the last folder or the samples."""
+    from .window import SAMPLES, MainWindow
+
+    w = MainWindow(store)
+    target = folder or w.store.value("last_folder") or (SAMPLES if SAMPLES.is_dir() else None)
+    if target and Path(target).is_dir():
+        w.open_folder(target)
+    elif folder:
+        w.notice.show_text(f"{folder}: not a folder")
+    return w
+
+
+def main(folder=None) -> int:
+    from PySide6.QtWidgets import QApplication
+
+    app = QApplication.instance() or QApplication(sys.argv[:1])
+    app.setApplicationName("workbench")
+    app.setStyleSheet(STYLE)
+    w = create_window(folder)
+    w.show()
+    return app.exec()

@@ -1,0 +1,174 @@
+"""Three image views whose zoom and pan move together, with a pixel read-out."""
+
+from __future__ import annotations
+
+from PySide6.QtCore import QPointF, QRectF, Qt, Signal
+from PySide6.QtGui import QColor, QPainter, QPen, QPixmap
+from PySide6.QtWidgets import (QFrame, QGraphicsPixmapItem, QGraphicsRectItem, QGraphicsScene, QGraphicsView,
+                               QGridLayout, QLabel, QVBoxLayout, QWidget)
+
+from .imaging import to_qimage
+
+
+class ImageView(QGraphicsView):
+    """One pane: a pixmap in a scene; reports wheel zooms, pans and the hovered pixel."""
+
+    zoomed = Signal(float, QPointF)
+    panned = Signal(int, int)
+    hovered = Signal(int, int)
+
+    def __init__(self, parent=None):
+        super().__init__(parent)
+        self.setScene(QGraphicsScene(self))
+        self.item = QGraphicsPixmapItem()
+        self.item.setTransformationMode(Qt.TransformationMode.FastTransformation)
+        self.scene().addItem(self.item)
+        self.marks: list[QGraphicsRectItem] = []
+        self.setDragMode(QGraphicsView.DragMode.ScrollHandDrag)
+        self.setTransformationAnchor(QGraphicsView.ViewportAnchor.AnchorUnderMouse)
+        self.setMouseTracking(True)
+        self.setBackgroundBrush(QColor(28, 30, 34))
+        self.setFrameShape(QFrame.Shape.NoFrame)
+        self.horizontalScrollBar().valueChanged.connect(self._emit_pan)
+        self.verticalScrollBar().valueChanged.connect(self._emit_pan)
+        self._syncing = False
+
+    def set_array(self, rgb) -> None:
+        self.item.setPixmap(QPixmap.fromImage(to_qimage(rgb)))
+        self.scene().setSceneRect(QRectF(self.item.pixmap().rect()))
+
+    def clear(self) -> None:
+        self.item.setPixmap(QPixmap())
+        self.set_marks([])
+
+    def set_marks(self, rects) -> None:
+        for m in self.marks:
+            self.scene().removeItem(m)
+        self.marks = []
+        pen = QPen(QColor(255, 255, 255), 0)
+        pen.setCosmetic(True)
+        pen.setWidth(2)
+        for x, y, w, h in rects:
+            r = QGraphicsRectItem(x, y, w, h)
+            r.setPen(pen)
+            self.scene().addItem(r)
+            self.marks.append(r)
+
+    def wheelEvent(self, event):
+        factor = 1.25 if event.angleDelta().y() > 0 else 0.8
+        self.zoomed.emit(factor, self.mapToScene(event.position().toPoint()))
+
+    def mouseMoveEvent(self, event):
+        super().mouseMoveEvent(event)
+        p = self.mapToScene(event.position().toPoint())
+        self.hovered.emit(int(p.x()), int(p.y()))
+
+    def _emit_pan(self):
+        if not self._syncing:
+            self.panned.emit(self.horizontalScrollBar().value(), self.verticalScrollBar().value())
+
+    def set_pan(self, x, y):
+        self._syncing = True
+        self.horizontalScrollBar().setValue(x)
+        self.verticalScrollBar().setValue(y)
+        self._syncing = False
+
+
+class Triptych(QWidget):
+    """Original | Reconstruction | Difference, locked together, plus a legend and read-out."""
+
+    hovered = Signal(int, int)
+
+    def __init__(self, parent=None):
+        super().__init__(parent)
+        grid = QGridLayout(self)
+        grid.setContentsMargins(0, 0, 0, 0)
+        grid.setHorizontalSpacing(6)
+        self.titles = []
+        self.views = []
+        for i, title in enumerate(("Original", "Reconstruction", "Difference")):
+            t = QLabel(title)
+            t.setObjectName("paneTitle")
+            v = ImageView()
+            grid.addWidget(t, 0, i)
+            grid.addWidget(v, 1, i)
+            self.titles.append(t)
+            self.views.append(v)
+            v.zoomed.connect(self._zoom)
+            v.panned.connect(lambda x, y, src=v: self._pan(src, x, y))
+            v.hovered.connect(self.hovered)
+        grid.setRowStretch(1, 1)
+        self.legend = QLabel()
+        self.legend_text = QLabel()
+        box = QVBoxLayout()
+        box.setSpacing(0)
+        box.addWidget(self.legend)
+        box.addWidget(self.legend_text)
+        grid.addLayout(box, 2, 2)
+        self.readout = QLabel(" ")
+        self.readout.setObjectName("readout")
+        grid.addWidget(self.readout, 2, 0, 1, 2)
+        self.scale = 1.0
+
+    def _zoom(self, factor, _at):
+        new = min(64.0, max(1 / 32, self.scale * factor))
+        factor = new / self.scale
+        self.scale = new
+        for v in self.views:
+            v.scale(factor, factor)
+
+    def _pan(self, src, x, y):
+        for v in self.views:
+            if v is not src:
+                v.set_pan(x, y)
+
+    def fit(self) -> None:
+        v = self.views[0]
+        rect = v.scene().sceneRect()
+        if rect.isEmpty():
+            return
+        for w in self.views:
+            w.fitInView(rect, Qt.AspectRatioMode.KeepAspectRatio)
+        self.scale = v.transform().m11()
+
+    def one_to_one(self) -> None:
+        for v in self.views:
+            v.resetTransform()
+        self.scale = 1.0
+
+    def set_legend(self, rgb, text: str) -> None:
+        self.legend.setPixmap(QPixmap.fromImage(to_qimage(rgb)))
+        self.legend_text.setText(text)
+
+
+class EnergyCurve(QWidget):
+    """Small plot of the fraction of energy kept against the component count."""
+
+    def __init__(self, parent=None):
+        super().__init__(parent)
+        self.energy = None
+        self.k = 1
+        self.setMinimumHeight(70)
+
+    def set_data(self, energy, k) -> None:
+        self.energy, self.k = energy, k
+        self.update()
+
+    def paintEvent(self, _event):
+        p = QPainter(self)
+        p.setRenderHint(QPainter.RenderHint.Antialiasing)
+        r = self.rect().adjusted(4, 4, -4, -4)
+        p.fillRect(self.rect(), QColor(36, 38, 44))
+        if self.energy is None or len(self.energy) < 2:
+            p.setPen(QColor(150, 150, 150))
+            p.drawText(r, Qt.AlignmentFlag.AlignCenter, "energy curve: KLT only")
+            return
+        e = self.energy
+        n = len(e)
+        pts = [QPointF(r.left() + r.width() * i / (n - 1), r.bottom() - r.height() * float(e[i])) for i in range(n)]
+        p.setPen(QPen(QColor(120, 200, 160), 1.5))
+        for a, b in zip(pts[:-1], pts[1:]):
+            p.drawLine(a, b)
+        x = r.left() + r.width() * (self.k - 1) / (n - 1)
+        p.setPen(QPen(QColor(250, 170, 40), 1))
+        p.drawLine(QPointF(x, r.top()), QPointF(x, r.bottom()))

@@ -1,0 +1,587 @@
+"""The main window: wiring between the core, the panel, the views and the workers."""
+
+from __future__ import annotations
+
+import importlib.metadata as md
+from pathlib import Path
+
+import numpy as np
+from PySide6.QtCore import QSettings, QSize, Qt, QTimer
+from PySide6.QtGui import QAction, QIcon, QKeySequence, QPixmap
+from PySide6.QtWidgets import (QFileDialog, QHBoxLayout, QLabel, QListWidget, QListWidgetItem, QMainWindow,
+                               QMessageBox, QProgressBar, QPushButton, QSplitter, QToolBar, QVBoxLayout, QWidget)
+
+from .. import __version__, bundle, metrics, pipeline
+from ..imagefiles import SourceImage, list_inputs, read_many, write_atomic
+from ..settings import Settings
+from . import imaging
+from .panel import SidePanel
+from .views import Triptych
+from .worker import JobRunner, Lane
+
+ICONS = Path(__file__).resolve().parents[2] / "icons"
+SAMPLES = Path(__file__).resolve().parents[2] / "sample_images"
+CAUTION = ("Lossy compression discards information. Where images are evidence, records or used for "
+           "diagnosis, lossy storage may be restricted: follow local regulations and professional guidelines.")
+THUMB = 96
+
+
+def icon(name: str) -> QIcon:
+    p = ICONS / f"{name}.svg"
+    return QIcon(str(p)) if p.exists() else QIcon()
+
+
+def _thumbnail(img: SourceImage) -> QPixmap:
+    rgb = imaging.display_rgb(img.pixels)
+    step = max(1, max(rgb.shape[:2]) // THUMB)
+    return QPixmap.fromImage(imaging.to_qimage(np.ascontiguousarray(rgb[::step, ::step])))
+
+
+class Notice(QWidget):
+    """A dismissable line of text above the views (skipped files, failed jobs)."""
+
+    def __init__(self, parent=None):
+        super().__init__(parent)
+        self.setObjectName("notice")
+        row = QHBoxLayout(self)
+        row.setContentsMargins(8, 4, 8, 4)
+        self.label = QLabel()
+        self.label.setWordWrap(True)
+        close = QPushButton("Dismiss")
+        close.clicked.connect(self.hide)
+        row.addWidget(self.label, 1)
+        row.addWidget(close)
+        self.hide()
+
+    def show_text(self, text: str) -> None:
+        self.label.setText(text)
+        self.show()
+
+
+class MainWindow(QMainWindow):
+    def __init__(self, store: QSettings | None = None):
+        super().__init__()
+        self.store = store or QSettings("workbench", "workbench")
+        self.setWindowTitle("workbench")
+        self.setWindowIcon(icon("app"))
+        self.folder: Path | None = None
+        self.bundle_path: Path | None = None
+        self.images: list[SourceImage] = []
+        self.index = -1
+        self._previews: dict = {}
+        self._shared: dict = {}
+        self._numbers: dict = {}
+        self._shown = None  # (orig, rec) arrays on screen
+        self.last_numbers = None
+        self.last_error = ""
+
+        self.fit_lane, self.preview_lane, self.numbers_lane = Lane(), Lane(), Lane()
+        self.fit_lane.result.connect(self._on_fitted)
+        self.preview_lane.result.connect(self._on_preview)
+        self.numbers_lane.result.connect(self._on_numbers)
+        for lane in (self.fit_lane, self.preview_lane, self.numbers_lane):
+            lane.error.connect(self._on_lane_error)
+        self.jobs = JobRunner()
+        self.jobs.progress.connect(self._on_job_progress)
+        self.jobs.finished.connect(self._on_job_done)
+        self.jobs.failed.connect(self._on_job_failed)
+
+        self._build()
+        self._restore()
+        self.setAcceptDrops(True)
+
+    # ------------------------------------------------------------------ layout
+    def _build(self):
+        self.thumbs = QListWidget()
+        self.thumbs.setViewMode(QListWidget.ViewMode.IconMode)
+        self.thumbs.setFlow(QListWidget.Flow.LeftToRight)
+        self.thumbs.setWrapping(False)
+        self.thumbs.setIconSize(QSize(THUMB, THUMB))
+        self.thumbs.setFixedHeight(THUMB + 70)
+        self.thumbs.setVerticalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
+        self.thumbs.setSpacing(4)
+        self.thumbs.setMovement(QListWidget.Movement.Static)
+        self.thumbs.currentRowChanged.connect(self.select)
+
+        self.notice = Notice()
+        self.views = Triptych()
+        self.views.hovered.connect(self._on_hover)
+        self.panel = SidePanel()
+        self.panel.changed.connect(self._on_settings_changed)
+        self.panel.diff_changed.connect(self._redraw_difference)
+
+        centre = QWidget()
+        col = QVBoxLayout(centre)
+        col.setContentsMargins(6, 6, 6, 6)
+        col.addWidget(self.thumbs)
+        col.addWidget(self.notice)
+        col.addWidget(self.views, 1)
+        split = QSplitter()
+        split.addWidget(centre)
+        split.addWidget(self.panel)
+        split.setStretchFactor(0, 1)
+        self.setCentralWidget(split)
+
+        self.status_text = QLabel("Open a folder of images to begin.")
+        self.progress = QProgressBar()
+        self.progress.setMaximumWidth(220)
+        self.progress.setRange(0, 1000)
+        self.progress.hide()
+        self.cancel_button = QPushButton("Cancel")
+        self.cancel_button.hide()
+        self.cancel_button.clicked.connect(self.jobs.cancel)
+        sb = self.statusBar()
+        sb.addWidget(self.status_text, 1)
+        sb.addPermanentWidget(self.progress)
+        sb.addPermanentWidget(self.cancel_button)
+
+        def act(text, name, slot, shortcut=None):
+            a = QAction(icon(name), text, self)
+            a.triggered.connect(slot)
+            if shortcut:
+                a.setShortcut(QKeySequence(shortcut))
+            return a
+
+        self.act_open = act("Open folder…", "open-folder", self._ask_folder, "Ctrl+O")
+        self.act_open_bundle = act("Open bundle…", "open-bundle", self._ask_bundle, "Ctrl+Shift+O")
+        self.act_save = act("Save bundle…", "save-bundle", self._ask_save_bundle, "Ctrl+S")
+        self.act_sheet = act("Save quality sheet…", "save-sheet", self._ask_save_sheet, "Ctrl+Shift+S")
+        self.act_fit = act("Fit to window", "zoom-fit", self.views.fit, "Ctrl+0")
+        self.act_one = act("Actual pixels (1:1)", "zoom-one", self.views.one_to_one, "Ctrl+1")
+        self.act_train = act("Train encoder on this folder…", "train", self._ask_train)
+        act_quit = act("Quit", "", self.close, "Ctrl+Q")
+        act_about = act("About workbench", "app", self.show_about)
+
+        m = self.menuBar().addMenu("&File")
+        for a in (self.act_open, self.act_open_bundle, None, self.act_save, self.act_sheet, None, act_quit):
+            m.addSeparator() if a is None else m.addAction(a)
+        v = self.menuBar().addMenu("&View")
+        v.addAction(self.act_fit)
+        v.addAction(self.act_one)
+        t = self.menuBar().addMenu("&Tools")
+        t.addAction(self.act_train)
+        h = self.menuBar().addMenu("&Help")
+        h.addAction(act_about)
+        tb = QToolBar("Main")
+        tb.setObjectName("mainToolbar")
+        tb.setIconSize(QSize(22, 22))
+        for a in (self.act_open, self.act_open_bundle, self.act_save, self.act_sheet, None, self.act_fit, self.act_one):
+            tb.addSeparator() if a is None else tb.addAction(a)
+        self.addToolBar(tb)
+
+    # ------------------------------------------------------------------ settings persistence
+    def _restore(self):
+        geo = self.store.value("geometry")
+        if geo is not None:
+            self.restoreGeometry(geo)
+        else:
+            self.resize(1500, 860)
+        raw = self.store.value("settings")
+        if raw:
+            try:
+                import json
+
+                self.panel.apply(Settings.from_dict(json.loads(raw)))
+            except (ValueError, TypeError):
+                pass
+
+    def closeEvent(self, event):
+        import json
+
+        self.store.setValue("geometry", self.saveGeometry())
+        try:
+            self.store.setValue("settings", json.dumps(self.panel.settings().to_dict()))
+        except ValueError:
+            pass
+        if self.folder is not None:
+            self.store.setValue("last_folder", str(self.folder))
+        self.store.sync()
+        super().closeEvent(event)
+
+    # ------------------------------------------------------------------ opening
+    def open_folder(self, folder) -> None:
+        """Read a folder's images (unreadable ones are listed and skipped)."""
+        folder = Path(folder)
+        try:
+            images, skipped = read_many([folder])
+        except ValueError as exc:
+            self.notice.show_text(str(exc))
+            return
+        self.folder, self.bundle_path = folder, None
+        self.store.setValue("last_folder", str(folder))
+        self._set_images(images)
+        if skipped:
+            names = ", ".join(n for n, _ in skipped)
+            self.notice.show_text(f"Skipped {len(skipped)} unreadable file(s): {names}")
+        else:
+            self.notice.hide()
+        self.status_text.setText(f"{folder}: {len(images)} image(s)")
+
+    def _set_images(self, images):
+        self.images = images
+        self._previews.clear()
+        self._shared.clear()
+        self._numbers.clear()
+        self.thumbs.blockSignals(True)
+        self.thumbs.clear()
+        for img in images:
+            item = QListWidgetItem(QIcon(_thumbnail(img)), self._caption(img))
+            item.setSizeHint(QSize(THUMB + 70, THUMB + 48))
+            self.thumbs.addItem(item)
+        self.thumbs.blockSignals(False)
+        self.index = -1
+        if images:
+            self.thumbs.setCurrentRow(0)
+            self.thumbs.setFocus()
+        else:
+            for v in self.views.views:
+                v.clear()
+
+    def _caption(self, img, n=None) -> str:
+        name = img.name if len(img.name) <= 18 else img.name[:16] + "…"
+        if n is None:
+            return f"{name}\n– bpp · – dB"
+        p = "inf" if n.psnr == float("inf") else f"{n.psnr:.1f}"
+        return f"{name}\n{n.bpp:.2f} bpp · {p} dB"
+
+    def select(self, row: int) -> None:
+        if not (0 <= row < len(self.images)) or row == self.index:
+            return
+        self.index = row
+        if self.thumbs.currentRow() != row:
+            self.thumbs.setCurrentRow(row)
+        self._shown = None
+        self.refresh()
+        QTimer.singleShot(0, self.views.fit)
+
+    def keyPressEvent(self, event):
+        if event.key() in (Qt.Key.Key_Left, Qt.Key.Key_Right) and self.images:
+            step = -1 if event.key() == Qt.Key.Key_Left else 1
+            self.select(min(len(self.images) - 1, max(0, self.index + step)))
+            return
+        super().keyPressEvent(event)
+
+    # ------------------------------------------------------------------ preview pipeline
+    @property
+    def current(self) -> SourceImage | None:
+        return self.images[self.index] if 0 <= self.index < len(self.images) else None
+
+    def _shared_for(self, s: Settings):
+        """Shared side for the current settings, or a marker that it must be fitted first."""
+        if s.method == "conv":
+            from ..codecs import get
+
+            return get("conv").default_model()
+        if s.basis_scope != "folder":
+            return None, None
+        return self._shared.get((s.block, s.chroma, s.kept), (None, "missing"))
+
+    def _on_settings_changed(self):
+        self.refresh()
+
+    def refresh(self) -> None:
+        img = self.current
+        if img is None:
+            return
+        try:
+            s = self.panel.settings()
+        except ValueError as exc:
+            self.status_text.setText(str(exc))
+            return
+        self.panel.show_numbers(None)
+        cached = self._numbers.get((img.name, s.cache_key()))
+        if s.target is not None:
+            self._submit_target(img, s)
+            return
+        key = (img.name, s.method, s.block, s.chroma, s.basis_scope)
+        prev = self._previews.get(key)
+        if prev is None:
+            self.status_text.setText(f"fitting the transform for {img.name}…")
+            self.fit_lane.submit(lambda: self._make_preview(img, s, key), tag=key)
+            return
+        self.panel.show_energy(prev.energy_kept(), s.kept)
+        self.preview_lane.submit(lambda: self._reconstruct(prev, s), tag=(img.name, s))
+        if cached is not None:
+            self._show_numbers(img, cached)
+
+    def _make_preview(self, img, s, key):
+        if s.method == "klt" and s.basis_scope == "folder":
+            skey = (s.block, s.chroma, s.kept)
+            if skey not in self._shared:
+                from ..basisfile import basis_hash
+                from ..codecs import get
+
+                basis, raw = get("klt").prepare_shared(
+                    [pipeline.image_planes(i, s.chroma) for i in self.images], s)
+                self._shared[skey] = (basis, basis_hash(raw))
+        shared, ref = self._shared_for(s)
+        return key, pipeline.ImagePreview(img, s, shared=shared, shared_ref=ref)
+
+    def _on_fitted(self, _tag, value):
+        key, prev = value
+        self._previews[key] = prev
+        self.status_text.setText("")
+        self.refresh()
+
+    def _reconstruct(self, prev, s):
+        coded, px = prev.reconstruct(s)
+        return prev, s, coded, px
+
+    def _on_preview(self, tag, value):
+        prev, s, coded, px = value
+        img = prev.img
+        if img is not self.current:
+            return
+        self._display(img, px)
+        key = (img.name, s.cache_key())
+        if key in self._numbers:
+            self._show_numbers(img, self._numbers[key])
+        else:
+            self.numbers_lane.submit(lambda: (img, s, prev.numbers(coded, px)), tag=key)
+
+    def _submit_target(self, img, s):
+        shared, ref = self._shared_for(s)
+        if ref == "missing":
+            key = (img.name, s.method, s.block, s.chroma, s.basis_scope)
+            self.fit_lane.submit(lambda: self._make_preview(img, s.replace(target=None), key), tag=key)
+            return
+
+        def work():
+            r = pipeline.encode([img], s, shared=shared, shared_ref=ref).images[0]
+            n = pipeline.Numbers(int(round(r.bytes)), r.bpp, r.ratio, r.psnr, r.ssim, r.kept, r.step)
+            return img, s, n, r.reconstruction
+
+        self.preview_lane.submit(work, tag=(img.name, s))
+        self.preview_lane.result.disconnect(self._on_preview)
+        self.preview_lane.result.connect(self._on_target_once)
+
+    def _on_target_once(self, tag, value):
+        self.preview_lane.result.disconnect(self._on_target_once)
+        self.preview_lane.result.connect(self._on_preview)
+        img, s, n, rec = value
+        if img is not self.current:
+            return
+        if rec.ndim == 3 and rec.shape[2] in (2, 4):
+            rec = rec[..., :-1] if rec.shape[2] == 4 else rec[..., 0]
+        self._display(img, rec)
+        self._numbers[(img.name, s.cache_key())] = n
+        self._show_numbers(img, n)
+
+    def _on_numbers(self, key, value):
+        img, s, n = value
+        self._numbers[key] = n
+        if img is self.current and key == (img.name, self.panel.settings().cache_key()):
+            self._show_numbers(img, n)
+
+    def _show_numbers(self, img, n):
+        self.last_numbers = n
+        self.panel.show_numbers(n)
+        row = self.images.index(img) if img in self.images else -1
+        if row >= 0:
+            self.thumbs.item(row).setText(self._caption(img, n))
+
+    def _on_lane_error(self, _tag, msg):
+        self.last_error = msg
+        self.notice.show_text(f"Could not compute the preview: {msg}")
+        try:
+            self.preview_lane.result.disconnect(self._on_target_once)
+            self.preview_lane.result.connect(self._on_preview)
+        except (RuntimeError, TypeError):
+            pass
+
+    # ------------------------------------------------------------------ display
+    def _display(self, img, rec):
+        first = self._shown is None or self._shown[0] is not img.pixels
+        self._shown = (img.pixels, rec, img.peak)
+        if first:
+            self.views.views[0].set_array(imaging.display_rgb(img.pixels))
+        self.views.views[1].set_array(imaging.display_rgb(rec))
+        self._redraw_difference()
+
+    def _redraw_difference(self):
+        if self._shown is None:
+            return
+        orig, rec, peak = self._shown
+        signed = self.panel.diff_mode.currentData()
+        gain = float(self.panel.gain.value())
+        self.views.views[2].set_array(imaging.difference(orig, rec, peak, gain, signed))
+        lim = (128 if signed else 255) / gain
+        label = f"−{lim:.3g} … 0 … +{lim:.3g} levels" if signed else f"0 … {lim:.3g} levels"
+        self.views.set_legend(imaging.legend(signed), f"error in 8-bit levels: {label}")
+        marks = []
+        if self.panel.worst.isChecked() and min(orig.shape[:2]) >= 32:
+            tiles = metrics.tile_psnr(orig, rec, tile=32, data_range=peak)
+            marks = [(x, y, 32, 32) for x, y, p in tiles.worst(5) if np.isfinite(p)]
+        self.views.views[2].set_marks(marks)
+
+    def _on_hover(self, x, y):
+        if self._shown is None:
+            return
+        orig, rec, peak = self._shown
+        if not (0 <= y < orig.shape[0] and 0 <= x < orig.shape[1]):
+            return
+        o, r = orig[y, x], rec[y, x]
+        d = np.asarray(r, dtype=np.int64) - np.asarray(o, dtype=np.int64)
+        fmt = (lambda v: " ".join(str(int(c)) for c in np.atleast_1d(v)))
+        self.views.readout.setText(f"x {x}, y {y}   original {fmt(o)}   reconstruction {fmt(r)}   difference {fmt(d)}")
+
+    # ------------------------------------------------------------------ long jobs
+    def _start_job(self, factory, tag, text):
+        if self.jobs.active:
+            self.status_text.setText("another job is running; cancel it first")
+            return False
+        self.progress.setValue(0)
+        self.progress.show()
+        self.cancel_button.show()
+        self.status_text.setText(text)
+        self.jobs.start(factory, tag)
+        return True
+
+    def _on_job_progress(self, frac, text):
+        self.progress.setValue(int(1000 * frac))
+        if text:
+            self.status_text.setText(text)
+
+    def _end_job(self):
+        self.progress.hide()
+        self.cancel_button.hide()
+
+    def _on_job_done(self, tag, result):
+        self._end_job()
+        kind = tag[0]
+        if kind == "save":
+            self.status_text.setText(f"Saved {tag[1]} ({result.size:,} bytes, {len(result.images)} image(s))")
+        elif kind == "open":
+            contents, decoded = result
+            self._show_bundle(tag[1], contents, decoded)
+        elif kind == "sheet":
+            self.status_text.setText(f"Quality sheet written to {tag[1]}")
+        elif kind == "train":
+            self._on_trained(tag[1], result)
+
+    def _on_job_failed(self, tag, msg):
+        self._end_job()
+        self.last_error = msg
+        if msg == "cancelled":
+            self.status_text.setText("Cancelled; nothing was written.")
+        else:
+            self.notice.show_text(f"{tag[0].capitalize()} failed: {msg}")
+
+    def _protected(self):
+        return set(list_inputs([self.folder])) if self.folder else set()
+
+    def save_bundle(self, path) -> bool:
+        """Encode the folder with the current settings into ``path`` (a background job)."""
+        if not self.images:
+            self.notice.show_text("Nothing to save: open a folder first.")
+            return False
+        s = self.panel.settings()
+        shared, ref = (None, None) if s.method == "klt" else self._shared_for(s)
+        images, protect, path = list(self.images), self._protected(), Path(path)
+
+        def job():
+            result = yield from pipeline.encode_job(images, s, shared=shared, shared_ref=ref, measure=False)
+            write_atomic(path, result.data, protect=protect)
+            return result
+
+        return self._start_job(job, ("save", path), f"saving {path.name}…")
+
+    def _ask_save_bundle(self):
+        start = str(Path(self.store.value("last_save_dir", str(Path.home()))) / ((self.folder.name if self.folder else "images") + ".wbundle"))
+        path, _ = QFileDialog.getSaveFileName(self, "Save bundle", start, "Bundles (*.wbundle)")
+        if path:
+            self.store.setValue("last_save_dir", str(Path(path).parent))
+            self.save_bundle(path)
+
+    def open_bundle(self, path) -> bool:
+        path = Path(path)
+        try:
+            data = path.read_bytes()
+        except OSError as exc:
+            self.notice.show_text(f"Cannot read {path}: {exc.strerror}")
+            return False
+        return self._start_job(lambda: pipeline.decode_job(data), ("open", path), f"decoding {path.name}…")
+
+    def _show_bundle(self, path, contents, decoded):
+        images = [SourceImage(d.name, d.pixels) for d in decoded]
+        self.folder, self.bundle_path = None, path
+        self.panel.apply(contents.settings)
+        self._set_images(images)
+        s = contents.settings
+        self.notice.show_text(f"Showing the decoded images of {path.name} ({contents.size:,} bytes; {s.method}, "
+                              f"block {s.block}, {s.kept} components, chroma {s.chroma}). They are the originals here now.")
+
+    def _ask_bundle(self):
+        path, _ = QFileDialog.getOpenFileName(self, "Open bundle", str(Path.home()), "Bundles (*.wbundle)")
+        if path:
+            self.open_bundle(path)
+
+    def _ask_folder(self):
+        path = QFileDialog.getExistingDirectory(self, "Open image folder", str(self.folder or Path.home()))
+        if path:
+            self.open_folder(path)
+
+    def save_sheet(self, outdir) -> bool:
+        try:
+            from .. import sheet
+        except ImportError:
+            self.notice.show_text("The quality sheet is not available in this build.")
+            return False
+        if not self.images:
+            self.notice.show_text("Nothing to report: open a folder first.")
+            return False
+        s = self.panel.settings()
+        images, outdir = list(self.images), Path(outdir)
+        shared, ref = (None, None) if s.method == "klt" else self._shared_for(s)
+        return self._start_job(lambda: sheet.sheet_job(images, s, outdir, shared=shared, shared_ref=ref,
+                                                       protect=self._protected()),
+                               ("sheet", outdir), "writing the quality sheet…")
+
+    def _ask_save_sheet(self):
+        path = QFileDialog.getExistingDirectory(self, "Folder for the quality sheet", str(Path.home()))
+        if path:
+            self.save_sheet(path)
+
+    def _ask_train(self):
+        from . import training
+
+        training.ask_and_train(self)
+
+    def _on_trained(self, path, result):
+        from . import training
+
+        training.on_trained(self, path, result)
+
+    # ------------------------------------------------------------------ drag and drop, about
+    def dragEnterEvent(self, event):
+        if event.mimeData().hasUrls():
+            event.acceptProposedAction()
+
+    def dropEvent(self, event):
+        for url in event.mimeData().urls():
+            p = Path(url.toLocalFile())
+            if p.is_dir():
+                self.open_folder(p)
+                return
+            if p.suffix == ".wbundle":
+                self.open_bundle(p)
+                return
+        self.notice.show_text("Drop a folder of images or a .wbundle file.")
+
+    def about_text(self) -> str:
+        libs = []
+        for name in ("numpy", "scipy", "Pillow", "scikit-image", "opencv-python-headless", "constriction",
+                     "matplotlib", "PySide6-Essentials", "torch"):
+            try:
+                libs.append(f"{name} {md.version(name)}")
+            except md.PackageNotFoundError:
+                libs.append(f"{name} (not installed)")
+        return (f"<h3>workbench {__version__}</h3>"
+                "<p>Finds how far a folder of images from one source can be compressed, and with which transform: "
+                "a block KLT or a small convolutional encoder learned from the folder, measured in real bytes "
+                "against the standard codecs.</p>"
+                f"<p><b>Caution.</b> {CAUTION}</p>"
+                f"<p><small>{'<br>'.join(libs)}</small></p>")
+
+    def show_about(self):
+        QMessageBox.about(self, "About workbench", self.about_text())

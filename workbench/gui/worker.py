@@ -1,0 +1,153 @@
+"""Running core work off the GUI thread.
+
+:class:`Lane` runs one task at a time on the global thread pool and keeps only the most
+recent request waiting: when a slider moves on, older requests are dropped before they run,
+and a result that arrives after a newer request was made is discarded as stale.
+:class:`JobRunner` drives a core generator job (yielding ``Progress``) with progress
+signals and a cancel flag checked at every yield.
+"""
+
+from __future__ import annotations
+
+import traceback
+
+from PySide6.QtCore import QObject, QRunnable, QThreadPool, Signal
+
+from ..errors import Cancelled, WorkbenchError
+from ..jobs import run
+
+
+class _Signals(QObject):
+    done = Signal(int, object)
+    failed = Signal(int, str)
+    progress = Signal(float, str)
+
+
+class _Task(QRunnable):
+    def __init__(self, gen_id, fn, signals, should_stop=None, on_progress=None):
+        super().__init__()
+        self.gen_id, self.fn, self.signals = gen_id, fn, signals
+        self.should_stop, self.on_progress = should_stop, on_progress
+        self.setAutoDelete(True)
+
+    def run(self):
+        try:
+            out = self.fn()
+            if hasattr(out, "send") and hasattr(out, "throw"):  # a generator job
+                out = run(out, self.on_progress, self.should_stop)
+            self.signals.done.emit(self.gen_id, out)
+        except Cancelled:
+            self.signals.failed.emit(self.gen_id, "cancelled")
+        except (WorkbenchError, OSError, MemoryError) as exc:
+            self.signals.failed.emit(self.gen_id, str(exc).splitlines()[0] if str(exc) else type(exc).__name__)
+        except Exception as exc:  # a bug: report in the window, never crash the app
+            traceback.print_exc()
+            self.signals.failed.emit(self.gen_id, f"internal error: {type(exc).__name__}: {exc}")
+
+
+class Lane(QObject):
+    """Single-flight execution with latest-wins coalescing."""
+
+    result = Signal(object, object)  # (tag, value)
+    error = Signal(object, str)
+    busy = Signal(bool)
+
+    def __init__(self, pool: QThreadPool | None = None, parent=None):
+        super().__init__(parent)
+        self.pool = pool or QThreadPool.globalInstance()
+        self._signals = _Signals()
+        self._signals.done.connect(self._on_done)
+        self._signals.failed.connect(self._on_failed)
+        self._latest = 0
+        self._running = False
+        self._pending = None
+        self._tags = {}
+
+    def submit(self, fn, tag=None) -> int:
+        """Queue ``fn()``; replaces any request still waiting. Returns the request id."""
+        self._latest += 1
+        self._tags[self._latest] = tag
+        self._pending = (self._latest, fn)
+        if not self._running:
+            self._start_pending()
+        return self._latest
+
+    def invalidate(self) -> None:
+        """Forget waiting work and mark what is running as stale."""
+        self._latest += 1
+        self._pending = None
+
+    @property
+    def running(self) -> bool:
+        return self._running
+
+    def _start_pending(self):
+        gen_id, fn = self._pending
+        self._pending = None
+        self._running = True
+        self.busy.emit(True)
+        self.pool.start(_Task(gen_id, fn, self._signals))
+
+    def _finish(self):
+        self._running = False
+        if self._pending is not None:
+            self._start_pending()
+        else:
+            self.busy.emit(False)
+
+    def _on_done(self, gen_id, value):
+        tag = self._tags.pop(gen_id, None)
+        fresh = gen_id == self._latest
+        self._finish()
+        if fresh:
+            self.result.emit(tag, value)
+
+    def _on_failed(self, gen_id, msg):
+        tag = self._tags.pop(gen_id, None)
+        fresh = gen_id == self._latest
+        self._finish()
+        if fresh:
+            self.error.emit(tag, msg)
+
+
+class JobRunner(QObject):
+    """One long job at a time (save, sheet, training) with progress and Cancel."""
+
+    progress = Signal(float, str)
+    finished = Signal(object, object)  # (tag, result)
+    failed = Signal(object, str)
+
+    def __init__(self, pool: QThreadPool | None = None, parent=None):
+        super().__init__(parent)
+        self.pool = pool or QThreadPool.globalInstance()
+        self._signals = _Signals()
+        self._signals.done.connect(self._on_done)
+        self._signals.failed.connect(self._on_failed)
+        self._signals.progress.connect(self.progress)
+        self._cancel = False
+        self._tag = None
+        self._id = 0
+        self.active = False
+
+    def start(self, job_factory, tag=None) -> None:
+        """Run ``job_factory()`` (a generator job) unless another job is active."""
+        if self.active:
+            raise RuntimeError("a job is already running")
+        self._cancel = False
+        self._tag = tag
+        self._id += 1
+        self.active = True
+        sig = self._signals
+        self.pool.start(_Task(self._id, job_factory, sig, should_stop=lambda: self._cancel,
+                              on_progress=lambda p: sig.progress.emit(p.fraction, p.text)))
+
+    def cancel(self) -> None:
+        self._cancel = True
+
+    def _on_done(self, _id, value):
+        self.active = False
+        self.finished.emit(self._tag, value)
+
+    def _on_failed(self, _id, msg):
+        self.active = False
+        self.failed.emit(self._tag, msg)
