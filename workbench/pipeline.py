@@ -375,7 +375,6 @@ class ImagePreview:
         self.codec = codecs.get(settings.method)
         self.shared_ref = shared_ref
         self.analysis = self.codec.analyse(image_planes(img, settings.chroma), settings, shared)
-        self._overhead = _overhead_bytes(img, settings, shared_ref)
 
     def compatible(self, settings: Settings) -> bool:
         """Whether ``settings`` can reuse this fit (only the step, count or target differ)."""
@@ -399,7 +398,7 @@ class ImagePreview:
 
     def numbers(self, coded, pixels) -> Numbers:
         img = self.img
-        size = self._overhead + len(self.codec.serialise(coded))
+        size = _overhead_bytes(img, coded.analysis.settings, self.shared_ref) + len(self.codec.serialise(coded))
         p = metrics.psnr(img.pixels, pixels, data_range=img.peak)
         s = metrics.ssim(img.pixels, pixels, data_range=img.peak) if min(img.height, img.width) > 11 else float("nan")
         raw = img.width * img.height * img.channels * img.bits / 8

@@ -6,7 +6,7 @@ import importlib.metadata as md
 from pathlib import Path
 
 import numpy as np
-from PySide6.QtCore import QSettings, QSize, Qt, QTimer
+from PySide6.QtCore import QSettings, QSize, Qt, QThreadPool, QTimer
 from PySide6.QtGui import QAction, QIcon, QKeySequence, QPixmap
 from PySide6.QtWidgets import (QFileDialog, QHBoxLayout, QLabel, QListWidget, QListWidgetItem, QMainWindow,
                                QMessageBox, QProgressBar, QPushButton, QSplitter, QToolBar, QVBoxLayout, QWidget)
@@ -75,11 +75,12 @@ class MainWindow(QMainWindow):
         self.last_numbers = None
         self.last_error = ""
 
-        self.fit_lane, self.preview_lane, self.numbers_lane = Lane(), Lane(), Lane()
+        self.fit_lane, self.preview_lane, self.numbers_lane, self.target_lane = Lane(), Lane(), Lane(), Lane()
         self.fit_lane.result.connect(self._on_fitted)
         self.preview_lane.result.connect(self._on_preview)
         self.numbers_lane.result.connect(self._on_numbers)
-        for lane in (self.fit_lane, self.preview_lane, self.numbers_lane):
+        self.target_lane.result.connect(self._on_target)
+        for lane in (self.fit_lane, self.preview_lane, self.numbers_lane, self.target_lane):
             lane.error.connect(self._on_lane_error)
         self.jobs = JobRunner()
         self.jobs.progress.connect(self._on_job_progress)
@@ -196,6 +197,10 @@ class MainWindow(QMainWindow):
         if self.folder is not None:
             self.store.setValue("last_folder", str(self.folder))
         self.store.sync()
+        self.jobs.cancel()
+        for lane in (self.fit_lane, self.preview_lane, self.numbers_lane, self.target_lane):
+            lane.invalidate()
+        QThreadPool.globalInstance().waitForDone(30000)  # let running work end before its receivers go
         super().closeEvent(event)
 
     # ------------------------------------------------------------------ opening
@@ -293,6 +298,7 @@ class MainWindow(QMainWindow):
         if s.target is not None:
             self._submit_target(img, s)
             return
+        self.target_lane.invalidate()
         key = (img.name, s.method, s.block, s.chroma, s.basis_scope)
         prev = self._previews.get(key)
         if prev is None:
@@ -351,13 +357,11 @@ class MainWindow(QMainWindow):
             n = pipeline.Numbers(int(round(r.bytes)), r.bpp, r.ratio, r.psnr, r.ssim, r.kept, r.step)
             return img, s, n, r.reconstruction
 
-        self.preview_lane.submit(work, tag=(img.name, s))
-        self.preview_lane.result.disconnect(self._on_preview)
-        self.preview_lane.result.connect(self._on_target_once)
+        self.preview_lane.invalidate()
+        self.numbers_lane.invalidate()
+        self.target_lane.submit(work, tag=(img.name, s))
 
-    def _on_target_once(self, tag, value):
-        self.preview_lane.result.disconnect(self._on_target_once)
-        self.preview_lane.result.connect(self._on_preview)
+    def _on_target(self, tag, value):
         img, s, n, rec = value
         if img is not self.current:
             return
@@ -383,11 +387,6 @@ class MainWindow(QMainWindow):
     def _on_lane_error(self, _tag, msg):
         self.last_error = msg
         self.notice.show_text(f"Could not compute the preview: {msg}")
-        try:
-            self.preview_lane.result.disconnect(self._on_target_once)
-            self.preview_lane.result.connect(self._on_preview)
-        except (RuntimeError, TypeError):
-            pass
 
     # ------------------------------------------------------------------ display
     def _display(self, img, rec):

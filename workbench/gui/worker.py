@@ -35,14 +35,20 @@ class _Task(QRunnable):
             out = self.fn()
             if hasattr(out, "send") and hasattr(out, "throw"):  # a generator job
                 out = run(out, self.on_progress, self.should_stop)
-            self.signals.done.emit(self.gen_id, out)
+            self._emit(self.signals.done, out)
         except Cancelled:
-            self.signals.failed.emit(self.gen_id, "cancelled")
+            self._emit(self.signals.failed, "cancelled")
         except (WorkbenchError, OSError, MemoryError) as exc:
-            self.signals.failed.emit(self.gen_id, str(exc).splitlines()[0] if str(exc) else type(exc).__name__)
+            self._emit(self.signals.failed, str(exc).splitlines()[0] if str(exc) else type(exc).__name__)
         except Exception as exc:  # a bug: report in the window, never crash the app
             traceback.print_exc()
-            self.signals.failed.emit(self.gen_id, f"internal error: {type(exc).__name__}: {exc}")
+            self._emit(self.signals.failed, f"internal error: {type(exc).__name__}: {exc}")
+
+    def _emit(self, signal, value):
+        try:
+            signal.emit(self.gen_id, value)
+        except RuntimeError:
+            pass  # the window closed while this ran: nobody is left to tell
 
 
 class Lane(QObject):

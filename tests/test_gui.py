@@ -1,0 +1,128 @@
+"""The desktop app, offscreen (pytest-qt): the read-outs are the core's own numbers."""
+
+import numpy as np
+import pytest
+from PIL import Image
+
+pytest.importorskip("pytestqt")
+from PySide6.QtCore import QSettings, Qt  # noqa: E402
+
+from workbench import cli, pipeline  # noqa: E402
+from workbench.gui.window import MainWindow  # noqa: E402
+from workbench.imagefiles import SourceImage, read_image  # noqa: E402
+from workbench.settings import Settings  # noqa: E402
+
+
+@pytest.fixture()
+def folder(tmp_path, chelsea, camera):
+    d = tmp_path / "frames"
+    d.mkdir()
+    Image.fromarray(chelsea).save(d / "a_cat.png")
+    Image.fromarray(camera[::2, ::2]).save(d / "b_camera.png")
+    return d
+
+
+@pytest.fixture()
+def window(qtbot, tmp_path):
+    w = MainWindow(QSettings(str(tmp_path / "settings.ini"), QSettings.Format.IniFormat))
+    qtbot.addWidget(w)
+    w.show()
+    return w
+
+
+def _settled(w, expected):
+    n = w.last_numbers
+    return n is not None and n.step == pytest.approx(expected.step) and n.kept == expected.kept
+
+
+def _core_numbers(path, settings):
+    return pipeline.encode([read_image(path)], settings).images[0]
+
+
+def test_readouts_follow_the_slider_and_equal_the_core(qtbot, window, folder):
+    window.open_folder(folder)
+    qtbot.waitUntil(lambda: window.last_numbers is not None, timeout=30000)
+    first = window.last_numbers
+    window.panel.count.setValue(6)
+    s = window.panel.settings()
+    core = _core_numbers(folder / "a_cat.png", s)
+    qtbot.waitUntil(lambda: window.last_numbers is not first and window.last_numbers.kept <= 6, timeout=30000)
+    n = window.last_numbers
+    assert n.bytes == round(core.bytes) and n.bpp == pytest.approx(core.bpp)
+    assert n.psnr == pytest.approx(core.psnr) and n.ssim == pytest.approx(core.ssim)
+    assert n.psnr < first.psnr and n.bytes < first.bytes
+    assert window.panel.readouts["psnr"].text() == f"{core.psnr:.2f} dB"
+    assert "energy kept" in window.panel.energy_label.text()
+
+
+def test_switching_images_updates_the_views_and_numbers(qtbot, window, folder):
+    window.open_folder(folder)
+    qtbot.waitUntil(lambda: window.last_numbers is not None, timeout=30000)
+    a = window.last_numbers
+    qtbot.keyClick(window.thumbs, Qt.Key.Key_Right)
+    qtbot.waitUntil(lambda: window.index == 1 and window.last_numbers is not a, timeout=30000)
+    core = _core_numbers(folder / "b_camera.png", window.panel.settings())
+    qtbot.waitUntil(lambda: window.last_numbers.bytes == round(core.bytes), timeout=30000)
+    assert window._shown[0].shape == (256, 256)
+
+
+def test_saved_bundle_decodes_to_the_pixels_shown(qtbot, window, folder, tmp_path):
+    window.open_folder(folder)
+    qtbot.waitUntil(lambda: window.last_numbers is not None, timeout=30000)
+    shown = window._shown[1].copy()
+    out = tmp_path / "saved.wbundle"
+    with qtbot.waitSignal(window.jobs.finished, timeout=60000):
+        assert window.save_bundle(out)
+    assert cli.main(["decode", str(out), "-o", str(tmp_path / "dec")]) == 0
+    decoded = read_image(tmp_path / "dec" / "a_cat.png").pixels
+    assert np.array_equal(decoded, shown)
+    assert sorted(p.name for p in folder.iterdir()) == ["a_cat.png", "b_camera.png"]  # source folder untouched
+
+
+def test_unreadable_file_is_listed_and_skipped(qtbot, window, folder):
+    (folder / "c_broken.png").write_bytes(b"\x89PNG\r\n\x1a\n garbage")
+    window.open_folder(folder)
+    assert window.notice.isVisible() and "c_broken.png" in window.notice.label.text()
+    assert [i.name for i in window.images] == ["a_cat.png", "b_camera.png"]
+
+
+def test_a_long_job_can_be_cancelled_and_writes_nothing(qtbot, window, tmp_path, astronaut):
+    big = tmp_path / "big"
+    big.mkdir()
+    for i in range(6):
+        Image.fromarray(np.roll(astronaut, 37 * i, axis=1)).save(big / f"f{i}.png")
+    window.open_folder(big)
+    window.panel.rate_mode.setCurrentIndex(window.panel.rate_mode.findData("psnr"))  # slow: searches the step
+    out = tmp_path / "never.wbundle"
+    with qtbot.waitSignal(window.jobs.failed, timeout=60000) as blocker:
+        window.save_bundle(out)
+        qtbot.waitUntil(lambda: window.progress.value() > 0, timeout=30000)
+        qtbot.mouseClick(window.cancel_button, Qt.MouseButton.LeftButton)
+    assert blocker.args[1] == "cancelled" and not out.exists()
+
+
+def test_settings_are_remembered_between_runs(qtbot, tmp_path, folder):
+    store = QSettings(str(tmp_path / "s.ini"), QSettings.Format.IniFormat)
+    w = MainWindow(store)
+    qtbot.addWidget(w)
+    w.panel.apply(Settings(block=16, components=30, step=5.0, chroma="444"))
+    w.folder = folder
+    w.close()
+    w2 = MainWindow(QSettings(str(tmp_path / "s.ini"), QSettings.Format.IniFormat))
+    qtbot.addWidget(w2)
+    s = w2.panel.settings()
+    assert (s.block, s.kept, s.step, s.chroma) == (16, 30, 5.0, "444")
+    assert w2.store.value("last_folder") == str(folder)
+
+
+def test_about_box_carries_the_caution_and_versions(window):
+    text = window.about_text()
+    assert "local regulations and professional guidelines" in text and "numpy" in text
+
+
+def test_difference_view_outlines_the_worst_tiles(qtbot, window, folder):
+    window.open_folder(folder)
+    qtbot.waitUntil(lambda: window._shown is not None, timeout=30000)
+    assert len(window.views.views[2].marks) == 5
+    window.panel.worst.setChecked(False)
+    assert window.views.views[2].marks == []
