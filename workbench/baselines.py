@@ -75,10 +75,14 @@ def encode(b: Baseline, pixels: np.ndarray, knob) -> bytes:
     return buf.getvalue()
 
 
-def decode(data: bytes) -> np.ndarray:
+def decode(data: bytes, grey: bool = False) -> np.ndarray:
+    """Pixels of a baseline file; ``grey`` converts codecs that always decode to colour (WebP)."""
     with Image.open(io.BytesIO(data)) as im:
         im.load()
-        return np.asarray(im)
+        if grey and im.mode not in ("L", "I;16", "I;16B", "I;16L", "I"):
+            im = im.convert("L")
+        a = np.asarray(im)
+        return a.astype(np.uint16) if a.dtype.kind in "iu" and a.dtype.itemsize > 1 else a
 
 
 @dataclass(frozen=True)
@@ -92,9 +96,9 @@ class Point:
 
 def point(b: Baseline, pixels: np.ndarray, knob, *, with_ssim: bool = True) -> Point:
     data = encode(b, pixels, knob)
-    rec = decode(data)
-    if rec.shape != pixels.shape:
-        rec = rec.reshape(pixels.shape)
+    rec = decode(data, grey=pixels.ndim == 2)
+    if rec.shape != pixels.shape or rec.dtype != pixels.dtype:
+        raise InputError(f"{b.name} decoded {rec.shape} {rec.dtype}, expected {pixels.shape} {pixels.dtype}")
     peak = 65535 if pixels.dtype == np.uint16 else 255
     s = metrics.ssim(pixels, rec, data_range=peak) if with_ssim else float("nan")
     return Point(float(knob), len(data), 8 * len(data) / (pixels.shape[0] * pixels.shape[1]),

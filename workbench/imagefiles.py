@@ -151,6 +151,9 @@ def read_image(path: str | os.PathLike, name: str | None = None) -> SourceImage:
         if head.startswith(PNG_SIGNATURE) and _png_is_16bit_colour(path):
             return _read_png16(path, name)
         with warnings.catch_warnings():
+            # Pillow warns about damaged metadata in files it can still read; those files are
+            # fine to use. The bomb warning, though, is an answer: refuse the file.
+            warnings.simplefilter("ignore")
             warnings.simplefilter("error", Image.DecompressionBombWarning)
             with Image.open(path) as im:
                 im.load()

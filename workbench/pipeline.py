@@ -318,7 +318,7 @@ class RDPoint:
     ssim: float
 
 
-DEFAULT_STEPS = (1.5, 2.5, 4.0, 6.0, 9.0, 13.0, 19.0, 28.0)
+DEFAULT_STEPS = (2.0, 3.0, 4.5, 6.5, 9.5, 14.0, 20.0, 30.0, 44.0, 64.0)
 
 
 def rd_points(img: SourceImage, settings: Settings, steps=None, *, shared=None, shared_ref=None,

@@ -1,0 +1,102 @@
+"""The quality sheet: numbers from the decoded bundle, pages present, skipped files listed."""
+
+import csv
+import json
+import re
+
+import numpy as np
+import pytest
+from PIL import Image
+from skimage.metrics import peak_signal_noise_ratio, structural_similarity
+
+from workbench import cli, pipeline
+from workbench.imagefiles import read_image
+
+
+@pytest.fixture(scope="module")
+def sheet_dir(tmp_path_factory):
+    from skimage import data
+
+    src = tmp_path_factory.mktemp("src")
+    Image.fromarray(data.chelsea()[:160, :200]).save(src / "cat.png")
+    Image.fromarray(data.camera()[100:260, 150:330]).save(src / "cam.png")
+    (src / "zz_broken.tif").write_bytes(b"II*\x00garbage")
+    out = tmp_path_factory.mktemp("out")
+    code = cli.main(["sheet", str(src), "-o", str(out), "--baselines", "jpeg,webp", "--step", "6",
+                     "--require-psnr", "30"])
+    return src, out, code
+
+
+def test_all_four_outputs_are_written(sheet_dir):
+    _, out, code = sheet_dir
+    assert code in (0, 1)
+    assert sorted(p.name for p in out.iterdir()) == ["bundle.wbundle", "sheet.csv", "sheet.json", "sheet.pdf"]
+
+
+def test_csv_quality_equals_scikit_image_on_the_decoded_bundle(sheet_dir):
+    src, out, _ = sheet_dir
+    _, decoded = pipeline.decode((out / "bundle.wbundle").read_bytes())
+    got = {d.name: d.pixels for d in decoded}
+    with open(out / "sheet.csv") as f:
+        rows = list(csv.DictReader(f))
+    assert [r["name"] for r in rows] == ["cam.png", "cat.png"]
+    for r in rows:
+        ref = read_image(src / r["name"]).pixels
+        dec = got[r["name"]]
+        ch = 2 if ref.ndim == 3 else None
+        assert float(r["psnr"]) == pytest.approx(peak_signal_noise_ratio(ref, dec, data_range=255), abs=1e-9)
+        sk = structural_similarity(ref, dec, gaussian_weights=True, sigma=1.5, use_sample_covariance=False,
+                                   data_range=255, channel_axis=ch)
+        assert abs(float(r["ssim"]) - sk) < 1e-4
+        assert r["pass"] == str(float(r["psnr"]) >= 30)
+
+
+def test_bytes_in_the_table_add_up_to_the_bundle(sheet_dir):
+    _, out, _ = sheet_dir
+    sheet = json.loads((out / "sheet.json").read_text())
+    assert sum(i["bytes"] for i in sheet["images"]) == pytest.approx((out / "bundle.wbundle").stat().st_size, abs=0.2)
+    assert sheet["bundle"]["bytes"] == (out / "bundle.wbundle").stat().st_size
+
+
+def test_unreadable_file_is_listed_as_skipped(sheet_dir):
+    _, out, _ = sheet_dir
+    sheet = json.loads((out / "sheet.json").read_text())
+    assert [s["name"] for s in sheet["skipped"]] == ["zz_broken.tif"]
+
+
+def test_bd_rates_and_curves_are_reported_per_image_and_for_the_folder(sheet_dir):
+    _, out, _ = sheet_dir
+    sheet = json.loads((out / "sheet.json").read_text())
+    for img in sheet["images"]:
+        assert set(img["bd_rate"]) == {"jpeg", "webp"}
+        assert isinstance(img["bd_rate"]["jpeg"]["psnr"], float)
+    assert set(sheet["folder"]["curves"]) == {"ours", "jpeg", "webp"}
+    assert len(sheet["curves"]["cat.png"]["ours"]) >= 4
+
+
+def test_pdf_has_summary_table_curves_and_tiles_pages(sheet_dir):
+    _, out, _ = sheet_dir
+    pdf = (out / "sheet.pdf").read_bytes()
+    assert pdf.startswith(b"%PDF")
+    assert len(re.findall(rb"/Type\s*/Page[^s]", pdf)) == 4  # summary, table, curves, worst tiles
+
+
+def test_pdf_and_json_carry_the_caution(sheet_dir):
+    _, out, _ = sheet_dir
+    assert "professional guidelines" in json.loads((out / "sheet.json").read_text())["caution"]
+
+
+def test_target_search_reports_the_saving(tmp_path, astronaut, camera):
+    src = tmp_path / "src"
+    src.mkdir()
+    Image.fromarray(astronaut[:200, :200]).save(src / "a.png")
+    Image.fromarray(np.full((200, 200), 128, np.uint8)).save(src / "flat.png")
+    assert cli.main(["sheet", str(src), "-o", str(tmp_path / "o"), "--baselines", "jpeg", "--target-psnr", "36"]) == 0
+    ts = json.loads((tmp_path / "o" / "sheet.json").read_text())["target_search"]
+    assert ts["kind"] == "psnr" and ts["tuned_bytes"] <= ts["one_step_bytes"]
+    assert ts["saving_vs_one_step"] >= 0 and ts["jpeg_bytes"] > 0
+
+
+def test_output_into_the_source_folder_is_refused(tmp_path, camera):
+    Image.fromarray(camera).save(tmp_path / "c.png")
+    assert cli.main(["sheet", str(tmp_path), "-o", str(tmp_path)]) == 2

@@ -1,0 +1,433 @@
+"""The quality sheet: what a folder became, compared fairly with the standard codecs.
+
+``sheet_job`` writes into one folder: ``bundle.wbundle`` (the compressed folder),
+``sheet.pdf``, ``sheet.csv`` and ``sheet.json``. Every per-image number is measured on
+the pixels decoded back from the saved bundle, never estimated. Rate–distortion curves
+give one point per setting, each the size of a real file (ours: a one-image bundle;
+baselines: the file Pillow wrote), and BD-rates follow VCEG-M33 (:mod:`workbench.bdrate`).
+"""
+
+from __future__ import annotations
+
+import csv
+import datetime as _dt
+import hashlib
+import importlib.metadata as md
+import io
+import json
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__, baselines, bdrate, metrics, pipeline
+from .errors import InputError
+from .imagefiles import SourceImage, write_atomic
+from .jobs import Progress
+from .settings import Settings
+
+CAUTION = ("Lossy compression discards information. Where images are evidence, records or used for diagnosis, "
+           "lossy storage may be restricted: follow local regulations and professional guidelines.")
+TILE = 32
+WORST_CROPS = 6
+SWEEP_POINTS = 8
+LIBRARIES = ("numpy", "scipy", "Pillow", "scikit-image", "opencv-python-headless", "constriction", "matplotlib")
+
+
+@dataclass
+class ImageRow:
+    name: str
+    width: int
+    height: int
+    bits: int
+    bytes: float
+    bpp: float
+    ratio: float
+    psnr: float
+    ssim: float
+    worst_tile_psnr: float
+    worst_tile_x: int
+    worst_tile_y: int
+    step: float
+    passed: bool | None
+    curves: dict = field(default_factory=dict)
+    bd: dict = field(default_factory=dict)
+    jpeg_bytes_at_floor: float | None = None
+
+    def table(self) -> dict:
+        return {"name": self.name, "width": self.width, "height": self.height, "bits": self.bits,
+                "bytes": round(self.bytes, 1), "bpp": self.bpp, "ratio": self.ratio, "psnr": self.psnr,
+                "ssim": self.ssim, "worst_tile_psnr": self.worst_tile_psnr, "worst_tile_x": self.worst_tile_x,
+                "worst_tile_y": self.worst_tile_y, "step": self.step, "pass": self.passed}
+
+
+def _versions() -> dict:
+    out = {"workbench": __version__}
+    for name in LIBRARIES:
+        try:
+            out[name] = md.version(name)
+        except md.PackageNotFoundError:
+            out[name] = None
+    return out
+
+
+def _knobs(b: baselines.Baseline, n: int) -> list:
+    k = list(b.knobs)
+    idx = np.unique(np.linspace(0, len(k) - 1, n).round().astype(int))
+    return [k[i] for i in idx]
+
+
+def _bd(ref_pts, test_pts, key) -> float | None:
+    """BD-rate of ``test`` against ``ref``; the reference is limited to the rates the test
+    curve spans (with a margin) so the cubic fits describe the same region."""
+    lo, hi = min(p["bpp"] for p in test_pts), max(p["bpp"] for p in test_pts)
+    near = [p for p in ref_pts if 0.5 * lo <= p["bpp"] <= 2 * hi]
+    if len(near) >= 4:
+        ref_pts = near
+    try:
+        return bdrate.bd_rate([p["bpp"] for p in ref_pts], [p[key] for p in ref_pts],
+                              [p["bpp"] for p in test_pts], [p[key] for p in test_pts])
+    except InputError:
+        return None
+
+
+def _jpeg_bytes_meeting(img: SourceImage, kind: str, floor: float) -> float | None:
+    """Smallest Pillow JPEG (bisection on quality) whose PSNR/SSIM reaches ``floor``."""
+    b = baselines.get("jpeg")
+    if not baselines.supports(b, img.pixels):
+        return None
+    lo, hi = 1, 100
+    best = None
+    while lo <= hi:
+        q = (lo + hi) // 2
+        p = baselines.point(b, img.pixels, q, with_ssim=(kind == "ssim"))
+        value = p.psnr if kind == "psnr" else p.ssim
+        if value >= floor:
+            best, hi = p.bytes, q - 1
+        else:
+            lo = q + 1
+    return best
+
+
+def _curves(img: SourceImage, settings: Settings, names, shared, shared_ref) -> dict:
+    ours_settings = settings.replace(target=None)
+    pts = pipeline.rd_points(img, ours_settings, shared=shared, shared_ref=shared_ref)
+    curves = {"ours": [{"bpp": p.bpp, "psnr": p.psnr, "ssim": p.ssim, "bytes": p.bytes, "knob": p.step} for p in pts]}
+    for n in names:
+        b = baselines.get(n)
+        if not baselines.supports(b, img.pixels):
+            continue
+        curves[n] = [{"bpp": p.bpp, "psnr": p.psnr, "ssim": p.ssim, "bytes": p.bytes, "knob": p.knob}
+                     for p in baselines.sweep(b, img.pixels, _knobs(b, SWEEP_POINTS))]
+    return curves
+
+
+def _finite(v):
+    return None if v is None or not np.isfinite(v) else float(v)
+
+
+def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline_names=("jpeg", "jpeg2000", "webp", "avif"),
+              require_psnr: float | None = None, require_ssim: float | None = None, shared=None, shared_ref=None,
+              protect=None, skipped=()):
+    """Generator job writing the bundle and the sheet into ``outdir``; returns the sheet dict."""
+    if not images:
+        raise InputError("no readable images to report on")
+    names = [baselines.get(n).name for n in baseline_names]
+    outdir = Path(outdir)
+    total = 4 + len(images)
+    yield Progress(0, total, "encoding the bundle")
+    result = yield from _scaled(pipeline.encode_job(images, settings, shared=shared, shared_ref=shared_ref,
+                                                    measure=False), 0, 1, total)
+    write_atomic(outdir / "bundle.wbundle", result.data, protect=protect)
+    digest = hashlib.sha256(result.data).hexdigest()
+    yield Progress(1, total, "decoding the saved bundle")
+    _, decoded = pipeline.decode(result.data, shared=shared, shared_ref=shared_ref)
+    rows: list[ImageRow] = []
+    crops = []
+    for img, enc, dec in zip(images, result.images, decoded):
+        px = dec.pixels[..., : img.pixels.shape[2]] if img.pixels.ndim == 3 else (
+            dec.pixels if dec.pixels.ndim == 2 else dec.pixels[..., 0])
+        p = metrics.psnr(img.pixels, px, data_range=img.peak)
+        s = metrics.ssim(img.pixels, px, data_range=img.peak) if min(img.height, img.width) > 11 else float("nan")
+        tiles = metrics.tile_psnr(img.pixels, px, tile=TILE, data_range=img.peak)
+        wx, wy, wp = tiles.worst(1)[0]
+        ok = None
+        if require_psnr is not None or require_ssim is not None:
+            ok = (require_psnr is None or p >= require_psnr) and (require_ssim is None or s >= require_ssim)
+        rows.append(ImageRow(img.name, img.width, img.height, img.bits, enc.bytes, enc.bpp, enc.ratio, p, s,
+                             wp, wx, wy, enc.step, ok))
+        crops.append((wp, img, px, wx, wy))
+    yield Progress(2, total, "rate–distortion curves")
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        futures = [pool.submit(_curves, img, settings, names, shared, shared_ref) for img in images]
+        try:
+            for i, (row, fut) in enumerate(zip(rows, futures)):
+                row.curves = fut.result()
+                for n in names:
+                    if n in row.curves:
+                        row.bd[n] = {"psnr": _bd(row.curves[n], row.curves["ours"], "psnr"),
+                                     "ssim": _bd(row.curves[n], row.curves["ours"], "ssim")}
+                yield Progress(3 + i, total, f"curves for {row.name}")
+        except GeneratorExit:
+            for f in futures:
+                f.cancel()
+            raise
+    target = settings.target
+    search = None
+    if target is not None and target[0] in ("psnr", "ssim"):
+        yield Progress(total - 1, total, "comparing with one step for all images")
+        search = _target_summary(images, settings, rows, shared, shared_ref)
+    folder = _folder_curves(rows, names)
+    sheet = {
+        "title": "workbench quality sheet",
+        "date": _dt.datetime.now().astimezone().isoformat(timespec="seconds"),
+        "versions": _versions(),
+        "settings": settings.to_dict(),
+        "bundle": {"file": "bundle.wbundle", "bytes": len(result.data), "sha256": digest},
+        "floors": {"psnr": require_psnr, "ssim": require_ssim},
+        "totals": {"images": len(rows), "pixels": int(sum(r.width * r.height for r in rows)),
+                   "raw_bytes": float(sum(r.width * r.height * (3 if img.channels == 3 else 1) * img.bits / 8
+                                          for r, img in zip(rows, images))),
+                   "bundle_bytes": len(result.data),
+                   "passed": None if rows[0].passed is None else int(sum(bool(r.passed) for r in rows))},
+        "images": [dict(r.table(), bd_rate=r.bd) for r in rows],
+        "curves": {r.name: r.curves for r in rows},
+        "folder": folder,
+        "target_search": search,
+        "skipped": [{"name": n, "reason": why} for n, why in skipped],
+        "caution": CAUTION,
+    }
+    sheet["totals"]["saving_vs_raw"] = 1 - sheet["totals"]["bundle_bytes"] / sheet["totals"]["raw_bytes"]
+    yield Progress(total - 0.5, total, "writing the PDF")
+    crops.sort(key=lambda c: c[0])
+    write_atomic(outdir / "sheet.json", json.dumps(_jsonable(sheet), indent=1).encode(), protect=protect)
+    write_atomic(outdir / "sheet.csv", _csv(rows), protect=protect)
+    write_atomic(outdir / "sheet.pdf", _pdf(sheet, rows, crops[:WORST_CROPS]), protect=protect)
+    yield Progress(total, total, "done")
+    return sheet
+
+
+def _scaled(job, a, b, total):
+    """Run a sub-job, mapping its progress into [a, b] of ``total``."""
+    try:
+        while True:
+            p = next(job)
+            yield Progress(a + (b - a) * p.fraction, total, p.text)
+    except StopIteration as stop:
+        return stop.value
+
+
+def _jsonable(o):
+    if isinstance(o, dict):
+        return {k: _jsonable(v) for k, v in o.items()}
+    if isinstance(o, (list, tuple)):
+        return [_jsonable(v) for v in o]
+    if isinstance(o, (float, np.floating)):
+        return _finite(o) if not (o == float("inf")) else "inf"
+    if isinstance(o, np.integer):
+        return int(o)
+    return o
+
+
+def _csv(rows) -> bytes:
+    buf = io.StringIO()
+    w = csv.writer(buf)
+    header = list(rows[0].table())
+    w.writerow(header)
+    for r in rows:
+        w.writerow([("" if v is None else v) for v in r.table().values()])
+    return buf.getvalue().encode()
+
+
+def _aggregate(subset, key) -> list[dict]:
+    m = min(len(r.curves[key]) for r in subset)
+    px = sum(r.width * r.height for r in subset)
+    pts = [{"bpp": sum(8 * r.curves[key][i]["bytes"] for r in subset) / px,
+            "psnr": float(np.mean([min(r.curves[key][i]["psnr"], 99.0) for r in subset])),
+            "ssim": float(np.mean([r.curves[key][i]["ssim"] for r in subset]))} for i in range(m)]
+    return sorted(pts, key=lambda p: p["bpp"])
+
+
+def _folder_curves(rows, names) -> dict:
+    """Folder-level curves: at each setting, total bits over total pixels and mean quality.
+
+    Computed over the images that every compared codec can carry (16-bit images only go
+    through JPEG 2000), so all curves describe the same pictures.
+    """
+    common = [r for r in rows if all(n in r.curves for n in names)]
+    out = {"images": [r.name for r in common], "curves": {}, "bd_rate": {}}
+    if not common:
+        return out
+    out["curves"]["ours"] = _aggregate(common, "ours")
+    for n in names:
+        out["curves"][n] = _aggregate(common, n)
+        out["bd_rate"][n] = {"psnr": _bd(out["curves"][n], out["curves"]["ours"], "psnr"),
+                             "ssim": _bd(out["curves"][n], out["curves"]["ours"], "ssim")}
+    return out
+
+
+def _target_summary(images, settings, rows, shared, shared_ref) -> dict:
+    """Per-image cheapest step meeting the floor, against one step for every image and JPEG."""
+    kind, floor = settings.target
+    one_step = min(r.step for r in rows)
+    uniform = pipeline.encode(images, settings.replace(target=None, step=one_step), shared=shared,
+                              shared_ref=shared_ref, measure=False)
+    tuned = sum(r.bytes for r in rows)
+    jpeg = [_jpeg_bytes_meeting(img, kind, floor) for img in images]
+    jpeg_total = None if any(j is None for j in jpeg) else float(sum(jpeg))
+    for r, j in zip(rows, jpeg):
+        r.jpeg_bytes_at_floor = j
+    return {"kind": kind, "floor": floor, "tuned_bytes": tuned, "one_step": one_step,
+            "one_step_bytes": uniform.size, "saving_vs_one_step": 1 - tuned / uniform.size,
+            "jpeg_bytes": jpeg_total, "saving_vs_jpeg": None if jpeg_total is None else 1 - tuned / jpeg_total,
+            "per_image_jpeg_bytes": {r.name: j for r, j in zip(rows, jpeg)}}
+
+
+# ------------------------------------------------------------------ PDF
+
+COLOURS = {"ours": "#1b7f5e", "jpeg": "#c0392b", "jpeg2000": "#7d5ba6", "webp": "#d68910", "avif": "#2e86c1"}
+A4 = (8.27, 11.69)
+
+
+def _page(fig, sheet, number):
+    fig.text(0.06, 0.975, f"{sheet['title']} — {sheet['date']}", fontsize=8, color="#555555", va="top")
+    fig.text(0.94, 0.975, f"page {number}", fontsize=8, color="#555555", va="top", ha="right")
+    fig.text(0.06, 0.02, "Caution: " + CAUTION, fontsize=6.5, color="#7a4b00", wrap=True)
+
+
+def _fmt(v, spec):
+    if v is None:
+        return "–"
+    if isinstance(v, str):
+        return v
+    if v == float("inf"):
+        return "inf"
+    return format(v, spec)
+
+
+def _pdf(sheet, rows, crops) -> bytes:
+    from matplotlib.backends.backend_pdf import PdfPages
+    from matplotlib.figure import Figure
+
+    buf = io.BytesIO()
+    pages = 0
+    with PdfPages(buf) as pdf:
+        # 1. summary
+        fig = Figure(figsize=A4)
+        pages += 1
+        _page(fig, sheet, pages)
+        s = sheet["settings"]
+        t = sheet["totals"]
+        lines = [
+            f"workbench {sheet['versions']['workbench']}   bundle {sheet['bundle']['file']}: "
+            f"{sheet['bundle']['bytes']:,} bytes, sha256 {sheet['bundle']['sha256'][:32]}…",
+            f"Method {s['method']}, block {s['block']}, components {s['components'] or 'all'}, chroma {s['chroma']}, "
+            f"basis {s['basis_scope']}, " + (f"target {s['target'][0]} {s['target'][1]}" if s["target"] else f"step {s['step']}"),
+            f"{t['images']} images, {t['pixels'] / 1e6:.2f} Mpixel; raw {t['raw_bytes'] / 1e6:.2f} MB -> bundle "
+            f"{t['bundle_bytes'] / 1e6:.3f} MB (saving {100 * t['saving_vs_raw']:.1f} %)",
+            "Libraries: " + ", ".join(f"{k} {v}" for k, v in sheet["versions"].items() if k != "workbench"),
+        ]
+        if t["passed"] is not None:
+            fl = sheet["floors"]
+            lines.append(f"Floors: PSNR >= {fl['psnr']}  SSIM >= {fl['ssim']}:  {t['passed']} of {t['images']} images pass")
+        ts = sheet["target_search"]
+        if ts:
+            lines.append(f"Target {ts['kind']} >= {ts['floor']}: per-image steps {ts['tuned_bytes']:,.0f} bytes; one step "
+                         f"({ts['one_step']:.3g}) for all {ts['one_step_bytes']:,} bytes -> saving "
+                         f"{100 * ts['saving_vs_one_step']:.1f} %" + (
+                             f"; JPEG at the same floor {ts['jpeg_bytes']:,.0f} bytes -> saving {100 * ts['saving_vs_jpeg']:.1f} %"
+                             if ts["jpeg_bytes"] else ""))
+        if sheet["skipped"]:
+            lines.append("Skipped (unreadable): " + ", ".join(x["name"] for x in sheet["skipped"]))
+        fig.text(0.06, 0.94, "Quality sheet", fontsize=18, weight="bold", va="top")
+        y = 0.905
+        for line in lines:
+            fig.text(0.06, y, line, fontsize=7.5, va="top", wrap=True)
+            y -= 0.024
+        folder = sheet["folder"]
+        for j, key in enumerate(("psnr", "ssim")):
+            ax = fig.add_axes([0.1, 0.44, 0.82, 0.27] if j == 0 else [0.1, 0.1, 0.82, 0.27])
+            for name, pts in folder["curves"].items():
+                ax.plot([p["bpp"] for p in pts], [p[key] for p in pts], "o-", ms=3, color=COLOURS.get(name, "k"),
+                        label="ours (" + s["method"] + ")" if name == "ours" else baselines.BASELINES[name].label)
+            ax.set_xlabel("bits per pixel (whole file)")
+            ax.set_ylabel("mean PSNR (dB)" if key == "psnr" else "mean SSIM")
+            ax.grid(alpha=0.3)
+            ax.legend(fontsize=7)
+            bd = ", ".join(f"{n}: {_fmt(v[key], '+.1f')} %" for n, v in folder["bd_rate"].items())
+            ax.set_title(f"Folder ({len(folder['images'])} of {len(rows)} images: those every codec carries), "
+                         f"{key.upper()} vs rate.\nBD-rate of ours ({key.upper()}): {bd}", fontsize=8)
+        pdf.savefig(fig)
+
+        # 2. per-image table
+        cols = ["name", "size", "bytes", "bpp", "ratio", "PSNR", "SSIM", "worst tile", "at", "pass"]
+        per_page = 34
+        for start in range(0, len(rows), per_page):
+            fig = Figure(figsize=A4)
+            pages += 1
+            _page(fig, sheet, pages)
+            fig.text(0.06, 0.94, "Per image (measured on the decoded bundle)", fontsize=13, weight="bold", va="top")
+            ax = fig.add_axes([0.04, 0.06, 0.92, 0.84])
+            ax.axis("off")
+            cell = [[r.name[:28], f"{r.width}x{r.height}", f"{r.bytes:,.0f}", f"{r.bpp:.3f}", f"{r.ratio:.1f}",
+                     _fmt(r.psnr, ".2f"), _fmt(r.ssim, ".4f"), _fmt(r.worst_tile_psnr, ".2f"),
+                     f"{r.worst_tile_x},{r.worst_tile_y}", {None: "–", True: "pass", False: "FAIL"}[r.passed]]
+                    for r in rows[start:start + per_page]]
+            tab = ax.table(cellText=cell, colLabels=cols, loc="upper center", cellLoc="right")
+            tab.auto_set_font_size(False)
+            tab.set_fontsize(6.5)
+            tab.scale(1, 1.25)
+            pdf.savefig(fig)
+
+        # 3. per-image RD curves
+        per = 6
+        for start in range(0, len(rows), per):
+            fig = Figure(figsize=A4)
+            pages += 1
+            _page(fig, sheet, pages)
+            fig.text(0.06, 0.94, "Rate–distortion per image (PSNR; star = saved setting)", fontsize=13,
+                     weight="bold", va="top")
+            for i, r in enumerate(rows[start:start + per]):
+                ax = fig.add_axes([0.1 + (i % 2) * 0.45, 0.66 - (i // 2) * 0.29, 0.37, 0.22])
+                for name, pts in r.curves.items():
+                    ax.plot([p["bpp"] for p in pts], [min(p["psnr"], 99) for p in pts], "o-", ms=2.5,
+                            color=COLOURS.get(name, "k"), label=name)
+                ax.plot([r.bpp], [min(r.psnr, 99)], "*", ms=10, color=COLOURS["ours"])
+                bd = " ".join(f"{n} {_fmt(v['psnr'], '+.0f')}%" for n, v in r.bd.items())
+                ax.set_title(f"{r.name[:30]}\nBD-rate: {bd}", fontsize=6.5)
+                ax.tick_params(labelsize=6)
+                ax.set_xlabel("bpp", fontsize=6)
+                ax.grid(alpha=0.3)
+                if i == 0:
+                    ax.legend(fontsize=5.5)
+            pdf.savefig(fig)
+
+        # 4. worst tiles
+        fig = Figure(figsize=A4)
+        pages += 1
+        _page(fig, sheet, pages)
+        fig.text(0.06, 0.94, f"Worst {TILE}-pixel tiles: original | reconstruction | difference x8", fontsize=13,
+                 weight="bold", va="top")
+        from matplotlib.patches import Rectangle
+
+        from .display import difference, display_rgb
+
+        for i, (tp, img, px, x, y) in enumerate(crops):
+            pad = TILE
+            y0, x0 = max(0, y - pad), max(0, x - pad)
+            y1, x1 = min(img.height, y + TILE + pad), min(img.width, x + TILE + pad)
+            o, rc = img.pixels[y0:y1, x0:x1], px[y0:y1, x0:x1]
+            for j, (arr, label) in enumerate(((display_rgb(o), "original"), (display_rgb(rc), "reconstruction"),
+                                              (difference(o, rc, img.peak, 8.0), "difference"))):
+                ax = fig.add_axes([0.06 + j * 0.3, 0.78 - i * 0.125, 0.27, 0.11])
+                ax.imshow(arr, interpolation="nearest")
+                ax.add_patch(Rectangle((x - x0 - 0.5, y - y0 - 0.5), TILE, TILE, fill=False, ec="white", lw=0.8))
+                ax.set_xticks([])
+                ax.set_yticks([])
+                if j == 0:
+                    ax.set_ylabel(f"{img.name[:16]}\n({x},{y}) {tp:.1f} dB", fontsize=6)
+                if i == 0:
+                    ax.set_title(label, fontsize=8)
+        pdf.savefig(fig)
+    return buf.getvalue()
