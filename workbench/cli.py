@@ -167,7 +167,7 @@ def cmd_fit_basis(a) -> int:
     if not images:
         raise WorkbenchError("no readable images to fit a basis on")
     s = Settings(block=a.block, chroma=a.chroma, basis_scope="folder")
-    basis, _ = CODEC.prepare_shared([pipeline.image_planes(i, s.chroma) for i in images], s)
+    basis, _, _ = CODEC.prepare_shared([pipeline.image_planes(i, s.chroma) for i in images], s)
     if Path(a.output).resolve() in {p.resolve() for p in list_inputs(a.inputs)}:
         raise WorkbenchError(f"{a.output}: refusing to overwrite a source image")
     digest = save_basis(a.output, basis, sources=[i.name for i in images])

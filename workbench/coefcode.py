@@ -153,6 +153,19 @@ class _Writer:
         models.update(ctx, tok)
         if signed:
             self.raw.append((values[mag > 0] < 0).astype(np.uint8))
+        self._mantissas(nbits, mag)
+
+    def put_fixed(self, probs: np.ndarray, values: np.ndarray) -> None:
+        """Signed values under one fixed token distribution (for learned models)."""
+        values = values.reshape(-1)
+        mag = np.abs(values)
+        tok, nbits = _tokens(mag)
+        if tok.size:
+            self.enc.encode(tok.astype(np.int32), constriction.stream.model.Categorical(probs, perfect=False))
+        self.raw.append((values[mag > 0] < 0).astype(np.uint8))
+        self._mantissas(nbits, mag)
+
+    def _mantissas(self, nbits, mag):
         esc = nbits > 0
         if esc.any():
             nb, m = nbits[esc], mag[esc]
@@ -198,6 +211,20 @@ class _Reader:
         except Exception as exc:
             raise BundleError(f"coefficient stream is not decodable ({exc})") from None
         models.update(ctx, tok)
+        return self._values(tok, signed)
+
+    def get_fixed(self, probs: np.ndarray, n: int) -> np.ndarray:
+        """Inverse of :meth:`_Writer.put_fixed`."""
+        if n == 0:
+            return np.zeros(0, np.int64)
+        try:
+            model = constriction.stream.model.Categorical(probs, perfect=False)
+            tok = np.asarray(self.dec.decode(model, n), dtype=np.int64)
+        except Exception as exc:
+            raise BundleError(f"latent stream is not decodable ({exc})") from None
+        return self._values(tok, True)
+
+    def _values(self, tok: np.ndarray, signed: bool) -> np.ndarray:
         esc = tok >= DIRECT
         mag = np.where(esc, 0, tok)
         nz = tok > 0
@@ -213,6 +240,29 @@ class _Reader:
         if signed:
             mag[nz] = np.where(signs == 1, -mag[nz], mag[nz])
         return mag
+
+
+def laplace_token_counts(scale: float, total: int = 1 << 16) -> np.ndarray:
+    """Integer token counts of a zero-mean Laplace of ``scale`` (quantiser units), rounded
+    integers with a floor of one so every token stays codable."""
+    b = max(scale, 1e-6)
+    edges = np.concatenate([np.arange(DIRECT) + 0.5, 2.0 ** np.arange(5, MAX_BITS + 1) - 0.5])
+    tail = np.exp(-edges / b)  # P(|k| > edge) for the folded Laplace
+    mass = -np.diff(np.concatenate([[1.0], tail]))
+    return np.maximum(1, np.round(mass * total)).astype(np.int64)
+
+
+def encode_fixed(channels: list[np.ndarray], counts: list[np.ndarray]) -> bytes:
+    """Each array of ``channels`` coded under its own fixed token distribution."""
+    w = _Writer()
+    for v, c in zip(channels, counts):
+        w.put_fixed(c.astype(np.float64), np.asarray(v, dtype=np.int64))
+    return w.finish()
+
+
+def decode_fixed(data: bytes, sizes: list[int], counts: list[np.ndarray]) -> list[np.ndarray]:
+    rd = _Reader(data)
+    return [rd.get_fixed(c.astype(np.float64), n) for n, c in zip(sizes, counts)]
 
 
 def _new_models():

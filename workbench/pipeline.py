@@ -213,11 +213,12 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
     total = len(images) + 1
     shared_bytes = None
     yield Progress(0, total, "preparing")
+    if shared is None:
+        shared, shared_bytes, shared_ref = codec.prepare_shared(
+            [image_planes(i, settings.chroma) for i in images] if settings.basis_scope == "folder" else None,
+            settings)
     if shared is not None and embed:
         shared_bytes, shared_ref = codec.shared_to_bytes(shared), None
-    elif shared is None:
-        shared, shared_bytes = codec.prepare_shared([image_planes(i, settings.chroma) for i in images]
-                                                    if settings.basis_scope == "folder" else None, settings)
     payloads, alphas, results = [], [], []
     for n, img in enumerate(images):
         yield Progress(n + 0.5, total, f"encoding {img.name}")

@@ -74,6 +74,9 @@ class Settings:
             raise InputError(f"deadzone rounding offset must be in (0, 0.5], got {self.deadzone!r}")
         if self.latent is not None and int(self.latent) < 1:
             raise InputError(f"latent channels must be at least 1, got {self.latent!r}")
+        if self.method == "conv" and self.chroma != "444":
+            # The learned encoder works on full-resolution planes.
+            object.__setattr__(self, "chroma", "444")
         if self.target is not None:
             kind, value = self.target
             if kind not in TARGET_KINDS:

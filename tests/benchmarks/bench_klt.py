@@ -85,7 +85,7 @@ def section_folder_basis():
         train, test = imgs[:half], imgs[half:]
         s = Settings(basis_scope="folder")
         codec = workbench.codecs.get("klt")
-        basis, raw = codec.prepare_shared([pipeline.image_planes(SourceImage("t", t), s.chroma) for t in train], s)
+        basis, raw, _ = codec.prepare_shared([pipeline.image_planes(SourceImage("t", t), s.chroma) for t in train], s)
         ref = workbench.basisfile.basis_hash(raw)
         bds, bds_own = [], []
         for i, img in enumerate(test):

@@ -81,14 +81,14 @@ class KLTCodec:
 
     # ------------------------------------------------------------- shared side
     def prepare_shared(self, plane_sets, settings):
-        """Folder scope: one basis for all images, returned with its stored bytes (the basis
-        is rebuilt from those bytes so the encoder uses what the decoder will). Image scope
-        (``plane_sets`` is None): nothing shared."""
+        """``(shared, bytes_to_store, reference)``. Folder scope: one basis for all images,
+        stored in the bundle (rebuilt from its stored bytes so the encoder uses what the
+        decoder will). Image scope (``plane_sets`` is None): nothing shared."""
         if plane_sets is None:
-            return None, None
+            return None, None, None
         patches = (tiling.to_patches(p, settings.block) for planes in plane_sets for p in planes)
         data = basis_to_bytes(klt.fit_basis(patches, settings.block), settings.kept)
-        return basis_from_bytes(data), data
+        return basis_from_bytes(data), data, None
 
     def shared_from_bytes(self, data: bytes) -> klt.Basis:
         return basis_from_bytes(data)

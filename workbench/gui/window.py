@@ -317,7 +317,7 @@ class MainWindow(QMainWindow):
                 from ..basisfile import basis_hash
                 from ..codecs import get
 
-                basis, raw = get("klt").prepare_shared(
+                basis, raw, _ = get("klt").prepare_shared(
                     [pipeline.image_planes(i, s.chroma) for i in self.images], s)
                 self._shared[skey] = (basis, basis_hash(raw))
         shared, ref = self._shared_for(s)

@@ -1,0 +1,180 @@
+"""Learned codec: conv encoder -> latents -> scalar quantiser -> per-channel learned tables.
+
+Per image payload::
+
+    step index i8 (quantiser step 2**(i/8)) | kept u16 | latent stream
+
+Only the first ``kept`` latent channels are coded (nested-dropout order). The decoder
+reads the table of each channel from the model file (integers), so decoding elsewhere
+gives the same latents; the pixels then come from the same torch decoder.
+The model works on full-resolution Y, Cb, Cr planes scaled to [0, 1] (grey images: Y
+with neutral chroma; only Y is kept on decoding).
+"""
+
+from __future__ import annotations
+
+import struct
+from dataclasses import dataclass
+from functools import lru_cache
+from pathlib import Path
+
+import numpy as np
+
+from .. import coefcode
+from ..errors import BundleError, InputError
+from ..modelfile import ModelData, parse_model, read_model
+
+DEFAULT_MODEL = Path(__file__).resolve().parents[1] / "models" / "default.wmodel"
+_HEAD = struct.Struct("<bH")
+STEP_INDEX_RANGE = (-64, 64)
+
+
+class Model:
+    """A loaded model: torch modules in eval mode plus its entropy tables."""
+
+    def __init__(self, data: ModelData):
+        import torch
+
+        from ..conv_model import Arch, Autoencoder
+
+        self.data = data
+        self.sha256 = data.sha256
+        self.arch = Arch(**data.arch)
+        net = Autoencoder(self.arch)
+        state = {k: torch.from_numpy(v.copy()) for k, v in data.weights.items()}
+        try:
+            net.load_state_dict(state, strict=True)
+        except RuntimeError as exc:
+            raise BundleError(f"model weights do not fit the architecture ({str(exc).splitlines()[0]})") from None
+        net.eval()
+        self.net = net
+
+    @property
+    def channels(self) -> int:
+        return self.arch.latent
+
+
+@lru_cache(maxsize=4)
+def _load_default() -> Model:
+    if not DEFAULT_MODEL.exists():
+        raise InputError("the shipped conv model is missing; train one with `workbench train` and pass --model")
+    return Model(read_model(DEFAULT_MODEL))
+
+
+@dataclass
+class Analysis:
+    latents: np.ndarray
+    shape: tuple[int, int]
+    grey: bool
+    model: Model
+    settings: object
+
+
+@dataclass
+class Coded:
+    step: float
+    step_index: int
+    q: np.ndarray
+    kept: int
+    analysis: Analysis
+    _planes: list | None = None
+
+    @property
+    def planes(self):
+        if self._planes is None:
+            a = self.analysis
+            self._planes = _synthesise(a.model, self.q, self.step, a.shape, a.grey)
+        return self._planes
+
+
+def _synthesise(model: Model, q: np.ndarray, step: float, shape, grey: bool):
+    from ..conv_model import decode_array
+
+    y = np.zeros((model.channels,) + q.shape[1:], np.float32)
+    y[: q.shape[0]] = q.astype(np.float32) * np.float32(step)
+    x = decode_array(model.net, y, shape) * np.float32(255.0)
+    if grey:
+        return [x[0].astype(np.float64)]
+    return [x[0].astype(np.float64), x[1].astype(np.float64), x[2].astype(np.float64)]
+
+
+def _step_index(step: float) -> int:
+    return int(np.clip(np.round(8 * np.log2(max(step, 1e-9))), *STEP_INDEX_RANGE))
+
+
+class ConvCodec:
+    name = "conv"
+    default_steps = (0.5, 0.7, 1.0, 1.4, 2.0, 2.8, 4.0, 5.6, 8.0)
+
+    # ------------------------------------------------------------- models
+    def default_model(self):
+        m = _load_default()
+        return m, m.sha256
+
+    def load_model(self, path=None):
+        """``(model, sha256)`` of a model file, or of the shipped one when ``path`` is None."""
+        if path is None:
+            return self.default_model()
+        m = Model(read_model(path))
+        return m, m.sha256
+
+    def builtin(self, ref: str):
+        """The shipped model if ``ref`` names it (bundles made with it need no --model)."""
+        try:
+            m = _load_default()
+        except InputError:
+            return None
+        return m if m.sha256 == ref else None
+
+    def prepare_shared(self, plane_sets, settings):
+        m, ref = self.default_model()
+        return m, None, ref
+
+    def shared_to_bytes(self, model: Model) -> bytes:
+        return model.data.raw
+
+    def shared_from_bytes(self, data: bytes) -> Model:
+        return Model(parse_model(data))
+
+    # ------------------------------------------------------------- coding
+    def analyse(self, planes, settings, shared=None) -> Analysis:
+        from ..conv_model import encode_array
+
+        model = shared if shared is not None else _load_default()
+        if not isinstance(model, Model):
+            raise InputError("the conv method needs a conv model (.wmodel), not a KLT basis")
+        shape = planes[0].shape
+        grey = len(planes) == 1
+        stack = [planes[0]] + ([np.full(shape, 128.0)] * 2 if grey else list(planes[1:]))
+        x = (np.stack(stack) / 255.0).astype(np.float32)
+        return Analysis(encode_array(model.net, x), shape, grey, model, settings)
+
+    def quantise(self, a: Analysis, step: float) -> Coded:
+        j = _step_index(step)
+        s = float(2.0 ** (j / 8))
+        kept = min(a.settings.latent or a.model.channels, a.model.channels)
+        q = np.round(a.latents[:kept] / np.float32(s)).astype(np.int64)
+        return Coded(s, j, q, kept, a)
+
+    def serialise(self, c: Coded) -> bytes:
+        m = c.analysis.model.data
+        counts = [m.counts(ch, c.step_index) for ch in range(c.kept)]
+        return _HEAD.pack(c.step_index, c.kept) + coefcode.encode_fixed(list(c.q), counts)
+
+    def decode(self, payload: bytes, shapes, settings, shared=None):
+        if not isinstance(shared, Model):
+            raise BundleError("this bundle needs the conv model it was made with; pass it with --model")
+        if len(payload) < _HEAD.size:
+            raise BundleError("image payload is truncated")
+        j, kept = _HEAD.unpack_from(payload, 0)
+        if not (STEP_INDEX_RANGE[0] <= j <= STEP_INDEX_RANGE[1]) or not (1 <= kept <= shared.channels):
+            raise BundleError(f"image payload has invalid step index {j} or channel count {kept}")
+        h, w = shapes[0]
+        lh, lw = -(-h // 16), -(-w // 16)
+        counts = [shared.data.counts(ch, j) for ch in range(kept)]
+        q = coefcode.decode_fixed(payload[_HEAD.size:], [lh * lw] * kept, counts)
+        q = np.stack(q).reshape(kept, lh, lw)
+        return _synthesise(shared, q, float(2.0 ** (j / 8)), (h, w), len(shapes) == 1)
+
+
+CODEC = ConvCodec()

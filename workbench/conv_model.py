@@ -1,0 +1,151 @@
+"""The learned transform: a small convolutional autoencoder with GDN and a per-channel
+Laplace entropy model (torch, CPU). Imported only by the conv codec and by training.
+
+Encoder: four 5x5 stride-2 convolutions, GDN after the first three (Ballé, Laparra &
+Simoncelli, "Density modeling of images using a generalized normalization
+transformation", ICLR 2016); decoder: the mirror with transposed convolutions and
+inverse GDN. Latent channels are ordered by importance with nested dropout (Rippel,
+Gelbart & Adams, ICML 2014): training keeps a random leading subset, so keeping the first c
+channels of one model degrades gracefully. Rate is modelled as in Ballé, Laparra &
+Simoncelli, "End-to-end optimized image compression", ICLR 2017: additive uniform noise
+in training, rounding at test, here with a learned Laplace scale per channel.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+import torch.nn.functional as F
+from torch import nn
+
+STRIDE = 16  # four stride-2 layers
+LN2 = math.log(2.0)
+
+
+@dataclass(frozen=True)
+class Arch:
+    hidden: int = 64
+    latent: int = 48
+
+    def to_dict(self) -> dict:
+        return {"hidden": self.hidden, "latent": self.latent}
+
+
+class GDN(nn.Module):
+    """y_i = x_i / sqrt(beta_i + sum_j gamma_ij x_j^2) (inverse: multiply)."""
+
+    def __init__(self, ch: int, inverse: bool = False):
+        super().__init__()
+        self.inverse = inverse
+        self.beta = nn.Parameter(torch.ones(ch))
+        self.gamma = nn.Parameter(0.1 * torch.eye(ch))
+
+    def forward(self, x):
+        beta = self.beta.abs() + 1e-6
+        gamma = self.gamma.abs()
+        norm = torch.sqrt(F.conv2d(x * x, gamma[:, :, None, None], beta))
+        return x * norm if self.inverse else x / norm
+
+
+def _conv(i, o):
+    return nn.Conv2d(i, o, 5, stride=2, padding=2)
+
+
+def _deconv(i, o):
+    return nn.ConvTranspose2d(i, o, 5, stride=2, padding=2, output_padding=1)
+
+
+class Autoencoder(nn.Module):
+    def __init__(self, arch: Arch = Arch()):
+        super().__init__()
+        n, c = arch.hidden, arch.latent
+        self.arch = arch
+        self.encoder = nn.Sequential(_conv(3, n), GDN(n), _conv(n, n), GDN(n), _conv(n, n), GDN(n), _conv(n, c))
+        self.decoder = nn.Sequential(_deconv(c, n), GDN(n, True), _deconv(n, n), GDN(n, True), _deconv(n, n),
+                                     GDN(n, True), _deconv(n, 3))
+        self.log_scale = nn.Parameter(torch.zeros(c))  # log2 of each channel's Laplace scale
+
+    def likelihood_bits(self, y_tilde: torch.Tensor, s: torch.Tensor, keep: torch.Tensor) -> torch.Tensor:
+        """Bits of noisy latents in quantiser units under Laplace(0, b_c / s); masked channels free."""
+        b = (2.0 ** self.log_scale)[None, :, None, None] / s
+        upper = _laplace_cdf(y_tilde + 0.5, b)
+        lower = _laplace_cdf(y_tilde - 0.5, b)
+        p = torch.clamp(upper - lower, min=1e-9)
+        return (-torch.log2(p) * keep).sum()
+
+
+def _laplace_cdf(x, b):
+    return 0.5 + 0.5 * torch.sign(x) * (1 - torch.exp(-x.abs() / b))
+
+
+def train_step(model: Autoencoder, x: torch.Tensor, lam: float, gen: torch.Generator):
+    """Loss = bits per pixel + lam * 255^2 * MSE, with random quantiser scale and nested dropout."""
+    nb, _, h, w = x.shape
+    c = model.arch.latent
+    y = model.encoder(x)
+    s = torch.exp2(torch.rand(nb, 1, 1, 1, generator=gen) * 3.0 - 1.0)  # scales 0.5 .. 4
+    noise = torch.rand(y.shape, generator=gen) - 0.5
+    y_tilde = y / s + noise
+    keep_n = torch.where(torch.rand(nb, generator=gen) < 0.5, torch.full((nb,), c),
+                         torch.randint(1, c + 1, (nb,), generator=gen))
+    keep = (torch.arange(c)[None, :] < keep_n[:, None]).float()[:, :, None, None]
+    x_hat = model.decoder(y_tilde * s * keep)
+    bits = model.likelihood_bits(y_tilde, s, keep)
+    bpp = bits / (nb * h * w)
+    mse = F.mse_loss(x_hat, x)
+    return bpp + lam * 255.0**2 * mse, bpp.detach(), mse.detach()
+
+
+# ------------------------------------------------------------------ tiled inference
+
+TILE = 256
+MARGIN = 64  # beyond the receptive field's significant part: seams do not show
+
+
+def _pad_to(x: np.ndarray, mult: int) -> np.ndarray:
+    h, w = x.shape[-2:]
+    ph, pw = (-h) % mult, (-w) % mult
+    return np.pad(x, ((0, 0), (0, ph), (0, pw)), mode="edge")
+
+
+@torch.no_grad()
+def encode_array(model: Autoencoder, x: np.ndarray) -> np.ndarray:
+    """Latents (C, H/16, W/16) of a (3, H, W) float32 image in [0, 1], padded to 16, in tiles."""
+    x = _pad_to(x, STRIDE)
+    _, h, w = x.shape
+    c = model.arch.latent
+    out = np.zeros((c, h // STRIDE, w // STRIDE), np.float32)
+    for y0 in range(0, h, TILE):
+        for x0 in range(0, w, TILE):
+            y1, x1 = min(h, y0 + TILE), min(w, x0 + TILE)
+            a0, b0 = max(0, y0 - MARGIN), max(0, x0 - MARGIN)
+            a1, b1 = min(h, y1 + MARGIN), min(w, x1 + MARGIN)
+            t = torch.from_numpy(np.ascontiguousarray(x[:, a0:a1, b0:b1]))[None]
+            z = model.encoder(t)[0].numpy()
+            oy, ox = (y0 - a0) // STRIDE, (x0 - b0) // STRIDE
+            out[:, y0 // STRIDE:y1 // STRIDE, x0 // STRIDE:x1 // STRIDE] = \
+                z[:, oy:oy + (y1 - y0) // STRIDE, ox:ox + (x1 - x0) // STRIDE]
+    return out
+
+
+@torch.no_grad()
+def decode_array(model: Autoencoder, y: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
+    """(3, H, W) float32 reconstruction of latents, in tiles, cropped to ``shape``."""
+    c, lh, lw = y.shape
+    h, w = lh * STRIDE, lw * STRIDE
+    out = np.zeros((3, h, w), np.float32)
+    tl, ml = TILE // STRIDE, MARGIN // STRIDE
+    for y0 in range(0, lh, tl):
+        for x0 in range(0, lw, tl):
+            y1, x1 = min(lh, y0 + tl), min(lw, x0 + tl)
+            a0, b0 = max(0, y0 - ml), max(0, x0 - ml)
+            a1, b1 = min(lh, y1 + ml), min(lw, x1 + ml)
+            t = torch.from_numpy(np.ascontiguousarray(y[:, a0:a1, b0:b1]))[None]
+            z = model.decoder(t)[0].numpy()
+            oy, ox = (y0 - a0) * STRIDE, (x0 - b0) * STRIDE
+            out[:, y0 * STRIDE:y1 * STRIDE, x0 * STRIDE:x1 * STRIDE] = \
+                z[:, oy:oy + (y1 - y0) * STRIDE, ox:ox + (x1 - x0) * STRIDE]
+    return out[:, : shape[0], : shape[1]]

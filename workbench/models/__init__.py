@@ -1,0 +1,1 @@
+"""The shipped conv model (``default.wmodel``) and the script that trains it."""

@@ -1,0 +1,189 @@
+"""Training the conv encoder on a folder, on the CPU, as a generator job.
+
+Random crops with flips from the training images; a fixed validation set of crops from
+held-out images (every fifth image; crops of the training images when there are fewer
+than five) reports PSNR and the model's rate as training goes. Checkpoints (the model
+file itself and the optimiser state beside it) are written atomically every
+``checkpoint_seconds`` and when the job is stopped, so an interrupt loses little and
+``resume`` continues. Seeded: the same seed, data and settings give the same model.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from . import pipeline
+from .errors import InputError
+from .imagefiles import SourceImage, write_atomic
+from .jobs import Progress
+
+CROP = 96
+BATCH = 8
+VAL_CROPS = 8
+
+
+@dataclass(frozen=True)
+class TrainConfig:
+    latent: int = 48
+    hidden: int = 64
+    lam: float = 0.01
+    minutes: float = 10.0
+    seed: int = 0
+    lr: float = 1e-3
+    checkpoint_seconds: float = 60.0
+    max_steps: int | None = None
+
+
+def _planes01(img: SourceImage) -> np.ndarray:
+    planes = pipeline.image_planes(img, "444")
+    if len(planes) == 1:
+        planes = [planes[0], np.full(planes[0].shape, 128.0), np.full(planes[0].shape, 128.0)]
+    return (np.stack(planes) / 255.0).astype(np.float32)
+
+
+def _crop(rng, x):
+    _, h, w = x.shape
+    if h < CROP or w < CROP:
+        x = np.pad(x, ((0, 0), (0, max(0, CROP - h)), (0, max(0, CROP - w))), mode="edge")
+        _, h, w = x.shape
+    y0, x0 = rng.integers(0, h - CROP + 1), rng.integers(0, w - CROP + 1)
+    c = x[:, y0:y0 + CROP, x0:x0 + CROP]
+    if rng.random() < 0.5:
+        c = c[:, :, ::-1]
+    if rng.random() < 0.5:
+        c = c[:, ::-1, :]
+    return np.ascontiguousarray(c)
+
+
+def _state_path(out: Path) -> Path:
+    return out.with_name(out.name + ".state")
+
+
+def save_checkpoint(net, opt, out: Path, info: dict) -> str:
+    from safetensors.numpy import save
+
+    from .modelfile import model_bytes
+
+    weights = {k: v.detach().numpy() for k, v in net.state_dict().items()}
+    data = model_bytes(net.arch.to_dict(), weights, net.log_scale.detach().numpy(), info)
+    write_atomic(out, data)
+    flat = {}
+    for i, group in enumerate(opt.state_dict()["state"].values()):
+        for k, v in group.items():
+            if hasattr(v, "numpy"):
+                flat[f"{i}.{k}"] = np.ascontiguousarray(v.detach().numpy().astype(np.float32))
+    flat["_step"] = np.array([info.get("steps", 0)], np.float32)
+    write_atomic(_state_path(out), save(flat))
+    from .modelfile import parse_model
+
+    return parse_model(data).sha256
+
+
+def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(), *, resume: bool = False):
+    """Generator job: train and write ``out`` (.wmodel); returns the training record."""
+    import torch
+
+    from . import conv_model
+    from .codecs.conv import Model
+    from .modelfile import read_model
+
+    if not images:
+        raise InputError("no readable images to train on")
+    out = Path(out)
+    torch.manual_seed(config.seed)
+    torch.set_num_threads(max(1, torch.get_num_threads()))
+    rng = np.random.default_rng(config.seed)
+    gen = torch.Generator().manual_seed(config.seed)
+    data = [_planes01(i) for i in images]
+    if len(data) >= 5:
+        val_idx = set(range(4, len(data), 5))
+    else:
+        val_idx = set()
+    train = [d for i, d in enumerate(data) if i not in val_idx] or data
+    val_src = [d for i, d in enumerate(data) if i in val_idx] or data
+    vrng = np.random.default_rng(config.seed + 1)
+    val = torch.from_numpy(np.stack([_crop(vrng, val_src[i % len(val_src)]) for i in range(VAL_CROPS)]))
+
+    net = conv_model.Autoencoder(conv_model.Arch(config.hidden, config.latent))
+    opt = torch.optim.Adam(net.parameters(), lr=config.lr)
+    step0, history = 0, []
+    if resume and out.exists():
+        m = Model(read_model(out))
+        if m.arch != net.arch:
+            raise InputError(f"{out}: cannot resume, its architecture {m.arch} differs from {net.arch}")
+        net.load_state_dict(m.net.state_dict())
+        step0 = int(m.data.info.get("steps", 0))
+        history = list(m.data.info.get("history", []))
+        sp = _state_path(out)
+        if sp.exists():
+            from safetensors.numpy import load_file
+
+            st = load_file(str(sp))
+            opt.zero_grad()
+            # one dummy step creates Adam's state tensors, which are then overwritten
+            loss, _, _ = conv_model.train_step(net, val[:1], config.lam, gen)
+            loss.backward()
+            opt.step()
+            net.load_state_dict(m.net.state_dict())
+            for i, group in enumerate(opt.state_dict()["state"].values()):
+                for k in list(group):
+                    key = f"{i}.{k}"
+                    if key in st and hasattr(group[k], "copy_"):
+                        group[k].copy_(torch.from_numpy(st[key]).to(group[k].dtype))
+    budget = config.minutes * 60.0
+    start = last_ckpt = time.monotonic()
+    step = step0
+    info = {}
+
+    def record():
+        net.eval()
+        with torch.no_grad():
+            y = net.encoder(val)
+            q = torch.round(y)
+            x_hat = net.decoder(q).clamp(0, 1)
+            mse = float(torch.mean((x_hat - val) ** 2))
+            keep = torch.ones(1, config.latent, 1, 1)
+            bits = float(net.likelihood_bits(q, torch.ones(1, 1, 1, 1), keep))
+        net.train()
+        psnr = 10 * np.log10(1.0 / max(mse, 1e-12))
+        bpp = bits / (val.shape[0] * CROP * CROP)
+        history.append({"step": step, "val_psnr": round(psnr, 3), "val_bpp": round(bpp, 4)})
+        return psnr, bpp
+
+    psnr, bpp = record()
+    try:
+        net.train()
+        while True:
+            elapsed = time.monotonic() - start
+            if elapsed >= budget or (config.max_steps is not None and step - step0 >= config.max_steps):
+                break
+            batch = torch.from_numpy(np.stack([_crop(rng, train[rng.integers(len(train))]) for _ in range(BATCH)]))
+            loss, b, mse = conv_model.train_step(net, batch, config.lam, gen)
+            opt.zero_grad()
+            loss.backward()
+            opt.step()
+            step += 1
+            if step % 25 == 0:
+                psnr, bpp = record()
+            done = elapsed if config.max_steps is None else (step - step0) / config.max_steps * budget
+            yield Progress(min(done, budget), budget,
+                           f"step {step}  loss {float(loss.detach()):.3f}  val PSNR {psnr:.2f} dB  val {bpp:.3f} bpp")
+            if time.monotonic() - last_ckpt > config.checkpoint_seconds:
+                info = _info(config, step, history, images)
+                save_checkpoint(net, opt, out, info)
+                last_ckpt = time.monotonic()
+    finally:
+        # Reached on completion, on Cancel (the generator is closed) and on Ctrl-C alike.
+        info = _info(config, step, history, images)
+        sha = save_checkpoint(net, opt, out, info)
+    yield Progress(budget, budget, "saved")
+    return {"model": str(out), "sha256": sha, "steps": step, "history": history}
+
+
+def _info(config, step, history, images):
+    return {"steps": step, "lambda": config.lam, "seed": config.seed, "crop": CROP, "batch": BATCH,
+            "history": history[-200:], "images": [i.name for i in images][:500]}
