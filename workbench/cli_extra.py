@@ -48,3 +48,40 @@ def cmd_sheet(a) -> int:
         ts = sheet["target_search"]
         print(f"  per-image search saves {100 * ts['saving_vs_one_step']:.1f} % against one step for all images")
     return 0 if t["passed"] in (None, t["images"]) else 1
+
+
+@command
+def _train(sub):
+    p = sub.add_parser("train", help="train the conv encoder on a folder (CPU)")
+    p.add_argument("inputs", nargs="+", metavar="INPUT")
+    p.add_argument("-o", "--output", required=True, metavar="MODEL.wmodel")
+    p.add_argument("--latent", type=int, default=48, metavar="C", help="latent channels (default 48)")
+    p.add_argument("--hidden", type=int, default=64, help="channels inside the network (default 64)")
+    p.add_argument("--lambda", dest="lam", type=float, default=0.01, metavar="L",
+                   help="weight of distortion against rate: larger = higher quality (default 0.01)")
+    p.add_argument("--minutes", type=float, default=10.0, metavar="M", help="training time budget (default 10)")
+    p.add_argument("--steps", type=int, help="stop after this many steps instead (for quick checks)")
+    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--resume", action="store_true", help="continue from MODEL.wmodel and its .state file")
+    p.set_defaults(func=cmd_train)
+
+
+def cmd_train(a) -> int:
+    from .imagefiles import list_inputs
+    from .jobs import run
+    from .training import TrainConfig, train_job
+
+    if not (1 <= a.latent <= 1024 and 1 <= a.hidden <= 1024):
+        raise InputError("--latent and --hidden must be between 1 and 1024")
+    if not (a.lam > 0 and a.minutes > 0):
+        raise InputError("--lambda and --minutes must be positive")
+    out = Path(a.output)
+    if out.resolve() in {p.resolve() for p in list_inputs(a.inputs)}:
+        raise InputError(f"{out}: refusing to overwrite a source image")
+    images, _ = _read_inputs(a.inputs)
+    cfg = TrainConfig(latent=a.latent, hidden=a.hidden, lam=a.lam, minutes=a.minutes, seed=a.seed, max_steps=a.steps)
+    r = run(train_job(images, out, cfg, resume=a.resume), _progress)
+    last = r["history"][-1]
+    print(f"wrote {out} after {r['steps']} steps (validation {last['val_psnr']:.2f} dB at {last['val_bpp']:.3f} bpp), "
+          f"sha256 {r['sha256'][:16]}…", file=sys.stdout)
+    return 0

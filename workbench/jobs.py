@@ -45,3 +45,6 @@ def run(job: Job, on_progress: Callable[[Progress], None] | None = None,
                 raise Cancelled("stopped by request")
     except StopIteration as stop:
         return stop.value
+    except KeyboardInterrupt:
+        job.close()  # lets the job save what it must (training checkpoints) before we leave
+        raise

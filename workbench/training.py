@@ -133,7 +133,7 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
                 for k in list(group):
                     key = f"{i}.{k}"
                     if key in st and hasattr(group[k], "copy_"):
-                        group[k].copy_(torch.from_numpy(st[key]).to(group[k].dtype))
+                        group[k].copy_(torch.from_numpy(st[key].reshape(tuple(group[k].shape))).to(group[k].dtype))
     budget = config.minutes * 60.0
     start = last_ckpt = time.monotonic()
     step = step0

@@ -74,6 +74,8 @@ class MainWindow(QMainWindow):
         self._shown = None  # (orig, rec) arrays on screen
         self.last_numbers = None
         self.last_error = ""
+        self.conv_model = None  # (model, sha256) once trained here; else the shipped one
+        self.last_training = None
 
         self.fit_lane, self.preview_lane, self.numbers_lane, self.target_lane = Lane(), Lane(), Lane(), Lane()
         self.fit_lane.result.connect(self._on_fitted)
@@ -274,9 +276,11 @@ class MainWindow(QMainWindow):
     def _shared_for(self, s: Settings):
         """Shared side for the current settings, or a marker that it must be fitted first."""
         if s.method == "conv":
-            from ..codecs import get
+            if self.conv_model is None:
+                from ..codecs import get
 
-            return get("conv").default_model()
+                self.conv_model = get("conv").default_model()
+            return self.conv_model
         if s.basis_scope != "folder":
             return None, None
         return self._shared.get((s.block, s.chroma, s.kept), (None, "missing"))
@@ -326,6 +330,9 @@ class MainWindow(QMainWindow):
     def _on_fitted(self, _tag, value):
         key, prev = value
         self._previews[key] = prev
+        model = getattr(prev.analysis, "model", None)
+        if model is not None and self.panel.count.maximum() != model.channels:
+            self.panel.set_count_range(model.channels)
         self.status_text.setText("")
         self.refresh()
 
@@ -346,13 +353,13 @@ class MainWindow(QMainWindow):
             self.numbers_lane.submit(lambda: (img, s, prev.numbers(coded, px)), tag=key)
 
     def _submit_target(self, img, s):
-        shared, ref = self._shared_for(s)
-        if ref == "missing":
+        if s.method == "klt" and s.basis_scope == "folder" and (s.block, s.chroma, s.kept) not in self._shared:
             key = (img.name, s.method, s.block, s.chroma, s.basis_scope)
             self.fit_lane.submit(lambda: self._make_preview(img, s.replace(target=None), key), tag=key)
             return
 
         def work():
+            shared, ref = self._shared_for(s)
             r = pipeline.encode([img], s, shared=shared, shared_ref=ref).images[0]
             n = pipeline.Numbers(int(round(r.bytes)), r.bpp, r.ratio, r.psnr, r.ssim, r.kept, r.step)
             return img, s, n, r.reconstruction
@@ -475,10 +482,10 @@ class MainWindow(QMainWindow):
             self.notice.show_text("Nothing to save: open a folder first.")
             return False
         s = self.panel.settings()
-        shared, ref = (None, None) if s.method == "klt" else self._shared_for(s)
         images, protect, path = list(self.images), self._protected(), Path(path)
 
         def job():
+            shared, ref = (None, None) if s.method == "klt" else self._shared_for(s)
             result = yield from pipeline.encode_job(images, s, shared=shared, shared_ref=ref, measure=False)
             write_atomic(path, result.data, protect=protect)
             return result
@@ -530,11 +537,13 @@ class MainWindow(QMainWindow):
             self.notice.show_text("Nothing to report: open a folder first.")
             return False
         s = self.panel.settings()
-        images, outdir = list(self.images), Path(outdir)
-        shared, ref = (None, None) if s.method == "klt" else self._shared_for(s)
-        return self._start_job(lambda: sheet.sheet_job(images, s, outdir, shared=shared, shared_ref=ref,
-                                                       protect=self._protected()),
-                               ("sheet", outdir), "writing the quality sheet…")
+        images, outdir, protect = list(self.images), Path(outdir), self._protected()
+
+        def job():
+            shared, ref = (None, None) if s.method == "klt" else self._shared_for(s)
+            return (yield from sheet.sheet_job(images, s, outdir, shared=shared, shared_ref=ref, protect=protect))
+
+        return self._start_job(job, ("sheet", outdir), "writing the quality sheet…")
 
     def _ask_save_sheet(self):
         path = QFileDialog.getExistingDirectory(self, "Folder for the quality sheet", str(Path.home()))

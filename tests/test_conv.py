@@ -1,0 +1,180 @@
+"""The learned codec: theory check, exact round trips, safe model files, training."""
+
+import numpy as np
+import pytest
+
+torch = pytest.importorskip("torch")
+
+import workbench  # noqa: E402
+import workbench.codecs  # noqa: E402
+import workbench.coefcode  # noqa: E402
+from workbench import conv_model, container, modelfile, pipeline, tiling, klt  # noqa: E402
+from workbench.codecs import get  # noqa: E402
+from workbench.errors import BundleError  # noqa: E402
+from workbench.imagefiles import SourceImage  # noqa: E402
+from workbench.jobs import run  # noqa: E402
+from workbench.settings import Settings  # noqa: E402
+from workbench.training import TrainConfig, train_job  # noqa: E402
+
+
+@pytest.fixture(scope="module")
+def small_images():
+    from skimage import data
+
+    return [SourceImage("cat", data.chelsea()[:96, :128]), SourceImage("cam", data.camera()[200:296, 100:228])]
+
+
+@pytest.fixture(scope="module")
+def tiny_model(tmp_path_factory, small_images):
+    path = tmp_path_factory.mktemp("m") / "tiny.wmodel"
+    record = run(train_job(small_images, path, TrainConfig(latent=8, hidden=16, max_steps=20, seed=3)))
+    model, sha = get("conv").load_model(path)
+    return path, model, sha, record
+
+
+def test_linear_autoencoder_reaches_the_klt_optimum(camera):
+    # Baldi & Hornik (1989), "Neural networks and principal component analysis": a linear
+    # autoencoder trained on squared error converges to the principal subspace, so its error
+    # approaches the KLT's optimum, the sum of the discarded eigenvalues (Eckart–Young).
+    # Linear maps on 8x8 patches (what a stride-8 8x8 convolution computes), no GDN.
+    torch.manual_seed(0)
+    patches = tiling.to_patches(camera.astype(np.float64) / 255.0, 8).reshape(-1, 64)
+    patches -= patches.mean(axis=0)
+    x = torch.from_numpy(patches.astype(np.float32))
+    k = 8
+    enc, dec = torch.nn.Linear(64, k, bias=False), torch.nn.Linear(k, 64, bias=False)
+    opt = torch.optim.LBFGS(list(enc.parameters()) + list(dec.parameters()), lr=1, max_iter=500,
+                            history_size=50, tolerance_grad=1e-12, tolerance_change=1e-15,
+                            line_search_fn="strong_wolfe")
+
+    def closure():
+        opt.zero_grad()
+        loss = torch.mean((dec(enc(x)) - x) ** 2)
+        loss.backward()
+        return loss
+
+    opt.step(closure)
+    with torch.no_grad():
+        err = float(torch.mean((dec(enc(x)) - x) ** 2))
+    optimum = klt.fit_basis([patches], 8).eigenvalues[k:].sum() / 64
+    assert err <= 1.03 * optimum
+    assert err >= optimum * (1 - 1e-3)  # and never below the optimum
+
+
+def test_round_trip_equals_in_process_reconstruction(tiny_model, small_images):
+    path, model, sha, _ = tiny_model
+    result = pipeline.encode(small_images, Settings(method="conv", step=1.0), shared=model, shared_ref=sha)
+    out = workbench.decompress(result.data, basis=model, basis_ref=sha)
+    for r in result.images:
+        assert np.array_equal(out[r.name], r.reconstruction)
+    assert out["cam"].ndim == 2 and out["cat"].shape == (96, 128, 3)
+
+
+def test_embedded_model_travels_with_the_bundle(tiny_model, small_images):
+    _, model, sha, _ = tiny_model
+    result = pipeline.encode(small_images[:1], Settings(method="conv"), shared=model, shared_ref=sha, embed=True)
+    assert np.array_equal(workbench.decompress(result.data)["cat"], result.images[0].reconstruction)
+
+
+def test_fewer_latent_channels_cost_fewer_bytes(tiny_model, small_images):
+    _, model, sha, _ = tiny_model
+    sizes = [pipeline.encode(small_images[:1], Settings(method="conv", latent=c, step=0.25), shared=model, shared_ref=sha).size
+             for c in (2, 8)]
+    assert sizes[0] < sizes[1]
+
+
+def test_bundle_needs_the_right_model(tiny_model, small_images, tmp_path):
+    _, model, sha, _ = tiny_model
+    data = pipeline.encode(small_images[:1], Settings(method="conv"), shared=model, shared_ref=sha).data
+    with pytest.raises(BundleError, match="needs its external"):
+        workbench.decompress(data)
+    with pytest.raises(BundleError, match="not the one"):
+        workbench.decompress(data, basis=model, basis_ref="0" * 64)
+
+
+def test_corrupted_model_files_give_the_clear_error(tiny_model):
+    path, *_ = tiny_model
+    raw = path.read_bytes()
+    rng = np.random.default_rng(1)
+    for n in (0, 10, len(raw) // 2, len(raw) - 1):
+        with pytest.raises(BundleError):
+            modelfile.parse_model(raw[:n])
+    for _ in range(40):
+        bad = bytearray(raw)
+        bad[int(rng.integers(0, len(raw)))] ^= 1 << int(rng.integers(0, 8))
+        with pytest.raises(BundleError):
+            modelfile.parse_model(bytes(bad))
+
+
+def test_weights_that_are_not_plain_tensors_are_refused(tiny_model):
+    import pickle
+
+    path, *_ = tiny_model
+    chunks = container.unpack(path.read_bytes(), modelfile.MAGIC, (1,), "m")
+    evil = pickle.dumps({"x": 1})
+    forged = container.pack(modelfile.MAGIC, 1, [(t, evil if t == b"WGTS" else b) for t, b in chunks])
+    with pytest.raises(BundleError):
+        modelfile.parse_model(forged)
+
+
+def test_training_for_a_handful_of_steps_lowers_the_loss(small_images, tmp_path):
+    # Loss = rate + lambda * distortion on fixed validation crops, before and after 30 steps.
+    cfg = TrainConfig(latent=8, hidden=16, max_steps=30, seed=5, lam=0.01)
+    rec = run(train_job(small_images, tmp_path / "m.wmodel", cfg))
+    first, last = rec["history"][0], rec["history"][-1]
+
+    def loss(h):
+        return h["val_bpp"] + cfg.lam * 255**2 * 10 ** (-h["val_psnr"] / 10)
+
+    assert loss(last) < loss(first)
+
+
+def test_training_is_deterministic_with_a_seed(small_images, tmp_path):
+    cfg = TrainConfig(latent=4, hidden=8, max_steps=4, seed=9)
+    a = run(train_job(small_images, tmp_path / "a.wmodel", cfg))
+    b = run(train_job(small_images, tmp_path / "b.wmodel", cfg))
+    assert a["sha256"] == b["sha256"]
+
+
+def test_resume_continues_from_the_checkpoint(small_images, tmp_path):
+    cfg = TrainConfig(latent=4, hidden=8, max_steps=3, seed=2)
+    run(train_job(small_images, tmp_path / "r.wmodel", cfg))
+    again = run(train_job(small_images, tmp_path / "r.wmodel", cfg, resume=True))
+    assert again["steps"] == 6 and (tmp_path / "r.wmodel.state").exists()
+
+
+def test_a_stopped_training_still_leaves_a_usable_model(small_images, tmp_path):
+    job = train_job(small_images, tmp_path / "s.wmodel", TrainConfig(latent=4, hidden=8, max_steps=50))
+    for _ in range(5):
+        next(job)
+    job.close()  # what Cancel and Ctrl-C do
+    model, _ = get("conv").load_model(tmp_path / "s.wmodel")
+    assert model.channels == 4
+
+
+def test_tiled_inference_matches_whole_image_inference(tiny_model):
+    _, model, _, _ = tiny_model
+    rng = np.random.default_rng(0)
+    x = rng.random((3, 640, 704)).astype(np.float32)
+    tiled = conv_model.encode_array(model.net, x)
+    with torch.no_grad():
+        whole = model.net.encoder(torch.from_numpy(x)[None])[0].numpy()
+    assert np.allclose(tiled, whole, atol=1e-4)
+    y = rng.normal(0, 2, tiled.shape).astype(np.float32)
+    dec_tiled = conv_model.decode_array(model.net, y, (640, 704))
+    with torch.no_grad():
+        dec_whole = model.net.decoder(torch.from_numpy(y)[None])[0].numpy()
+    assert np.allclose(dec_tiled, dec_whole, atol=1e-4)
+
+
+def test_laplace_tables_follow_the_distribution():
+    # Token 0 of a Laplace(0, b) quantised to integers has mass 1 - exp(-0.5 / b).
+    for b in (0.3, 1.0, 7.0):
+        t = workbench.coefcode.laplace_token_counts(b)
+        assert t[0] / t.sum() == pytest.approx(1 - np.exp(-0.5 / b), abs=2e-3)
+
+
+def test_klt_and_conv_share_the_registry():
+    assert set(workbench.codecs.names()) >= {"klt", "conv"}
+    assert get("conv").name == "conv" and get("klt").name == "klt"
+    assert klt.Basis  # the KLT stays importable without torch (see test_cli)
