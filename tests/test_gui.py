@@ -126,3 +126,22 @@ def test_difference_view_outlines_the_worst_tiles(qtbot, window, folder):
     assert len(window.views.views[2].marks) == 5
     window.panel.worst.setChecked(False)
     assert window.views.views[2].marks == []
+
+
+def test_quality_sheet_is_saved_from_the_window(qtbot, window, folder, tmp_path):
+    window.open_folder(folder)
+    out = tmp_path / "report"
+    with qtbot.waitSignal(window.jobs.finished, timeout=120000):
+        assert window.save_sheet(out)
+    assert {p.name for p in out.iterdir()} == {"bundle.wbundle", "sheet.pdf", "sheet.csv", "sheet.json"}
+
+
+def test_training_from_the_window_makes_the_model_available(qtbot, window, folder, tmp_path):
+    from workbench.gui import training
+
+    window.open_folder(folder)
+    with qtbot.waitSignal(window.jobs.finished, timeout=120000):
+        training.start_training(window, tmp_path / "m.wmodel", minutes=1, lam=0.01, latent=4, max_steps=3)
+    assert window.conv_model is not None and window.conv_model[0].channels == 4
+    assert "m)" in window.panel.method.itemText(window.panel.method.findData("conv"))
+    assert window.last_training["steps"] == 3

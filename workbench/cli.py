@@ -47,8 +47,6 @@ def settings_from_args(a) -> Settings:
               basis_scope=a.basis_scope, target=target, latent=a.latent)
     if a.step is not None:
         kw["step"] = a.step
-    elif a.method == "conv":
-        kw["step"] = 1.0
     return Settings(**kw)
 
 

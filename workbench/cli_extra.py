@@ -63,6 +63,9 @@ def _train(sub):
     p.add_argument("--steps", type=int, help="stop after this many steps instead (for quick checks)")
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--resume", action="store_true", help="continue from MODEL.wmodel and its .state file")
+    p.add_argument("--start-from", default="shipped", metavar="MODEL",
+                   help="weights to start from: 'shipped' (default; fine-tunes the packaged model when the "
+                        "architecture matches), a .wmodel file, or 'none' for random weights")
     p.set_defaults(func=cmd_train)
 
 
@@ -79,7 +82,9 @@ def cmd_train(a) -> int:
     if out.resolve() in {p.resolve() for p in list_inputs(a.inputs)}:
         raise InputError(f"{out}: refusing to overwrite a source image")
     images, _ = _read_inputs(a.inputs)
-    cfg = TrainConfig(latent=a.latent, hidden=a.hidden, lam=a.lam, minutes=a.minutes, seed=a.seed, max_steps=a.steps)
+    start = None if a.start_from == "none" else a.start_from
+    cfg = TrainConfig(latent=a.latent, hidden=a.hidden, lam=a.lam, minutes=a.minutes, seed=a.seed,
+                      max_steps=a.steps, start_from=start)
     r = run(train_job(images, out, cfg, resume=a.resume), _progress)
     last = r["history"][-1]
     print(f"wrote {out} after {r['steps']} steps (validation {last['val_psnr']:.2f} dB at {last['val_bpp']:.3f} bpp), "

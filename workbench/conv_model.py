@@ -44,7 +44,7 @@ class GDN(nn.Module):
         self.gamma = nn.Parameter(0.1 * torch.eye(ch))
 
     def forward(self, x):
-        beta = self.beta.abs() + 1e-6
+        beta = self.beta.abs() + 1e-3  # a floor keeps the normalisation away from zero
         gamma = self.gamma.abs()
         norm = torch.sqrt(F.conv2d(x * x, gamma[:, :, None, None], beta))
         return x * norm if self.inverse else x / norm

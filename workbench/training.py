@@ -36,6 +36,7 @@ class TrainConfig:
     lr: float = 1e-3
     checkpoint_seconds: float = 60.0
     max_steps: int | None = None
+    start_from: str | None = "shipped"  # "shipped", a .wmodel path, or None for random weights
 
 
 def _planes01(img: SourceImage) -> np.ndarray:
@@ -109,6 +110,22 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
     val = torch.from_numpy(np.stack([_crop(vrng, val_src[i % len(val_src)]) for i in range(VAL_CROPS)]))
 
     net = conv_model.Autoencoder(conv_model.Arch(config.hidden, config.latent))
+    started_from = None
+    if config.start_from and not (resume and out.exists()):
+        # Fine-tuning a model that already knows images converges far faster on a CPU
+        # than starting from random weights; architectures must match.
+        from .codecs.conv import DEFAULT_MODEL
+
+        src = DEFAULT_MODEL if config.start_from == "shipped" else Path(config.start_from)
+        if src.exists():
+            base = Model(read_model(src))
+            if base.arch == net.arch:
+                net.load_state_dict(base.net.state_dict())
+                started_from = base.sha256
+            elif config.start_from != "shipped":
+                raise InputError(f"{src}: its architecture {base.arch} differs from the one asked for {net.arch}")
+        elif config.start_from != "shipped":
+            raise InputError(f"{src}: no such model file to start from")
     opt = torch.optim.Adam(net.parameters(), lr=config.lr)
     step0, history = 0, []
     if resume and out.exists():
@@ -161,11 +178,18 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
             elapsed = time.monotonic() - start
             if elapsed >= budget or (config.max_steps is not None and step - step0 >= config.max_steps):
                 break
+            # Cosine decay of the learning rate over the budget, down to a tenth.
+            frac = min(1.0, elapsed / budget) if config.max_steps is None else (step - step0) / config.max_steps
+            for g in opt.param_groups:
+                g["lr"] = config.lr * (0.1 + 0.45 * (1 + np.cos(np.pi * frac)))
             batch = torch.from_numpy(np.stack([_crop(rng, train[rng.integers(len(train))]) for _ in range(BATCH)]))
             loss, b, mse = conv_model.train_step(net, batch, config.lam, gen)
             opt.zero_grad()
-            loss.backward()
-            opt.step()
+            if torch.isfinite(loss):
+                loss.backward()
+                # GDN's inverse grows fast with its input: a clipped step keeps training stable.
+                torch.nn.utils.clip_grad_norm_(net.parameters(), 1.0)
+                opt.step()
             step += 1
             if step % 25 == 0:
                 psnr, bpp = record()
@@ -179,6 +203,7 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
     finally:
         # Reached on completion, on Cancel (the generator is closed) and on Ctrl-C alike.
         info = _info(config, step, history, images)
+        info["started_from"] = started_from
         sha = save_checkpoint(net, opt, out, info)
     yield Progress(budget, budget, "saved")
     return {"model": str(out), "sha256": sha, "steps": step, "history": history}

@@ -2,11 +2,18 @@
 
 Per image payload::
 
-    step index i8 (quantiser step 2**(i/8)) | kept u16 | latent stream
+    step index i8 (latent quantiser step 2**(i/8)) | kept u16 | coder u8 | latent stream
 
-Only the first ``kept`` latent channels are coded (nested-dropout order). The decoder
-reads the table of each channel from the model file (integers), so decoding elsewhere
-gives the same latents; the pixels then come from the same torch decoder.
+The workbench's step (in 8-bit grey levels) maps to a latent step of ``step / 8``: the
+model is trained so that one latent unit is worth roughly eight grey levels, which keeps
+the default step and the rate-control range of the KLT meaningful here.
+
+Only the first ``kept`` latent channels are coded (nested-dropout order). Two coders
+are tried and the smaller stream is kept (the byte says which): 0, the model's own
+learned per-channel tables (integers stored in the model file, so decoding elsewhere
+gives the same latents); 1, the adaptive context coder of the KLT
+(:mod:`workbench.coefcode`), which also exploits spatial context. The pixels then come
+from the same torch decoder.
 The model works on full-resolution Y, Cb, Cr planes scaled to [0, 1] (grey images: Y
 with neutral chroma; only Y is kept on decoding).
 """
@@ -25,7 +32,8 @@ from ..errors import BundleError, InputError
 from ..modelfile import ModelData, parse_model, read_model
 
 DEFAULT_MODEL = Path(__file__).resolve().parents[1] / "models" / "default.wmodel"
-_HEAD = struct.Struct("<bH")
+_HEAD = struct.Struct("<bHB")
+LEARNED, ADAPTIVE = 0, 1
 STEP_INDEX_RANGE = (-64, 64)
 
 
@@ -83,7 +91,7 @@ class Coded:
     def planes(self):
         if self._planes is None:
             a = self.analysis
-            self._planes = _synthesise(a.model, self.q, self.step, a.shape, a.grey)
+            self._planes = _synthesise(a.model, self.q, 2.0 ** (self.step_index / 8), a.shape, a.grey)
         return self._planes
 
 
@@ -104,7 +112,7 @@ def _step_index(step: float) -> int:
 
 class ConvCodec:
     name = "conv"
-    default_steps = (0.5, 0.7, 1.0, 1.4, 2.0, 2.8, 4.0, 5.6, 8.0)
+    default_steps = (2.8, 4.0, 5.6, 8.0, 11.0, 16.0, 22.0, 32.0, 45.0)
 
     # ------------------------------------------------------------- models
     def default_model(self):
@@ -150,30 +158,38 @@ class ConvCodec:
         return Analysis(encode_array(model.net, x), shape, grey, model, settings)
 
     def quantise(self, a: Analysis, step: float) -> Coded:
-        j = _step_index(step)
+        j = _step_index(step / 8.0)
         s = float(2.0 ** (j / 8))
         kept = min(a.settings.latent or a.model.channels, a.model.channels)
         q = np.round(a.latents[:kept] / np.float32(s)).astype(np.int64)
-        return Coded(s, j, q, kept, a)
+        return Coded(8.0 * s, j, q, kept, a)
 
     def serialise(self, c: Coded) -> bytes:
         m = c.analysis.model.data
         counts = [m.counts(ch, c.step_index) for ch in range(c.kept)]
-        return _HEAD.pack(c.step_index, c.kept) + coefcode.encode_fixed(list(c.q), counts)
+        learned = coefcode.encode_fixed(list(c.q), counts)
+        adaptive = coefcode.encode_grids([np.ascontiguousarray(c.q.transpose(1, 2, 0))], [3])
+        if len(adaptive) < len(learned):
+            return _HEAD.pack(c.step_index, c.kept, ADAPTIVE) + adaptive
+        return _HEAD.pack(c.step_index, c.kept, LEARNED) + learned
 
     def decode(self, payload: bytes, shapes, settings, shared=None):
         if not isinstance(shared, Model):
             raise BundleError("this bundle needs the conv model it was made with; pass it with --model")
         if len(payload) < _HEAD.size:
             raise BundleError("image payload is truncated")
-        j, kept = _HEAD.unpack_from(payload, 0)
-        if not (STEP_INDEX_RANGE[0] <= j <= STEP_INDEX_RANGE[1]) or not (1 <= kept <= shared.channels):
-            raise BundleError(f"image payload has invalid step index {j} or channel count {kept}")
+        j, kept, coder = _HEAD.unpack_from(payload, 0)
+        if not (STEP_INDEX_RANGE[0] <= j <= STEP_INDEX_RANGE[1]) or not (1 <= kept <= shared.channels) \
+                or coder not in (LEARNED, ADAPTIVE):
+            raise BundleError(f"image payload has invalid step index {j}, channel count {kept} or coder {coder}")
         h, w = shapes[0]
         lh, lw = -(-h // 16), -(-w // 16)
-        counts = [shared.data.counts(ch, j) for ch in range(kept)]
-        q = coefcode.decode_fixed(payload[_HEAD.size:], [lh * lw] * kept, counts)
-        q = np.stack(q).reshape(kept, lh, lw)
+        body = payload[_HEAD.size:]
+        if coder == ADAPTIVE:
+            q = coefcode.decode_grids(body, [(lh, lw, kept)], [3])[0].transpose(2, 0, 1)
+        else:
+            counts = [shared.data.counts(ch, j) for ch in range(kept)]
+            q = np.stack(coefcode.decode_fixed(body, [lh * lw] * kept, counts)).reshape(kept, lh, lw)
         return _synthesise(shared, q, float(2.0 ** (j / 8)), (h, w), len(shapes) == 1)
 
 

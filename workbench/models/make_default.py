@@ -57,7 +57,7 @@ def main(argv=None):
     ap.add_argument("-o", "--output", default=str(HERE / "default.wmodel"))
     a = ap.parse_args(argv)
     images = training_images()
-    cfg = TrainConfig(minutes=a.minutes, lam=a.lam, seed=2026)
+    cfg = TrainConfig(minutes=a.minutes, lam=a.lam, seed=2026, start_from=None)
     last = [0.0]
 
     def show(p):
