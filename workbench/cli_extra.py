@@ -55,7 +55,7 @@ def _train(sub):
     p = sub.add_parser("train", help="train the conv encoder on a folder (CPU)")
     p.add_argument("inputs", nargs="+", metavar="INPUT")
     p.add_argument("-o", "--output", required=True, metavar="MODEL.wmodel")
-    p.add_argument("--latent", type=int, default=48, metavar="C", help="latent channels (default 48)")
+    p.add_argument("--latent", type=int, default=96, metavar="C", help="latent channels (default 96)")
     p.add_argument("--hidden", type=int, default=64, help="channels inside the network (default 64)")
     p.add_argument("--lambda", dest="lam", type=float, default=0.01, metavar="L",
                    help="weight of distortion against rate: larger = higher quality (default 0.01)")

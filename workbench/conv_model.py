@@ -1,10 +1,13 @@
 """The learned transform: a small convolutional autoencoder with GDN and a per-channel
 Laplace entropy model (torch, CPU). Imported only by the conv codec and by training.
 
-Encoder: four 5x5 stride-2 convolutions, GDN after the first three (Ballé, Laparra &
+Encoder: three 5x5 stride-2 convolutions with GDN between them (Ballé, Laparra &
 Simoncelli, "Density modeling of images using a generalized normalization
-transformation", ICLR 2016); decoder: the mirror with transposed convolutions and
-inverse GDN. Latent channels are ordered by importance with nested dropout (Rippel,
+transformation", ICLR 2016), added to a linear 8x8 stride-8 path; decoder: the mirror with
+transposed convolutions and inverse GDN, added to a linear transposed path. The linear
+paths start as the KLT of the training patches and the GDN paths start at zero, so an
+untrained model is a block KLT and training on a CPU for minutes only has to learn what the
+KLT misses (a small network trained from random weights for that long stays far below it). Latent channels are ordered by importance with nested dropout (Rippel,
 Gelbart & Adams, ICML 2014): training keeps a random leading subset, so keeping the first c
 channels of one model degrades gracefully. Rate is modelled as in Ballé, Laparra &
 Simoncelli, "End-to-end optimized image compression", ICLR 2017: additive uniform noise
@@ -21,14 +24,15 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-STRIDE = 16  # four stride-2 layers
+STRIDE = 8  # three stride-2 layers, and the 8x8 linear path
+LATENT_PER_UNIT = 255.0 / 8.0  # a latent unit is worth 8 grey levels of KLT coefficient
 LN2 = math.log(2.0)
 
 
 @dataclass(frozen=True)
 class Arch:
     hidden: int = 64
-    latent: int = 48
+    latent: int = 96
 
     def to_dict(self) -> dict:
         return {"hidden": self.hidden, "latent": self.latent}
@@ -63,10 +67,49 @@ class Autoencoder(nn.Module):
         super().__init__()
         n, c = arch.hidden, arch.latent
         self.arch = arch
-        self.encoder = nn.Sequential(_conv(3, n), GDN(n), _conv(n, n), GDN(n), _conv(n, n), GDN(n), _conv(n, c))
-        self.decoder = nn.Sequential(_deconv(c, n), GDN(n, True), _deconv(n, n), GDN(n, True), _deconv(n, n),
-                                     GDN(n, True), _deconv(n, 3))
+        self.analysis = nn.Conv2d(3, c, STRIDE, stride=STRIDE)
+        self.encoder_deep = nn.Sequential(_conv(3, n), GDN(n), _conv(n, n), GDN(n), _conv(n, c))
+        self.synthesis = nn.ConvTranspose2d(c, 3, STRIDE, stride=STRIDE)
+        self.decoder_deep = nn.Sequential(_deconv(c, n), GDN(n, True), _deconv(n, n), GDN(n, True), _deconv(n, 3))
+        for last in (self.encoder_deep[-1], self.decoder_deep[-1]):
+            nn.init.zeros_(last.weight)
+            nn.init.zeros_(last.bias)
         self.log_scale = nn.Parameter(torch.zeros(c))  # log2 of each channel's Laplace scale
+
+    # The linear paths hold unit-norm basis vectors and apply the fixed scale here, so that
+    # Adam's steps (which ignore a parameter's scale) move them by a fraction of their size.
+    def encoder(self, x):
+        return self.analysis(x) * LATENT_PER_UNIT + self.encoder_deep(x)
+
+    def decoder(self, y):
+        return self.synthesis(y / LATENT_PER_UNIT) + self.decoder_deep(y)
+
+    def linear_parameters(self):
+        return list(self.analysis.parameters()) + list(self.synthesis.parameters())
+
+    @torch.no_grad()
+    def init_from_klt(self, patches: np.ndarray) -> None:
+        """Set the linear paths to the KLT of ``patches`` (N, 3, 8, 8) in [0, 1].
+
+        Latent k = (KLT coefficient k in 8-bit levels) / 8, so a latent step of 1 is a
+        coefficient step of 8 grey levels, as in the block KLT codec.
+        """
+        c = self.arch.latent
+        x = patches.reshape(len(patches), -1).astype(np.float64) * 255.0
+        mean = x.mean(axis=0)
+        cov = np.cov((x - mean).T, bias=True)
+        vals, vecs = np.linalg.eigh(cov)
+        order = np.argsort(vals)[::-1][:c]
+        basis = vecs[:, order]  # (192, c)
+        w = torch.from_numpy(basis.T.reshape(c, 3, STRIDE, STRIDE).astype(np.float32))
+        self.analysis.weight.copy_(w)
+        self.analysis.bias.copy_(torch.from_numpy((-(basis.T @ mean) / 255.0).astype(np.float32)))
+        self.synthesis.weight.copy_(w)
+        chan_mean = mean.reshape(3, STRIDE * STRIDE).mean(axis=1) / 255.0
+        self.synthesis.bias.copy_(torch.from_numpy(chan_mean.astype(np.float32)))
+        # Laplace scale b = std / sqrt(2) for each latent channel.
+        std = np.sqrt(np.maximum(vals[order], 1e-6)) / 8.0
+        self.log_scale.copy_(torch.from_numpy(np.log2(std / np.sqrt(2.0)).astype(np.float32)))
 
     def likelihood_bits(self, y_tilde: torch.Tensor, s: torch.Tensor, keep: torch.Tensor) -> torch.Tensor:
         """Bits of noisy latents in quantiser units under Laplace(0, b_c / s); masked channels free."""
@@ -86,7 +129,7 @@ def train_step(model: Autoencoder, x: torch.Tensor, lam: float, gen: torch.Gener
     nb, _, h, w = x.shape
     c = model.arch.latent
     y = model.encoder(x)
-    s = torch.exp2(torch.rand(nb, 1, 1, 1, generator=gen) * 3.0 - 1.0)  # scales 0.5 .. 4
+    s = torch.exp2(torch.rand(nb, 1, 1, 1, generator=gen) * 4.0 - 2.5)  # latent steps 0.18 .. 2.8
     noise = torch.rand(y.shape, generator=gen) - 0.5
     y_tilde = y / s + noise
     keep_n = torch.where(torch.rand(nb, generator=gen) < 0.5, torch.full((nb,), c),

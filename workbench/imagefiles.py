@@ -68,12 +68,17 @@ class SourceImage:
         return 1 if self.pixels.ndim == 2 else 3
 
     def checksum(self) -> str:
-        """SHA-256 of the pixels (and alpha), independent of the file format."""
+        """SHA-256 of the pixels (and alpha), independent of the file format (computed once:
+        a SourceImage's arrays are treated as read-only)."""
+        cached = self.__dict__.get("_checksum")
+        if cached is not None:
+            return cached
         h = hashlib.sha256(f"{self.pixels.shape}{self.pixels.dtype.str}".encode())
         h.update(np.ascontiguousarray(self.pixels).tobytes())
         if self.alpha is not None:
             h.update(np.ascontiguousarray(self.alpha).tobytes())
-        return h.hexdigest()
+        self.__dict__["_checksum"] = h.hexdigest()
+        return self.__dict__["_checksum"]
 
     def full(self) -> np.ndarray:
         """Pixels with alpha appended as a last channel, as written to disk."""

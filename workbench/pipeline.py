@@ -398,9 +398,15 @@ class ImagePreview:
         return coded, px
 
     def numbers(self, coded, pixels) -> Numbers:
+        from concurrent.futures import ThreadPoolExecutor
+
         img = self.img
-        size = _overhead_bytes(img, coded.analysis.settings, self.shared_ref) + len(self.codec.serialise(coded))
-        p = metrics.psnr(img.pixels, pixels, data_range=img.peak)
-        s = metrics.ssim(img.pixels, pixels, data_range=img.peak) if min(img.height, img.width) > 11 else float("nan")
+        with ThreadPoolExecutor(max_workers=1) as pool:
+            # SSIM runs in OpenCV and numpy without the GIL, so it overlaps the entropy coder.
+            ssim = pool.submit(metrics.ssim, img.pixels, pixels, data_range=img.peak) \
+                if min(img.height, img.width) > 11 else None
+            size = _overhead_bytes(img, coded.analysis.settings, self.shared_ref) + len(self.codec.serialise(coded))
+            p = metrics.psnr(img.pixels, pixels, data_range=img.peak)
+            s = ssim.result() if ssim is not None else float("nan")
         raw = img.width * img.height * img.channels * img.bits / 8
         return Numbers(size, 8 * size / (img.width * img.height), raw / size, p, s, coded.kept, coded.step)

@@ -24,11 +24,12 @@ from .jobs import Progress
 CROP = 96
 BATCH = 8
 VAL_CROPS = 8
+WARMUP = 300
 
 
 @dataclass(frozen=True)
 class TrainConfig:
-    latent: int = 48
+    latent: int = 96
     hidden: int = 64
     lam: float = 0.01
     minutes: float = 10.0
@@ -58,6 +59,22 @@ def _crop(rng, x):
     if rng.random() < 0.5:
         c = c[:, ::-1, :]
     return np.ascontiguousarray(c)
+
+
+def _klt_patches(train, rng, n: int = 40000) -> np.ndarray:
+    """Random 8x8 patches (3 planes) from the training images, for the linear paths' KLT."""
+    from .conv_model import STRIDE
+
+    out = []
+    per = max(1, n // len(train))
+    for x in train:
+        _, h, w = x.shape
+        if h < STRIDE or w < STRIDE:
+            continue
+        ys = rng.integers(0, h - STRIDE + 1, per)
+        xs = rng.integers(0, w - STRIDE + 1, per)
+        out.append(np.stack([x[:, y:y + STRIDE, x0:x0 + STRIDE] for y, x0 in zip(ys, xs)]))
+    return np.concatenate(out)
 
 
 def _state_path(out: Path) -> Path:
@@ -126,7 +143,11 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
                 raise InputError(f"{src}: its architecture {base.arch} differs from the one asked for {net.arch}")
         elif config.start_from != "shipped":
             raise InputError(f"{src}: no such model file to start from")
-    opt = torch.optim.Adam(net.parameters(), lr=config.lr)
+    if started_from is None and not (resume and out.exists()):
+        net.init_from_klt(_klt_patches(train, rng))
+    linear = {id(p) for p in net.linear_parameters()}
+    opt = torch.optim.Adam([{"params": [p for p in net.parameters() if id(p) not in linear], "scale": 1.0},
+                            {"params": net.linear_parameters(), "scale": 0.1}], lr=config.lr)
     step0, history = 0, []
     if resume and out.exists():
         m = Model(read_model(out))
@@ -178,10 +199,12 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
             elapsed = time.monotonic() - start
             if elapsed >= budget or (config.max_steps is not None and step - step0 >= config.max_steps):
                 break
-            # Cosine decay of the learning rate over the budget, down to a tenth.
+            # Warm-up over the first steps (a model that starts as the KLT should not be jolted),
+            # then cosine decay over the budget down to a tenth; the linear paths move slower.
             frac = min(1.0, elapsed / budget) if config.max_steps is None else (step - step0) / config.max_steps
+            warm = min(1.0, (step - step0 + 1) / WARMUP)
             for g in opt.param_groups:
-                g["lr"] = config.lr * (0.1 + 0.45 * (1 + np.cos(np.pi * frac)))
+                g["lr"] = config.lr * g["scale"] * warm * (0.1 + 0.45 * (1 + np.cos(np.pi * frac)))
             batch = torch.from_numpy(np.stack([_crop(rng, train[rng.integers(len(train))]) for _ in range(BATCH)]))
             loss, b, mse = conv_model.train_step(net, batch, config.lam, gen)
             opt.zero_grad()

@@ -182,8 +182,10 @@ class ConvCodec:
         if not (STEP_INDEX_RANGE[0] <= j <= STEP_INDEX_RANGE[1]) or not (1 <= kept <= shared.channels) \
                 or coder not in (LEARNED, ADAPTIVE):
             raise BundleError(f"image payload has invalid step index {j}, channel count {kept} or coder {coder}")
+        from ..conv_model import STRIDE
+
         h, w = shapes[0]
-        lh, lw = -(-h // 16), -(-w // 16)
+        lh, lw = -(-h // STRIDE), -(-w // STRIDE)
         body = payload[_HEAD.size:]
         if coder == ADAPTIVE:
             q = coefcode.decode_grids(body, [(lh, lw, kept)], [3])[0].transpose(2, 0, 1)

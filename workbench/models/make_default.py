@@ -52,8 +52,8 @@ def main(argv=None):
     from workbench.training import TrainConfig, train_job
 
     ap = argparse.ArgumentParser()
-    ap.add_argument("--minutes", type=float, default=20.0)
-    ap.add_argument("--lambda", dest="lam", type=float, default=0.05)
+    ap.add_argument("--minutes", type=float, default=15.0)
+    ap.add_argument("--lambda", dest="lam", type=float, default=0.08)
     ap.add_argument("-o", "--output", default=str(HERE / "default.wmodel"))
     a = ap.parse_args(argv)
     images = training_images()
