@@ -36,7 +36,8 @@ class Baseline:
         if self.name == "webp":
             return {"quality": int(knob), "method": 6}
         if self.name == "avif":
-            return {"quality": int(knob), "speed": 6, "subsampling": "4:2:0"}
+            # libavif's default speed; one thread (the sheet runs one image per process).
+            return {"quality": int(knob), "speed": 6, "subsampling": "4:2:0", "max_threads": 1}
         raise InputError(f"unknown baseline {self.name!r}")
 
 

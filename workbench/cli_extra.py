@@ -57,8 +57,8 @@ def _train(sub):
     p.add_argument("-o", "--output", required=True, metavar="MODEL.wmodel")
     p.add_argument("--latent", type=int, default=96, metavar="C", help="latent channels (default 96)")
     p.add_argument("--hidden", type=int, default=64, help="channels inside the network (default 64)")
-    p.add_argument("--lambda", dest="lam", type=float, default=0.01, metavar="L",
-                   help="weight of distortion against rate: larger = higher quality (default 0.01)")
+    p.add_argument("--lambda", dest="lam", type=float, default=0.08, metavar="L",
+                   help="weight of distortion against rate: larger = higher quality (default 0.08)")
     p.add_argument("--minutes", type=float, default=10.0, metavar="M", help="training time budget (default 10)")
     p.add_argument("--steps", type=int, help="stop after this many steps instead (for quick checks)")
     p.add_argument("--seed", type=int, default=0)

@@ -112,12 +112,13 @@ class Autoencoder(nn.Module):
         self.log_scale.copy_(torch.from_numpy(np.log2(std / np.sqrt(2.0)).astype(np.float32)))
 
     def likelihood_bits(self, y_tilde: torch.Tensor, s: torch.Tensor, keep: torch.Tensor) -> torch.Tensor:
-        """Bits of noisy latents in quantiser units under Laplace(0, b_c / s); masked channels free."""
+        """Bits of each image's noisy latents (quantiser units) under Laplace(0, b_c / s);
+        masked channels are free. Returns one value per batch item."""
         b = (2.0 ** self.log_scale)[None, :, None, None] / s
         upper = _laplace_cdf(y_tilde + 0.5, b)
         lower = _laplace_cdf(y_tilde - 0.5, b)
         p = torch.clamp(upper - lower, min=1e-9)
-        return (-torch.log2(p) * keep).sum()
+        return (-torch.log2(p) * keep).sum(dim=(1, 2, 3))
 
 
 def _laplace_cdf(x, b):
@@ -125,7 +126,9 @@ def _laplace_cdf(x, b):
 
 
 def train_step(model: Autoencoder, x: torch.Tensor, lam: float, gen: torch.Generator):
-    """Loss = bits per pixel + lam * 255^2 * MSE, with random quantiser scale and nested dropout."""
+    """Loss = bits per pixel + (lam / s^2) * 255^2 * MSE per image, with a random latent step s
+    and nested dropout. Scaling lambda with 1/s^2 keeps each step at its own rate–distortion
+    balance (distortion grows as the step squared), so one model serves every step."""
     nb, _, h, w = x.shape
     c = model.arch.latent
     y = model.encoder(x)
@@ -136,10 +139,10 @@ def train_step(model: Autoencoder, x: torch.Tensor, lam: float, gen: torch.Gener
                          torch.randint(1, c + 1, (nb,), generator=gen))
     keep = (torch.arange(c)[None, :] < keep_n[:, None]).float()[:, :, None, None]
     x_hat = model.decoder(y_tilde * s * keep)
-    bits = model.likelihood_bits(y_tilde, s, keep)
-    bpp = bits / (nb * h * w)
-    mse = F.mse_loss(x_hat, x)
-    return bpp + lam * 255.0**2 * mse, bpp.detach(), mse.detach()
+    bpp = model.likelihood_bits(y_tilde, s, keep) / (h * w)
+    mse = ((x_hat - x) ** 2).mean(dim=(1, 2, 3))
+    loss = (bpp + lam / s.reshape(-1) ** 2 * 255.0**2 * mse).mean()
+    return loss, bpp.mean().detach(), mse.mean().detach()
 
 
 # ------------------------------------------------------------------ tiled inference

@@ -15,7 +15,8 @@ import hashlib
 import importlib.metadata as md
 import io
 import json
-from concurrent.futures import ThreadPoolExecutor
+import multiprocessing
+from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -31,7 +32,8 @@ CAUTION = ("Lossy compression discards information. Where images are evidence, r
            "lossy storage may be restricted: follow local regulations and professional guidelines.")
 TILE = 32
 WORST_CROPS = 6
-SWEEP_POINTS = 8
+SWEEP_POINTS = 6
+WORKERS = 2
 LIBRARIES = ("numpy", "scipy", "Pillow", "scikit-image", "opencv-python-headless", "constriction", "matplotlib")
 
 
@@ -72,10 +74,23 @@ def _versions() -> dict:
     return out
 
 
-def _knobs(b: baselines.Baseline, n: int) -> list:
-    k = list(b.knobs)
-    idx = np.unique(np.linspace(0, len(k) - 1, n).round().astype(int))
-    return [k[i] for i in idx]
+PROBES = (5, 50, 95)
+SHEET_STEPS = (2.5, 4.0, 6.0, 9.0, 13.5, 20.0, 30.0, 45.0)
+
+
+def _knobs(b: baselines.Baseline, pixels: np.ndarray, lo: float, hi: float, n: int) -> list:
+    """Knobs whose files should span our curve's rates [lo, hi] (with a margin), so the
+    curves overlap where BD-rate is computed. JPEG 2000's knob is a compression ratio, set
+    directly; the quality knobs are found from the sizes of a few probe files."""
+    targets = np.geomspace(0.6 * lo, 1.6 * hi, n)
+    h, w = pixels.shape[:2]
+    if b.name == "jpeg2000":
+        raw_bpp = 8 * pixels.itemsize * (1 if pixels.ndim == 2 else pixels.shape[2])
+        return sorted({round(float(raw_bpp / t), 2) for t in targets if raw_bpp / t > 1.0}, reverse=True)
+    sizes = [8 * len(baselines.encode(b, pixels, k)) / (h * w) for k in PROBES]
+    order = np.argsort(sizes)
+    knobs = np.interp(np.log(targets), np.log(np.asarray(sizes)[order]), np.asarray(PROBES, float)[order])
+    return sorted({int(np.clip(round(k), 1, 100)) for k in knobs})
 
 
 def _bd(ref_pts, test_pts, key) -> float | None:
@@ -110,16 +125,31 @@ def _jpeg_bytes_meeting(img: SourceImage, kind: str, floor: float) -> float | No
     return best
 
 
+def _curves_in_worker(name, pixels, settings_dict, names, shared_bytes, shared_ref) -> dict:
+    """Process-pool entry: rebuild what cannot travel cheaply (the shared side) and run
+    :func:`_curves`. Pillow's encoders and our coder hold the GIL, so threads would not help."""
+    import cv2
+
+    from . import codecs
+
+    cv2.setNumThreads(1)  # one image per process already fills the cores
+    settings = Settings.from_dict(settings_dict)
+    shared = None if shared_bytes is None else codecs.get(settings.method).shared_from_bytes(shared_bytes)
+    return _curves(SourceImage(name, pixels), settings, names, shared, shared_ref)
+
+
 def _curves(img: SourceImage, settings: Settings, names, shared, shared_ref) -> dict:
     ours_settings = settings.replace(target=None)
-    pts = pipeline.rd_points(img, ours_settings, shared=shared, shared_ref=shared_ref)
+    steps = SHEET_STEPS if settings.method == "klt" else None
+    pts = pipeline.rd_points(img, ours_settings, steps, shared=shared, shared_ref=shared_ref)
     curves = {"ours": [{"bpp": p.bpp, "psnr": p.psnr, "ssim": p.ssim, "bytes": p.bytes, "knob": p.step} for p in pts]}
+    lo, hi = pts[0].bpp, pts[-1].bpp
     for n in names:
         b = baselines.get(n)
         if not baselines.supports(b, img.pixels):
             continue
         curves[n] = [{"bpp": p.bpp, "psnr": p.psnr, "ssim": p.ssim, "bytes": p.bytes, "knob": p.knob}
-                     for p in baselines.sweep(b, img.pixels, _knobs(b, SWEEP_POINTS))]
+                     for p in baselines.sweep(b, img.pixels, _knobs(b, img.pixels, lo, hi, SWEEP_POINTS))]
     return curves
 
 
@@ -159,8 +189,12 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
                              wp, wx, wy, enc.step, ok))
         crops.append((wp, img, px, wx, wy))
     yield Progress(2, total, "rate–distortion curves")
-    with ThreadPoolExecutor(max_workers=2) as pool:
-        futures = [pool.submit(_curves, img, settings, names, shared, shared_ref) for img in images]
+    shared_bytes = None if shared is None else pipeline.codecs.get(settings.method).shared_to_bytes(shared)
+    # forkserver: workers start clean, which is safe from inside the GUI's threads too.
+    pool = ProcessPoolExecutor(max_workers=WORKERS, mp_context=multiprocessing.get_context("forkserver"))
+    with pool:
+        futures = [pool.submit(_curves_in_worker, img.name, img.pixels, settings.to_dict(), list(names),
+                               shared_bytes, shared_ref) for img in images]
         try:
             for i, (row, fut) in enumerate(zip(rows, futures)):
                 row.curves = fut.result()
@@ -170,8 +204,7 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
                                      "ssim": _bd(row.curves[n], row.curves["ours"], "ssim")}
                 yield Progress(3 + i, total, f"curves for {row.name}")
         except GeneratorExit:
-            for f in futures:
-                f.cancel()
+            pool.shutdown(wait=False, cancel_futures=True)
             raise
     target = settings.target
     search = None
@@ -250,7 +283,9 @@ def _aggregate(subset, key) -> list[dict]:
 
 
 def _folder_curves(rows, names) -> dict:
-    """Folder-level curves: at each setting, total bits over total pixels and mean quality.
+    """Folder-level curves: point i is the i-th point of every image's curve (ours: one
+    step for all; a baseline: each image's i-th rate-matched knob), as total bits over
+    total pixels and mean quality.
 
     Computed over the images that every compared codec can carry (16-bit images only go
     through JPEG 2000), so all curves describe the same pictures.

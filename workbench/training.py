@@ -31,7 +31,7 @@ WARMUP = 300
 class TrainConfig:
     latent: int = 96
     hidden: int = 64
-    lam: float = 0.01
+    lam: float = 0.08
     minutes: float = 10.0
     seed: int = 0
     lr: float = 1e-3
@@ -185,7 +185,7 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
             x_hat = net.decoder(q).clamp(0, 1)
             mse = float(torch.mean((x_hat - val) ** 2))
             keep = torch.ones(1, config.latent, 1, 1)
-            bits = float(net.likelihood_bits(q, torch.ones(1, 1, 1, 1), keep))
+            bits = float(net.likelihood_bits(q, torch.ones(1, 1, 1, 1), keep).sum())
         net.train()
         psnr = 10 * np.log10(1.0 / max(mse, 1e-12))
         bpp = bits / (val.shape[0] * CROP * CROP)

@@ -64,7 +64,7 @@ def section_trained(minutes):
         path = Path(tmp) / "m.wmodel"
         t = time.perf_counter()
         rec = run(train_job([SourceImage(f"t{i}", a) for i, a in enumerate(train)], path,
-                            TrainConfig(minutes=minutes, lam=0.02)))
+                            TrainConfig(minutes=minutes)))
         print(f"trained {rec['steps']} steps in {time.perf_counter() - t:.0f} s; last validation {rec['history'][-1]}")
         model, sha = get("conv").load_model(path)
         s = Settings(basis_scope="folder")

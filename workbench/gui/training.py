@@ -22,7 +22,7 @@ class TrainOptions(QDialog):
         self.lam = QDoubleSpinBox()
         self.lam.setDecimals(4)
         self.lam.setRange(0.0005, 10)
-        self.lam.setValue(0.01)
+        self.lam.setValue(0.08)
         self.latent = QSpinBox()
         self.latent.setRange(4, 256)
         self.latent.setValue(96)

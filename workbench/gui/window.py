@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import importlib.metadata as md
+from collections import OrderedDict
 from pathlib import Path
 
 import numpy as np
@@ -24,6 +25,7 @@ SAMPLES = Path(__file__).resolve().parents[2] / "sample_images"
 CAUTION = ("Lossy compression discards information. Where images are evidence, records or used for "
            "diagnosis, lossy storage may be restricted: follow local regulations and professional guidelines.")
 THUMB = 96
+PREVIEW_CACHE = 3  # fitted transforms kept (each holds the image's patches: ~100 MB at 4 Mpixel)
 
 
 def icon(name: str) -> QIcon:
@@ -68,7 +70,7 @@ class MainWindow(QMainWindow):
         self.bundle_path: Path | None = None
         self.images: list[SourceImage] = []
         self.index = -1
-        self._previews: dict = {}
+        self._previews: OrderedDict = OrderedDict()  # a few fitted images, least recently used dropped
         self._shared: dict = {}
         self._numbers: dict = {}
         self._shown = None  # (orig, rec) arrays on screen
@@ -305,6 +307,8 @@ class MainWindow(QMainWindow):
         self.target_lane.invalidate()
         key = (img.name, s.method, s.block, s.chroma, s.basis_scope)
         prev = self._previews.get(key)
+        if prev is not None:
+            self._previews.move_to_end(key)
         if prev is None:
             self.status_text.setText(f"fitting the transform for {img.name}…")
             self.fit_lane.submit(lambda: self._make_preview(img, s, key), tag=key)
@@ -330,6 +334,8 @@ class MainWindow(QMainWindow):
     def _on_fitted(self, _tag, value):
         key, prev = value
         self._previews[key] = prev
+        while len(self._previews) > PREVIEW_CACHE:
+            self._previews.popitem(last=False)
         model = getattr(prev.analysis, "model", None)
         if model is not None and self.panel.count.maximum() != model.channels:
             self.panel.set_count_range(model.channels)
