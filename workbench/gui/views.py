@@ -34,7 +34,10 @@ class ImageView(QGraphicsView):
         self._syncing = False
 
     def set_array(self, rgb) -> None:
-        self.item.setPixmap(QPixmap.fromImage(to_qimage(rgb)))
+        self.set_qimage(to_qimage(rgb))
+
+    def set_qimage(self, image) -> None:
+        self.item.setPixmap(QPixmap.fromImage(image))
         self.scene().setSceneRect(QRectF(self.item.pixmap().rect()))
 
     def clear(self) -> None:

@@ -314,7 +314,8 @@ class MainWindow(QMainWindow):
             self.fit_lane.submit(lambda: self._make_preview(img, s, key), tag=key)
             return
         self.panel.show_energy(prev.energy_kept(), s.kept)
-        self.preview_lane.submit(lambda: self._reconstruct(prev, s), tag=(img.name, s))
+        look = self._diff_look()
+        self.preview_lane.submit(lambda: self._reconstruct(prev, s, look), tag=(img.name, s))
         if cached is not None:
             self._show_numbers(img, cached)
 
@@ -342,16 +343,31 @@ class MainWindow(QMainWindow):
         self.status_text.setText("")
         self.refresh()
 
-    def _reconstruct(self, prev, s):
+    def _diff_look(self):
+        return (self.panel.diff_mode.currentData(), float(self.panel.gain.value()), self.panel.worst.isChecked())
+
+    @staticmethod
+    def _render(img, rec, look):
+        """Everything the views need, computed off the GUI thread (QImage is thread-safe)."""
+        signed, gain, worst = look
+        marks = []
+        if worst and min(img.pixels.shape[:2]) >= 32:
+            tiles = metrics.tile_psnr(img.pixels, rec, tile=32, data_range=img.peak)
+            marks = [(x, y, 32, 32) for x, y, p in tiles.worst(5) if np.isfinite(p)]
+        return {"rec": imaging.to_qimage(imaging.display_rgb(rec)),
+                "diff": imaging.to_qimage(imaging.difference(img.pixels, rec, img.peak, gain, signed)),
+                "marks": marks, "look": look}
+
+    def _reconstruct(self, prev, s, look):
         coded, px = prev.reconstruct(s)
-        return prev, s, coded, px
+        return prev, s, coded, px, self._render(prev.img, px, look)
 
     def _on_preview(self, tag, value):
-        prev, s, coded, px = value
+        prev, s, coded, px, rendered = value
         img = prev.img
         if img is not self.current:
             return
-        self._display(img, px)
+        self._display(img, px, rendered)
         key = (img.name, s.cache_key())
         if key in self._numbers:
             self._show_numbers(img, self._numbers[key])
@@ -380,7 +396,7 @@ class MainWindow(QMainWindow):
             return
         if rec.ndim == 3 and rec.shape[2] in (2, 4):
             rec = rec[..., :-1] if rec.shape[2] == 4 else rec[..., 0]
-        self._display(img, rec)
+        self._display(img, rec, self._render(img, rec, self._diff_look()))
         self._numbers[(img.name, s.cache_key())] = n
         self._show_numbers(img, n)
 
@@ -402,13 +418,18 @@ class MainWindow(QMainWindow):
         self.notice.show_text(f"Could not compute the preview: {msg}")
 
     # ------------------------------------------------------------------ display
-    def _display(self, img, rec):
+    def _display(self, img, rec, rendered):
         first = self._shown is None or self._shown[0] is not img.pixels
         self._shown = (img.pixels, rec, img.peak)
         if first:
             self.views.views[0].set_array(imaging.display_rgb(img.pixels))
-        self.views.views[1].set_array(imaging.display_rgb(rec))
-        self._redraw_difference()
+        self.views.views[1].set_qimage(rendered["rec"])
+        if rendered["look"] == self._diff_look():
+            self.views.views[2].set_qimage(rendered["diff"])
+            self.views.views[2].set_marks(rendered["marks"])
+            self._update_legend()
+        else:
+            self._redraw_difference()
 
     def _redraw_difference(self):
         if self._shown is None:
@@ -417,14 +438,19 @@ class MainWindow(QMainWindow):
         signed = self.panel.diff_mode.currentData()
         gain = float(self.panel.gain.value())
         self.views.views[2].set_array(imaging.difference(orig, rec, peak, gain, signed))
-        lim = (128 if signed else 255) / gain
-        label = f"−{lim:.3g} … 0 … +{lim:.3g} levels" if signed else f"0 … {lim:.3g} levels"
-        self.views.set_legend(imaging.legend(signed), f"error in 8-bit levels: {label}")
+        self._update_legend()
         marks = []
         if self.panel.worst.isChecked() and min(orig.shape[:2]) >= 32:
             tiles = metrics.tile_psnr(orig, rec, tile=32, data_range=peak)
             marks = [(x, y, 32, 32) for x, y, p in tiles.worst(5) if np.isfinite(p)]
         self.views.views[2].set_marks(marks)
+
+    def _update_legend(self):
+        signed = self.panel.diff_mode.currentData()
+        gain = float(self.panel.gain.value())
+        lim = (128 if signed else 255) / gain
+        label = f"−{lim:.3g} … 0 … +{lim:.3g} levels" if signed else f"0 … {lim:.3g} levels"
+        self.views.set_legend(imaging.legend(signed), f"error in 8-bit levels: {label}")
 
     def _on_hover(self, x, y):
         if self._shown is None:
