@@ -44,9 +44,12 @@ def cmd_sheet(a) -> int:
     for n, v in sheet["folder"]["bd_rate"].items():
         bd = v["psnr"]
         print(f"  BD-rate (PSNR) against {n}: {'n/a' if bd is None else f'{bd:+.1f} %'}")
-    if sheet["target_search"]:
-        ts = sheet["target_search"]
-        print(f"  per-image search saves {100 * ts['saving_vs_one_step']:.1f} % against one step for all images")
+    ts = sheet["target_search"]
+    if ts and ts["tuned_bytes"] is not None:
+        print(f"  per-image search saves {100 * ts['saving_vs_one_step']:.1f} % against one step for all images"
+              + (f"; {100 * ts['saving_vs_jpeg']:.1f} % against JPEG at the same floor" if ts["jpeg_bytes"] else ""))
+    if ts and ts["unreachable"]:
+        print(f"  cannot reach the target at any step: {', '.join(ts['unreachable'])}")
     return 0 if t["passed"] in (None, t["images"]) else 1
 
 

@@ -56,6 +56,7 @@ class ImageRow:
     curves: dict = field(default_factory=dict)
     bd: dict = field(default_factory=dict)
     jpeg_bytes_at_floor: float | None = None
+    target_met: bool | None = None
 
     def table(self) -> dict:
         return {"name": self.name, "width": self.width, "height": self.height, "bits": self.bits,
@@ -186,7 +187,7 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
         if require_psnr is not None or require_ssim is not None:
             ok = (require_psnr is None or p >= require_psnr) and (require_ssim is None or s >= require_ssim)
         rows.append(ImageRow(img.name, img.width, img.height, img.bits, enc.bytes, enc.bpp, enc.ratio, p, s,
-                             wp, wx, wy, enc.step, ok))
+                             wp, wx, wy, enc.step, ok, target_met=enc.target_met))
         crops.append((wp, img, px, wx, wy))
     yield Progress(2, total, "rate–distortion curves")
     shared_bytes = None if shared is None else pipeline.codecs.get(settings.method).shared_to_bytes(shared)
@@ -305,18 +306,26 @@ def _folder_curves(rows, names) -> dict:
 def _target_summary(images, settings, rows, shared, shared_ref) -> dict:
     """Per-image cheapest step meeting the floor, against one step for every image and JPEG."""
     kind, floor = settings.target
-    one_step = min(r.step for r in rows)
-    uniform = pipeline.encode(images, settings.replace(target=None, step=one_step), shared=shared,
+    # Only images that can reach the floor at all are compared; the others are listed.
+    pairs = [(img, r) for img, r in zip(images, rows) if r.target_met]
+    unreachable = [r.name for r in rows if not r.target_met]
+    if not pairs:
+        return {"kind": kind, "floor": floor, "unreachable": unreachable, "tuned_bytes": None, "one_step": None,
+                "one_step_bytes": None, "saving_vs_one_step": None, "jpeg_bytes": None, "saving_vs_jpeg": None,
+                "per_image_jpeg_bytes": {}}
+    met_images = [img for img, _ in pairs]
+    one_step = min(r.step for _, r in pairs)
+    uniform = pipeline.encode(met_images, settings.replace(target=None, step=one_step), shared=shared,
                               shared_ref=shared_ref, measure=False)
-    tuned = sum(r.bytes for r in rows)
-    jpeg = [_jpeg_bytes_meeting(img, kind, floor) for img in images]
+    tuned = pipeline.encode(met_images, settings, shared=shared, shared_ref=shared_ref, measure=False).size
+    jpeg = [_jpeg_bytes_meeting(img, kind, floor) for img in met_images]
     jpeg_total = None if any(j is None for j in jpeg) else float(sum(jpeg))
-    for r, j in zip(rows, jpeg):
+    for (_, r), j in zip(pairs, jpeg):
         r.jpeg_bytes_at_floor = j
-    return {"kind": kind, "floor": floor, "tuned_bytes": tuned, "one_step": one_step,
+    return {"kind": kind, "floor": floor, "unreachable": unreachable, "tuned_bytes": tuned, "one_step": one_step,
             "one_step_bytes": uniform.size, "saving_vs_one_step": 1 - tuned / uniform.size,
             "jpeg_bytes": jpeg_total, "saving_vs_jpeg": None if jpeg_total is None else 1 - tuned / jpeg_total,
-            "per_image_jpeg_bytes": {r.name: j for r, j in zip(rows, jpeg)}}
+            "per_image_jpeg_bytes": {r.name: j for (_, r), j in zip(pairs, jpeg)}}
 
 
 # ------------------------------------------------------------------ PDF
@@ -367,7 +376,9 @@ def _pdf(sheet, rows, crops) -> bytes:
             fl = sheet["floors"]
             lines.append(f"Floors: PSNR >= {fl['psnr']}  SSIM >= {fl['ssim']}:  {t['passed']} of {t['images']} images pass")
         ts = sheet["target_search"]
-        if ts:
+        if ts and ts["unreachable"]:
+            lines.append(f"Cannot reach {ts['kind']} >= {ts['floor']} at any step: " + ", ".join(ts["unreachable"]))
+        if ts and ts["tuned_bytes"] is not None:
             lines.append(f"Target {ts['kind']} >= {ts['floor']}: per-image steps {ts['tuned_bytes']:,.0f} bytes; one step "
                          f"({ts['one_step']:.3g}) for all {ts['one_step_bytes']:,} bytes -> saving "
                          f"{100 * ts['saving_vs_one_step']:.1f} %" + (
