@@ -51,6 +51,14 @@ class _Task(QRunnable):
             pass  # the window closed while this ran: nobody is left to tell
 
 
+def _attach(owner, pool) -> None:
+    """Give ``owner`` a pool and the signals its tasks report through."""
+    owner.pool = pool or QThreadPool.globalInstance()
+    owner._signals = _Signals()
+    owner._signals.done.connect(owner._on_done)
+    owner._signals.failed.connect(owner._on_failed)
+
+
 class Lane(QObject):
     """Single-flight execution with latest-wins coalescing."""
 
@@ -60,10 +68,7 @@ class Lane(QObject):
 
     def __init__(self, pool: QThreadPool | None = None, parent=None):
         super().__init__(parent)
-        self.pool = pool or QThreadPool.globalInstance()
-        self._signals = _Signals()
-        self._signals.done.connect(self._on_done)
-        self._signals.failed.connect(self._on_failed)
+        _attach(self, pool)
         self._latest = 0
         self._running = False
         self._pending = None
@@ -125,10 +130,7 @@ class JobRunner(QObject):
 
     def __init__(self, pool: QThreadPool | None = None, parent=None):
         super().__init__(parent)
-        self.pool = pool or QThreadPool.globalInstance()
-        self._signals = _Signals()
-        self._signals.done.connect(self._on_done)
-        self._signals.failed.connect(self._on_failed)
+        _attach(self, pool)
         self._signals.progress.connect(self.progress)
         self._cancel = False
         self._tag = None
