@@ -157,41 +157,37 @@ def _pad_to(x: np.ndarray, mult: int) -> np.ndarray:
     return np.pad(x, ((0, 0), (0, ph), (0, pw)), mode="edge")
 
 
+def _tiled(fn, x: np.ndarray, out_channels: int, tile: int, margin: int, up: int, down: int) -> np.ndarray:
+    """Apply a fully convolutional ``fn`` to (C, H, W) ``x`` in overlapping tiles.
+
+    Output coordinates are input coordinates times ``up / down``; each tile is run with
+    ``margin`` extra samples around it and only its core is kept, so no seam shows.
+    """
+    _, h, w = x.shape
+
+    def m(v):
+        return v * up // down
+
+    out = np.zeros((out_channels, m(h), m(w)), np.float32)
+    for y0 in range(0, h, tile):
+        for x0 in range(0, w, tile):
+            y1, x1 = min(h, y0 + tile), min(w, x0 + tile)
+            a0, b0 = max(0, y0 - margin), max(0, x0 - margin)
+            a1, b1 = min(h, y1 + margin), min(w, x1 + margin)
+            z = fn(torch.from_numpy(np.ascontiguousarray(x[:, a0:a1, b0:b1]))[None])[0].numpy()
+            oy, ox = m(y0 - a0), m(x0 - b0)
+            out[:, m(y0):m(y1), m(x0):m(x1)] = z[:, oy:oy + m(y1 - y0), ox:ox + m(x1 - x0)]
+    return out
+
+
 @torch.no_grad()
 def encode_array(model: Autoencoder, x: np.ndarray) -> np.ndarray:
-    """Latents (C, H/16, W/16) of a (3, H, W) float32 image in [0, 1], padded to 16, in tiles."""
-    x = _pad_to(x, STRIDE)
-    _, h, w = x.shape
-    c = model.arch.latent
-    out = np.zeros((c, h // STRIDE, w // STRIDE), np.float32)
-    for y0 in range(0, h, TILE):
-        for x0 in range(0, w, TILE):
-            y1, x1 = min(h, y0 + TILE), min(w, x0 + TILE)
-            a0, b0 = max(0, y0 - MARGIN), max(0, x0 - MARGIN)
-            a1, b1 = min(h, y1 + MARGIN), min(w, x1 + MARGIN)
-            t = torch.from_numpy(np.ascontiguousarray(x[:, a0:a1, b0:b1]))[None]
-            z = model.encoder(t)[0].numpy()
-            oy, ox = (y0 - a0) // STRIDE, (x0 - b0) // STRIDE
-            out[:, y0 // STRIDE:y1 // STRIDE, x0 // STRIDE:x1 // STRIDE] = \
-                z[:, oy:oy + (y1 - y0) // STRIDE, ox:ox + (x1 - x0) // STRIDE]
-    return out
+    """Latents (C, H/8, W/8) of a (3, H, W) float32 image in [0, 1], padded to 8, in tiles."""
+    return _tiled(model.encoder, _pad_to(x, STRIDE), model.arch.latent, TILE, MARGIN, 1, STRIDE)
 
 
 @torch.no_grad()
 def decode_array(model: Autoencoder, y: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
     """(3, H, W) float32 reconstruction of latents, in tiles, cropped to ``shape``."""
-    c, lh, lw = y.shape
-    h, w = lh * STRIDE, lw * STRIDE
-    out = np.zeros((3, h, w), np.float32)
-    tl, ml = TILE // STRIDE, MARGIN // STRIDE
-    for y0 in range(0, lh, tl):
-        for x0 in range(0, lw, tl):
-            y1, x1 = min(lh, y0 + tl), min(lw, x0 + tl)
-            a0, b0 = max(0, y0 - ml), max(0, x0 - ml)
-            a1, b1 = min(lh, y1 + ml), min(lw, x1 + ml)
-            t = torch.from_numpy(np.ascontiguousarray(y[:, a0:a1, b0:b1]))[None]
-            z = model.decoder(t)[0].numpy()
-            oy, ox = (y0 - a0) * STRIDE, (x0 - b0) * STRIDE
-            out[:, y0 * STRIDE:y1 * STRIDE, x0 * STRIDE:x1 * STRIDE] = \
-                z[:, oy:oy + (y1 - y0) * STRIDE, ox:ox + (x1 - x0) * STRIDE]
+    out = _tiled(model.decoder, y, 3, TILE // STRIDE, MARGIN // STRIDE, STRIDE, 1)
     return out[:, : shape[0], : shape[1]]
