@@ -20,10 +20,17 @@ def test_grids_round_trip_exactly(shape):
 
 def test_extreme_values_use_escapes_and_round_trip():
     q = np.zeros((3, 4, 5), np.int64)
-    q[0, 0, 0] = 2**39 - 1
-    q[1, 2, 3] = -(2**35)
+    q[0, 0, 0] = 2**coefcode.MAX_BITS - 1
+    q[1, 2, 3] = -(2 ** (coefcode.MAX_BITS - 3))
     q[2, 3, 4] = 16
     assert np.array_equal(coefcode.decode_grids(coefcode.encode_grids([q], [0]), [q.shape], [0])[0], q)
+
+
+def test_values_beyond_the_coder_range_are_refused_by_name():
+    q = np.zeros((2, 2, 3), np.int64)
+    q[1, 1, 2] = 2**coefcode.MAX_BITS
+    with pytest.raises(ValueError, match="exceeds"):
+        coefcode.encode_grids([q], [0])
 
 
 def test_several_grids_share_models_and_round_trip():

@@ -23,7 +23,7 @@ from .errors import BundleError
 from .settings import Settings
 
 MAGIC = b"WKBUNDLE"
-VERSION = 1
+VERSION = 2  # 2: coefficient streams coded in lockstep (coefcode)
 MAX_PIXELS = 1 << 27
 _HEX64 = re.compile(r"^[0-9a-f]{64}$")
 

@@ -3,23 +3,26 @@
 A grid is an int64 array (rows, cols, K): K coefficients for each patch. Coding is done by
 constriction's range coder with categorical models whose counts adapt as coding proceeds,
 identically in the encoder and the decoder (no probability tables are transmitted).
+The grids of one image (Y, Cb, Cr) are coded in lockstep so that one call to the coder
+serves all of them: a call costs about the same Python overhead whether it carries a
+hundred symbols or a hundred thousand, so the number of calls is what sets the speed.
 
 Symbols
     magnitude token ``t = |q|`` for ``|q| < 16``; above that ``t = 11 + bitlength(|q|)`` followed
     by ``bitlength - 1`` raw mantissa bits (the leading one is implied). Signs are raw bits.
-First coefficient (k = 0)
-    replaced by the residual of the planar predictor ``L + T - TL`` over the patch grid,
-    coded row by row with a context from the residuals of the row above.
-Extent
-    for each patch, the index of its last non-zero coefficient (0 when only the first is
-    non-zero), coded row by row with a context from the extents of the row above; nothing
-    past it is coded, which is where most of the speed at useful rates comes from.
+First coefficient (k = 0) and extent
+    the first coefficient is replaced by the residual of the planar predictor ``L + T - TL``
+    over the patch grid; the extent of a patch is the index of its last non-zero coefficient
+    (0 when only the first is non-zero), and nothing past it is coded. Both are coded in
+    groups of ROW_GROUP patch rows, with a context from the row just above the group.
 Other coefficients (k >= 1, up to the extent)
-    coded component by component within bands of rows whose height doubles
-    (1, 1, 2, 4, 8, ... rows) so the models adapt early; context = coefficient group of k x
-    local activity (the patch's own two previous coefficients and its left, right and upper
-    neighbours' previous coefficient) x whether k is the patch's last coefficient (which is
-    then known to be non-zero).
+    coded in bands of rows whose height doubles (1, 1, 2, 4, 8, ... rows) so the models adapt
+    early. The first LOW components are coded one at a time, with context = coefficient group
+    of k x local activity (the patch's own two previous coefficients and its left, right and
+    upper neighbours' previous coefficient) x whether k is the patch's last coefficient.
+    The rest of a band goes in one call, with context = group of k x the patch's own
+    activity at components LOW-1 and LOW x the distance from k to the extent (zero means the
+    coefficient is the last one and known to be non-zero).
 
 Every count is an integer and every model is built from those integers, so a decoder on
 any machine rebuilds bit for bit the models the encoder used.
@@ -35,23 +38,36 @@ import numpy as np
 from .errors import BundleError
 
 DIRECT = 16
-MAX_BITS = 40
+MAX_BITS = 26
 ALPHABET = DIRECT + MAX_BITS - 4  # tokens for bit lengths 5..MAX_BITS
 INCREMENT = 32
 COUNT_LIMIT = 1 << 16
+ROW_GROUP = 2
+LOW = 8
 AC_EDGES = np.array([1, 2, 3, 4, 6, 8, 11, 15, 20, 28, 40])
 DC_EDGES = np.array([1, 2, 3, 5, 8, 12, 18, 28, 44, 70])
+EXT_EDGES = np.array([1, 2, 4, 6, 9, 13, 18, 25, 35, 50, 70, 100])
 K_EDGES = np.array([2, 3, 4, 6, 9, 14, 21, 32, 48, 80, 128, 256, 512])
+TAIL_OWN_EDGES = np.array([1, 2, 4, 8])
+TAIL_GAP_EDGES = np.array([1, 2, 4, 8, 16])
 N_AC_CLASSES = len(AC_EDGES) + 1
 N_DC_CLASSES = len(DC_EDGES) + 2  # the last class is the first row
-EXT_EDGES = np.array([1, 2, 4, 6, 9, 13, 18, 25, 35, 50, 70, 100])
 N_EXT_CLASSES = len(EXT_EDGES) + 2
 N_GROUPS = len(K_EDGES) + 1
+N_OWN = len(TAIL_OWN_EDGES) + 1
+N_GAP = len(TAIL_GAP_EDGES) + 1
+FAMILIES = (("dc", N_DC_CLASSES), ("ext", N_EXT_CLASSES), ("low", N_GROUPS * N_AC_CLASSES * 2),
+            ("tail", N_GROUPS * N_OWN * N_GAP))
+# Every context starts from the same prior: most coefficients are zero or small, and a
+# starting point near that saves each fresh context from learning it symbol by symbol.
+PRIOR = np.array([64, 32, 16, 8, 4, 2])
 _FAMILY = constriction.stream.model.Categorical(perfect=False)
 
 
 def _tokens(mag: np.ndarray):
-    """Token, number of mantissa bits and mantissa value of non-negative magnitudes."""
+    """Token and number of mantissa bits of non-negative magnitudes."""
+    if mag.size and int(mag.max()) >= 1 << MAX_BITS:
+        raise ValueError(f"coefficient magnitude {int(mag.max())} exceeds the coder's {MAX_BITS}-bit range")
     bitlen = np.frexp(mag.astype(np.float64))[1].astype(np.int64)
     esc = mag >= DIRECT
     tok = np.where(esc, DIRECT - 5 + bitlen, mag)
@@ -60,23 +76,33 @@ def _tokens(mag: np.ndarray):
 
 
 class _Models:
-    """Adaptive count tables, one row of ALPHABET counts per context."""
+    """Adaptive count tables for every context family of every grid kind in one stream."""
 
-    def __init__(self, n_contexts: int):
-        self.counts = np.ones((n_contexts, ALPHABET), dtype=np.int64)
-        # A mild prior towards small magnitudes speeds up the first rows.
-        self.counts[:, :4] += np.array([24, 8, 4, 2])
+    def __init__(self, kinds):
+        self.offset = {}
+        n = 0
+        for family, size in FAMILIES:  # family-major, so one call touches one contiguous slice
+            for kind in sorted(set(kinds)):
+                self.offset[kind, family] = n
+                n += size
+        self.counts = np.ones((n, ALPHABET), dtype=np.int64)
+        self.counts[:, :PRIOR.size] = PRIOR
+        self._probs = self.counts.astype(np.float32)
 
     def probabilities(self, ctx: np.ndarray) -> np.ndarray:
-        return self.counts[ctx].astype(np.float64)
+        return self._probs[ctx]
 
     def update(self, ctx: np.ndarray, tok: np.ndarray) -> None:
-        n = self.counts.shape[0]
-        hist = np.bincount(ctx * ALPHABET + tok, minlength=n * ALPHABET).reshape(n, ALPHABET)
-        self.counts += INCREMENT * hist
-        over = self.counts.sum(axis=1) > COUNT_LIMIT
-        if over.any():
-            self.counts[over] = (self.counts[over] + 1) // 2
+        # Only the rows between the smallest and largest context are touched: each call
+        # draws on one or two families, a small slice of the table.
+        lo, hi = int(ctx.min()), int(ctx.max()) + 1
+        counts = self.counts[lo:hi]
+        counts += INCREMENT * np.bincount((ctx - lo) * ALPHABET + tok, minlength=(hi - lo) * ALPHABET).reshape(-1, ALPHABET)
+        over = counts.sum(axis=1) > COUNT_LIMIT
+        while over.any():  # one call may add many symbols; halve until every row is back in range
+            counts[over] = (counts[over] + 1) // 2
+            over = counts.sum(axis=1) > COUNT_LIMIT
+        self._probs[lo:hi] = counts  # exact in float32: every count is below 2**17
 
 
 def _bands(rows: int) -> list[tuple[int, int]]:
@@ -89,10 +115,6 @@ def _bands(rows: int) -> list[tuple[int, int]]:
     return list(zip(edges[:-1], edges[1:]))
 
 
-def _k_group(k: int) -> int:
-    return int(np.searchsorted(K_EDGES, k, side="right"))
-
-
 def _dc_residual(q0: np.ndarray) -> np.ndarray:
     return np.diff(np.diff(q0, axis=0, prepend=0), axis=1, prepend=0)
 
@@ -101,12 +123,17 @@ def _dc_from_residual(res: np.ndarray) -> np.ndarray:
     return np.cumsum(np.cumsum(res, axis=0), axis=1)
 
 
-def _row_context(prev_row: np.ndarray | None, cols: int, edges: np.ndarray) -> np.ndarray:
-    """Context of a row of symbols from the magnitudes in the row above (TL + 2T + TR)."""
-    if prev_row is None:
-        return np.full(cols, len(edges) + 1, dtype=np.int64)
-    p = np.pad(np.abs(prev_row), 1)
-    return np.searchsorted(edges, p[:-2] + 2 * p[1:-1] + p[2:], side="right")
+def _row_context(above: np.ndarray | None, shape: tuple[int, int], edges: np.ndarray) -> np.ndarray:
+    """Context of a group of rows from the magnitudes in the row just above it (TL + 2T + TR)."""
+    if above is None:
+        return np.full(shape, len(edges) + 1, dtype=np.int64)
+    a = np.abs(above)
+    s = 2 * a
+    s[1:] += a[:-1]
+    s[:-1] += a[1:]
+    s[0] += a[0]
+    s[-1] += a[-1]
+    return np.broadcast_to(np.searchsorted(edges, s, side="right"), shape)
 
 
 def _extent(q: np.ndarray) -> np.ndarray:
@@ -118,10 +145,14 @@ def _extent(q: np.ndarray) -> np.ndarray:
     return np.where(nz.any(axis=2), last, 0)
 
 
-def _ac_context(mag: np.ndarray, ext: np.ndarray, r0: int, r1: int, k: int, active: np.ndarray) -> np.ndarray:
-    """Context of component k for the active patches of rows r0:r1, from coded values only.
+def _k_group(k):
+    return np.searchsorted(K_EDGES, k, side="right")
 
-    ``mag`` is laid out (K, rows, cols) so that one component is contiguous.
+
+def _low_context(mag: np.ndarray, ext: np.ndarray, r0: int, r1: int, k: int, active: np.ndarray) -> np.ndarray:
+    """Context of component k (1 <= k <= LOW) for the active patches of rows r0:r1.
+
+    ``mag`` is laid out (LOW + 1, rows, cols) so that one component is contiguous.
     """
     prev = mag[k - 1, r0:r1]
     act = 2 * prev
@@ -135,7 +166,25 @@ def _ac_context(mag: np.ndarray, ext: np.ndarray, r0: int, r1: int, k: int, acti
         act[1:] += prev[:-1]
     cls = np.searchsorted(AC_EDGES, act[active], side="right")
     last = ext[r0:r1][active] == k
-    return (_k_group(k) * N_AC_CLASSES + cls) * 2 + last
+    return (int(_k_group(k)) * N_AC_CLASSES + cls) * 2 + last
+
+
+def _tail_positions(ext: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Patch index (into ``ext.ravel()``) and component of every coefficient past LOW and up
+    to its patch's extent, patch by patch, components ascending."""
+    e = ext.reshape(-1)
+    n = np.maximum(e - LOW, 0)
+    idx = np.repeat(np.arange(e.size), n)
+    k = LOW + 1 + np.arange(idx.size) - np.repeat(np.cumsum(n) - n, n)
+    return idx, k
+
+
+def _tail_context(own: np.ndarray, ext: np.ndarray, idx: np.ndarray, k: np.ndarray) -> np.ndarray:
+    """Context of the tail coefficients at (``idx``, ``k``) from the patch's own activity at
+    components LOW-1 and LOW (``own``) and the distance to its extent."""
+    own_cls = np.searchsorted(TAIL_OWN_EDGES, own.reshape(-1)[idx], side="right")
+    gap_cls = np.searchsorted(TAIL_GAP_EDGES, ext.reshape(-1)[idx] - k, side="right")
+    return (_k_group(k) * N_OWN + own_cls) * N_GAP + gap_cls
 
 
 class _Writer:
@@ -143,16 +192,16 @@ class _Writer:
         self.enc = constriction.stream.queue.RangeEncoder()
         self.raw: list[np.ndarray] = []
 
-    def put(self, models: _Models, ctx: np.ndarray, values: np.ndarray, signed: bool = True) -> None:
-        ctx = ctx.reshape(-1)
-        values = values.reshape(-1)
+    def put(self, models: _Models, ctx: np.ndarray, values: np.ndarray, n_signed: int | None = None) -> None:
+        """Code ``values`` under the contexts ``ctx``; the first ``n_signed`` (all by default)
+        carry a sign, the rest are magnitudes."""
         mag = np.abs(values)
         tok, nbits = _tokens(mag)
         if tok.size:
             self.enc.encode(tok.astype(np.int32), _FAMILY, models.probabilities(ctx))
-        models.update(ctx, tok)
-        if signed:
-            self.raw.append((values[mag > 0] < 0).astype(np.uint8))
+            models.update(ctx, tok)
+        signed = values if n_signed is None else values[:n_signed]
+        self.raw.append((signed[signed != 0] < 0).astype(np.uint8))
         self._mantissas(nbits, mag)
 
     def put_fixed(self, probs: np.ndarray, values: np.ndarray) -> None:
@@ -202,16 +251,17 @@ class _Reader:
         self.pos += n
         return out
 
-    def get(self, models: _Models, ctx: np.ndarray, signed: bool = True) -> np.ndarray:
-        ctx = ctx.reshape(-1)
+    def get(self, models: _Models, ctx: np.ndarray, n_signed: int | None = None) -> np.ndarray:
+        """Inverse of :meth:`_Writer.put`."""
         if ctx.size == 0:
+            self._values(np.zeros(0, np.int64), 0)
             return np.zeros(0, np.int64)
         try:
             tok = np.asarray(self.dec.decode(_FAMILY, models.probabilities(ctx)), dtype=np.int64)
         except Exception as exc:
             raise BundleError(f"coefficient stream is not decodable ({exc})") from None
         models.update(ctx, tok)
-        return self._values(tok, signed)
+        return self._values(tok, tok.size if n_signed is None else n_signed)
 
     def get_fixed(self, probs: np.ndarray, n: int) -> np.ndarray:
         """Inverse of :meth:`_Writer.put_fixed`."""
@@ -222,13 +272,13 @@ class _Reader:
             tok = np.asarray(self.dec.decode(model, n), dtype=np.int64)
         except Exception as exc:
             raise BundleError(f"latent stream is not decodable ({exc})") from None
-        return self._values(tok, True)
+        return self._values(tok, n)
 
-    def _values(self, tok: np.ndarray, signed: bool) -> np.ndarray:
+    def _values(self, tok: np.ndarray, n_signed: int) -> np.ndarray:
         esc = tok >= DIRECT
         mag = np.where(esc, 0, tok)
-        nz = tok > 0
-        signs = self._take(int(nz.sum())) if signed else None  # signs precede mantissas
+        nz = tok[:n_signed] > 0
+        signs = self._take(int(nz.sum()))  # signs precede mantissas
         if esc.any():
             nb = tok[esc] - (DIRECT - 5) - 1
             bits = self._take(int(nb.sum())).astype(np.int64)
@@ -237,8 +287,8 @@ class _Reader:
             starts = np.cumsum(nb) - nb
             mant = np.add.reduceat(bits * weights, starts)
             mag[esc] = (np.int64(1) << nb) + mant
-        if signed:
-            mag[nz] = np.where(signs == 1, -mag[nz], mag[nz])
+        head = mag[:n_signed]
+        head[nz] = np.where(signs == 1, -head[nz], head[nz])
         return mag
 
 
@@ -265,8 +315,105 @@ def decode_fixed(data: bytes, sizes: list[int], counts: list[np.ndarray]) -> lis
     return [rd.get_fixed(c.astype(np.float64), n) for n, c in zip(sizes, counts)]
 
 
-def _new_models():
-    return (_Models(N_DC_CLASSES), _Models(N_EXT_CLASSES), _Models(N_GROUPS * N_AC_CLASSES * 2))
+class _Grid:
+    """Coding state of one grid: what both sides know once a symbol has been coded."""
+
+    def __init__(self, shape, kind, models: _Models, q: np.ndarray | None = None):
+        self.rows, self.cols, self.K = shape
+        self.off = {family: models.offset[kind, family] for family, _ in FAMILIES}
+        self.bands = _bands(self.rows)
+        if q is None:
+            self.q = np.zeros(shape, np.int64)
+            self.res = np.zeros(shape[:2], np.int64)
+            self.ext = np.zeros(shape[:2], np.int64)
+            self.mag = np.zeros((LOW + 1,) + shape[:2], np.int64)
+        else:
+            self.q = q
+            self.res = _dc_residual(q[:, :, 0])
+            self.ext = _extent(q)
+            self.mag = np.zeros((LOW + 1,) + shape[:2], np.int64)
+            self.mag[0] = np.abs(self.res)
+            top = min(LOW, self.K - 1)
+            self.mag[1 : top + 1] = np.abs(q[:, :, 1 : top + 1]).transpose(2, 0, 1)
+
+
+class _Encoding:
+    decoding = False
+
+    def __init__(self, writer: _Writer):
+        self.w = writer
+
+    def code(self, models, ctx, values, n_signed=None):
+        v = values()
+        self.w.put(models, ctx, v, n_signed)
+        return v
+
+
+class _Decoding:
+    decoding = True
+
+    def __init__(self, reader: _Reader):
+        self.r = reader
+
+    def code(self, models, ctx, values, n_signed=None):
+        return self.r.get(models, ctx, n_signed)
+
+
+def _split(v: np.ndarray, sizes: list[int]) -> list[np.ndarray]:
+    return np.split(v, np.cumsum(sizes)[:-1]) if sizes else []
+
+
+def _traverse(grids: list[_Grid], models: _Models, io) -> None:
+    """Visit every symbol of ``grids`` in coding order; the decoder fills the grids in."""
+    for r0 in range(0, max(g.rows for g in grids), ROW_GROUP):
+        part = [(g, slice(r0, min(g.rows, r0 + ROW_GROUP))) for g in grids if r0 < g.rows]
+        ctx, sizes = [], []
+        for family, edges, field in (("dc", DC_EDGES, "res"), ("ext", EXT_EDGES, "ext")):
+            for g, rs in part:
+                above = getattr(g, field)[r0 - 1] if r0 else None
+                c = _row_context(above, (rs.stop - r0, g.cols), edges) + g.off[family]
+                ctx.append(c.reshape(-1))
+                sizes.append(c.size)
+        n_dc = sum(sizes[: len(part)])
+        v = io.code(models, np.concatenate(ctx),
+                    lambda: np.concatenate([g.res[rs].reshape(-1) for g, rs in part]
+                                           + [g.ext[rs].reshape(-1) for g, rs in part]), n_dc)
+        if io.decoding:
+            chunks = _split(v, sizes)
+            for (g, rs), dc, ex in zip(part, chunks[: len(part)], chunks[len(part):]):
+                ex = ex.reshape(-1, g.cols)
+                if ex.max(initial=0) >= g.K:
+                    raise BundleError(f"coefficient stream claims more than {g.K} components")
+                g.res[rs] = dc.reshape(-1, g.cols)
+                g.ext[rs] = ex
+                g.mag[0, rs] = np.abs(g.res[rs])
+    if io.decoding:
+        for g in grids:
+            g.q[:, :, 0] = _dc_from_residual(g.res)
+    for i in range(max(len(g.bands) for g in grids)):
+        part = [(g, g.bands[i]) for g in grids if i < len(g.bands)]
+        top = max(min(LOW, int(g.ext[r0:r1].max(initial=0))) for g, (r0, r1) in part)
+        for k in range(1, top + 1):
+            sel = [(g, r0, r1, g.ext[r0:r1] >= k) for g, (r0, r1) in part if k < g.K]
+            ctx = [g.off["low"] + _low_context(g.mag, g.ext, r0, r1, k, a) for g, r0, r1, a in sel]
+            v = io.code(models, np.concatenate(ctx), lambda: np.concatenate([g.q[r0:r1, :, k][a] for g, r0, r1, a in sel]))
+            if io.decoding:
+                for (g, r0, r1, a), vk in zip(sel, _split(v, [c.size for c in ctx])):
+                    g.q[r0:r1, :, k][a] = vk
+                    if k <= LOW:
+                        g.mag[k, r0:r1][a] = np.abs(vk)
+        sel = [(g.q[r0:r1].reshape(-1, g.K),) + _tail_positions(g.ext[r0:r1]) for g, (r0, r1) in part]
+        ctx = [g.off["tail"] + _tail_context(g.mag[LOW, r0:r1] + g.mag[LOW - 1, r0:r1], g.ext[r0:r1], idx, k)
+               for (g, (r0, r1)), (_, idx, k) in zip(part, sel)]
+        v = io.code(models, np.concatenate(ctx), lambda: np.concatenate([qb[idx, k] for qb, idx, k in sel]))
+        if io.decoding:
+            for (qb, idx, k), vt in zip(sel, _split(v, [c.size for c in ctx])):
+                qb[idx, k] = vt
+
+
+def _check_kinds(shapes, kinds):
+    if len(shapes) != len(kinds) or not shapes:
+        raise ValueError(f"need one kind per grid, got {len(kinds)} kinds for {len(shapes)} grids")
 
 
 def encode_grids(grids: list[np.ndarray], kinds: list[int]) -> bytes:
@@ -278,62 +425,27 @@ def encode_grids(grids: list[np.ndarray], kinds: list[int]) -> bytes:
         Quantised coefficients; component 0 is predicted across patches.
     kinds : list of int
         Model family of each grid (0 luma/grey, 1 chroma, 2 basis vectors): grids of one
-        kind share adaptive models, so Cr starts from what Cb taught them.
+        kind share adaptive models, so Cr learns from what Cb taught them.
 
     Returns
     -------
     bytes
     """
+    qs = [np.asarray(q, dtype=np.int64) for q in grids]
+    for q in qs:
+        if q.ndim != 3 or q.shape[2] < 1:
+            raise ValueError(f"coefficient grid must be 3-D with at least one component, got shape {q.shape}")
+    _check_kinds(qs, kinds)
+    models = _Models(kinds)
     w = _Writer()
-    models = {}
-    for q, kind in zip(grids, kinds):
-        q = np.asarray(q, dtype=np.int64)
-        if q.ndim != 3:
-            raise ValueError(f"coefficient grid must be 3-D, got shape {q.shape}")
-        dc, em, ac = models.setdefault(kind, _new_models())
-        rows, cols, K = q.shape
-        res = _dc_residual(q[:, :, 0])
-        ext = _extent(q)
-        for r in range(rows):
-            prev = r - 1 if r else None
-            w.put(dc, _row_context(None if prev is None else res[prev], cols, DC_EDGES), res[r])
-            w.put(em, _row_context(None if prev is None else ext[prev], cols, EXT_EDGES), ext[r], signed=False)
-        qt = np.ascontiguousarray(q.transpose(2, 0, 1))
-        mag = np.abs(qt)
-        mag[0] = np.abs(res)
-        for r0, r1 in _bands(rows):
-            band_ext = ext[r0:r1]
-            for k in range(1, int(band_ext.max(initial=0)) + 1):
-                active = band_ext >= k
-                w.put(ac, _ac_context(mag, ext, r0, r1, k, active), qt[k, r0:r1][active])
+    _traverse([_Grid(q.shape, kind, models, q) for q, kind in zip(qs, kinds)], models, _Encoding(w))
     return w.finish()
 
 
 def decode_grids(data: bytes, shapes: list[tuple[int, int, int]], kinds: list[int]) -> list[np.ndarray]:
     """Inverse of :func:`encode_grids`; ``shapes`` and ``kinds`` come from the bundle metadata."""
-    rd = _Reader(data)
-    models = {}
-    out = []
-    for (rows, cols, K), kind in zip(shapes, kinds):
-        dc, em, ac = models.setdefault(kind, _new_models())
-        res = np.zeros((rows, cols), np.int64)
-        ext = np.zeros((rows, cols), np.int64)
-        for r in range(rows):
-            prev = r - 1 if r else None
-            res[r] = rd.get(dc, _row_context(None if prev is None else res[prev], cols, DC_EDGES))
-            ext[r] = rd.get(em, _row_context(None if prev is None else ext[prev], cols, EXT_EDGES), signed=False)
-        if ext.max(initial=0) >= K:
-            raise BundleError(f"coefficient stream claims more than {K} components")
-        qt = np.zeros((K, rows, cols), np.int64)
-        qt[0] = _dc_from_residual(res)
-        mag = np.zeros((K, rows, cols), np.int64)
-        mag[0] = np.abs(res)
-        for r0, r1 in _bands(rows):
-            band_ext = ext[r0:r1]
-            for k in range(1, int(band_ext.max(initial=0)) + 1):
-                active = band_ext >= k
-                v = rd.get(ac, _ac_context(mag, ext, r0, r1, k, active))
-                qt[k, r0:r1][active] = v
-                mag[k, r0:r1][active] = np.abs(v)
-        out.append(np.ascontiguousarray(qt.transpose(1, 2, 0)))
-    return out
+    _check_kinds(shapes, kinds)
+    models = _Models(kinds)
+    grids = [_Grid(tuple(s), kind, models) for s, kind in zip(shapes, kinds)]
+    _traverse(grids, models, _Decoding(_Reader(data)))
+    return [g.q for g in grids]
