@@ -50,6 +50,19 @@ def test_444_round_trip_is_lossless_before_quantisation(chelsea):
     assert np.abs(back - chelsea).max() < 1e-3
 
 
-def test_chroma_resampling_keeps_a_constant_plane():
-    plane = np.full((7, 9), 42.0)
-    assert np.allclose(color.upsample2(color.downsample2(plane), (7, 9)), 42.0)
+def test_420_chroma_is_the_2x2_mean_of_the_t871_chroma_with_odd_edges_replicated(chelsea):
+    # T.871 conversion per pixel (the reference path), then 2x2 averaging; the fast path
+    # averages RGB first, which linearity makes the same.
+    odd = chelsea[:299, :451]
+    ref = np.pad(color.rgb_to_ycbcr(odd), ((0, 1), (0, 1), (0, 0)), mode="edge")
+    mean = 0.25 * (ref[0::2, 0::2] + ref[1::2, 0::2] + ref[0::2, 1::2] + ref[1::2, 1::2])
+    planes = color.to_planes(odd, "420", 1.0)
+    assert np.abs(planes[0] - ref[:299, :451, 0]).max() < 1e-3
+    assert np.abs(planes[1] - mean[..., 1]).max() < 1e-3
+    assert np.abs(planes[2] - mean[..., 2]).max() < 1e-3
+
+
+def test_420_reconstruction_keeps_a_constant_colour():
+    img = np.zeros((7, 9, 3), np.uint8) + np.array([200, 30, 90], np.uint8)
+    back = color.from_planes(color.to_planes(img, "420", 1.0), (7, 9), "420")
+    assert np.abs(back - img).max() < 1e-3

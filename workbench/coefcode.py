@@ -13,8 +13,10 @@ Symbols
 First coefficient (k = 0) and extent
     the first coefficient is replaced by the residual of the planar predictor ``L + T - TL``
     over the patch grid; the extent of a patch is the index of its last non-zero coefficient
-    (0 when only the first is non-zero), and nothing past it is coded. Both are coded in
-    groups of ROW_GROUP patch rows, with a context from the row just above the group.
+    (0 when only the first is non-zero), and nothing past it is coded. Both are coded row
+    by row for every COARSE-th row (context from the coarse row above), then the rows
+    halfway between, level by level, in chunks that double, with a context from the coded
+    rows above and below.
 Other coefficients (k >= 1, up to the extent)
     coded in bands of rows whose height doubles (1, 1, 2, 4, 8, ... rows) so the models adapt
     early. The first LOW components are coded one at a time, with context = coefficient group
@@ -42,7 +44,8 @@ MAX_BITS = 26
 ALPHABET = DIRECT + MAX_BITS - 4  # tokens for bit lengths 5..MAX_BITS
 INCREMENT = 32
 COUNT_LIMIT = 1 << 16
-ROW_GROUP = 2
+COARSE = 8  # pass 1 codes every COARSE-th row first, then fills in between
+LEVELS = COARSE.bit_length() - 1
 LOW = 8
 AC_EDGES = np.array([1, 2, 3, 4, 6, 8, 11, 15, 20, 28, 40])
 DC_EDGES = np.array([1, 2, 3, 5, 8, 12, 18, 28, 44, 70])
@@ -123,26 +126,80 @@ def _dc_from_residual(res: np.ndarray) -> np.ndarray:
     return np.cumsum(np.cumsum(res, axis=0), axis=1)
 
 
-def _row_context(above: np.ndarray | None, shape: tuple[int, int], edges: np.ndarray) -> np.ndarray:
-    """Context of a group of rows from the magnitudes in the row just above it (TL + 2T + TR)."""
-    if above is None:
-        return np.full(shape, len(edges) + 1, dtype=np.int64)
-    a = np.abs(above)
+def _line(a: np.ndarray) -> np.ndarray:
+    """TL + 2T + TR along the last axis of magnitudes ``a`` (edges replicated)."""
     s = 2 * a
-    s[1:] += a[:-1]
-    s[:-1] += a[1:]
-    s[0] += a[0]
-    s[-1] += a[-1]
-    return np.broadcast_to(np.searchsorted(edges, s, side="right"), shape)
+    s[..., 1:] += a[..., :-1]
+    s[..., :-1] += a[..., 1:]
+    s[..., 0] += a[..., 0]
+    s[..., -1] += a[..., -1]
+    return s
 
 
-def _extent(q: np.ndarray) -> np.ndarray:
-    """Index of the last non-zero coefficient of each patch among k >= 1 (0 if none)."""
-    if q.shape[2] < 2:
-        return np.zeros(q.shape[:2], np.int64)
-    nz = q[:, :, 1:] != 0
-    last = q.shape[2] - 1 - np.argmax(nz[:, :, ::-1], axis=2)
-    return np.where(nz.any(axis=2), last, 0)
+def _row_phases(grids):
+    """Pass-1 phases: lists of (grid, rows, level). Rows ``0, S, 2S...`` (S = COARSE) come first,
+    one per phase, each with a context from the coarse row above; then the rows halfway
+    between coded rows, level by level, all of a level in one phase, with a context from
+    the coded rows on both sides."""
+    phases = [[(g, np.array([r]), LEVELS) for g in grids if r < g.rows]
+              for r in range(0, max(g.rows for g in grids), COARSE)]
+    for level in range(LEVELS - 1, -1, -1):
+        d = 1 << level
+        rows = {id(g): np.arange(d, g.rows, 2 * d) for g in grids}
+        # in chunks that double, so the models adapt between them
+        for c0, c1 in _bands(max(r.size for r in rows.values())):
+            part = [(g, rows[id(g)][c0:c1], level) for g in grids if rows[id(g)][c0:c1].size]
+            if part:
+                phases.append(part)
+    return phases
+
+
+def _code_rows(phase, models: _Models, io) -> None:
+    """First coefficients and extents of the rows of one pass-1 phase, in one coder call."""
+    dc, ex, shapes = [], [], []
+    for g, rows, level in phase:
+        if level == LEVELS:
+            r = int(rows[0])
+            if r == 0:
+                c_dc, c_ext = np.array([[N_DC_CLASSES - 1]]), np.array([[N_EXT_CLASSES - 1]])
+            else:
+                s = _line(np.abs(np.stack([g.res[r - COARSE], g.ext[r - COARSE]])))
+                c_dc, c_ext = s[:1], s[1:]
+                c_dc = np.searchsorted(DC_EDGES, c_dc, side="right")
+                c_ext = np.searchsorted(EXT_EDGES, c_ext, side="right")
+        else:
+            d = 1 << level
+            below = np.where(rows + d < g.rows, rows + d, rows - d)
+            s = _line(np.abs(np.stack([g.res[rows - d], g.ext[rows - d]]))) + _line(
+                np.abs(np.stack([g.res[below], g.ext[below]])))
+            c_dc = np.searchsorted(DC_EDGES, (s[0] + 1) // 2, side="right")
+            c_ext = np.searchsorted(EXT_EDGES, (s[1] + 1) // 2, side="right")
+        shape = (rows.size, g.cols)
+        dc.append(np.broadcast_to(c_dc + g.off["dc"], shape).reshape(-1))
+        ex.append(np.broadcast_to(c_ext + g.off["ext"], shape).reshape(-1))
+        shapes.append(shape)
+    sizes = [c.size for c in dc + ex]
+    v = io.code(models, np.concatenate(dc + ex),
+                lambda: np.concatenate([g.res[rows].reshape(-1) for g, rows, _ in phase]
+                                       + [g.ext[rows].reshape(-1) for g, rows, _ in phase]), sum(sizes[: len(phase)]))
+    if io.decoding:
+        chunks = _split(v, sizes)
+        for (g, rows, _), shape, d_, e_ in zip(phase, shapes, chunks[: len(phase)], chunks[len(phase):]):
+            e_ = e_.reshape(shape)
+            if e_.max(initial=0) >= g.K:
+                raise BundleError(f"coefficient stream claims more than {g.K} components")
+            g.res[rows] = d_.reshape(shape)
+            g.ext[rows] = e_
+            g.mag[0, rows] = np.abs(g.res[rows])
+
+
+def _extent(qk: np.ndarray) -> np.ndarray:
+    """Index of the last non-zero coefficient of each patch among k >= 1 (0 if none), from
+    a component-major grid (K, rows, cols)."""
+    ext = np.zeros(qk.shape[1:], np.int64)
+    for k in range(1, qk.shape[0]):
+        ext[qk[k] != 0] = k
+    return ext
 
 
 def _k_group(k):
@@ -288,7 +345,7 @@ class _Reader:
             mant = np.add.reduceat(bits * weights, starts)
             mag[esc] = (np.int64(1) << nb) + mant
         head = mag[:n_signed]
-        head[nz] = np.where(signs == 1, -head[nz], head[nz])
+        head[nz] *= 1 - 2 * signs.astype(np.int64)
         return mag
 
 
@@ -322,19 +379,23 @@ class _Grid:
         self.rows, self.cols, self.K = shape
         self.off = {family: models.offset[kind, family] for family, _ in FAMILIES}
         self.bands = _bands(self.rows)
+        # Held component-major, (K, rows, cols), so that one component is contiguous; int32
+        # holds every value the coder can carry (MAX_BITS < 31) in half the memory.
         if q is None:
-            self.q = np.zeros(shape, np.int64)
+            self.q = np.zeros((self.K, self.rows, self.cols), np.int32)
             self.res = np.zeros(shape[:2], np.int64)
             self.ext = np.zeros(shape[:2], np.int64)
-            self.mag = np.zeros((LOW + 1,) + shape[:2], np.int64)
+            self.mag = np.zeros((LOW + 1,) + shape[:2], np.int32)
         else:
-            self.q = q
-            self.res = _dc_residual(q[:, :, 0])
-            self.ext = _extent(q)
-            self.mag = np.zeros((LOW + 1,) + shape[:2], np.int64)
+            if q.dtype.itemsize > 4 and q.size and int(np.abs(q).max()) >= 1 << MAX_BITS:
+                raise ValueError(f"coefficient magnitude {int(np.abs(q).max())} exceeds the coder's {MAX_BITS}-bit range")
+            self.q = np.ascontiguousarray(np.moveaxis(q, -1, 0), dtype=np.int32)
+            self.res = _dc_residual(self.q[0].astype(np.int64))
+            self.ext = _extent(self.q)
+            self.mag = np.zeros((LOW + 1,) + shape[:2], np.int32)
             self.mag[0] = np.abs(self.res)
             top = min(LOW, self.K - 1)
-            self.mag[1 : top + 1] = np.abs(q[:, :, 1 : top + 1]).transpose(2, 0, 1)
+            self.mag[1 : top + 1] = np.abs(self.q[1 : top + 1])
 
 
 class _Encoding:
@@ -365,50 +426,30 @@ def _split(v: np.ndarray, sizes: list[int]) -> list[np.ndarray]:
 
 def _traverse(grids: list[_Grid], models: _Models, io) -> None:
     """Visit every symbol of ``grids`` in coding order; the decoder fills the grids in."""
-    for r0 in range(0, max(g.rows for g in grids), ROW_GROUP):
-        part = [(g, slice(r0, min(g.rows, r0 + ROW_GROUP))) for g in grids if r0 < g.rows]
-        ctx, sizes = [], []
-        for family, edges, field in (("dc", DC_EDGES, "res"), ("ext", EXT_EDGES, "ext")):
-            for g, rs in part:
-                above = getattr(g, field)[r0 - 1] if r0 else None
-                c = _row_context(above, (rs.stop - r0, g.cols), edges) + g.off[family]
-                ctx.append(c.reshape(-1))
-                sizes.append(c.size)
-        n_dc = sum(sizes[: len(part)])
-        v = io.code(models, np.concatenate(ctx),
-                    lambda: np.concatenate([g.res[rs].reshape(-1) for g, rs in part]
-                                           + [g.ext[rs].reshape(-1) for g, rs in part]), n_dc)
-        if io.decoding:
-            chunks = _split(v, sizes)
-            for (g, rs), dc, ex in zip(part, chunks[: len(part)], chunks[len(part):]):
-                ex = ex.reshape(-1, g.cols)
-                if ex.max(initial=0) >= g.K:
-                    raise BundleError(f"coefficient stream claims more than {g.K} components")
-                g.res[rs] = dc.reshape(-1, g.cols)
-                g.ext[rs] = ex
-                g.mag[0, rs] = np.abs(g.res[rs])
+    for phase in _row_phases(grids):
+        _code_rows(phase, models, io)
     if io.decoding:
         for g in grids:
-            g.q[:, :, 0] = _dc_from_residual(g.res)
+            g.q[0] = _dc_from_residual(g.res)
     for i in range(max(len(g.bands) for g in grids)):
         part = [(g, g.bands[i]) for g in grids if i < len(g.bands)]
         top = max(min(LOW, int(g.ext[r0:r1].max(initial=0))) for g, (r0, r1) in part)
         for k in range(1, top + 1):
             sel = [(g, r0, r1, g.ext[r0:r1] >= k) for g, (r0, r1) in part if k < g.K]
             ctx = [g.off["low"] + _low_context(g.mag, g.ext, r0, r1, k, a) for g, r0, r1, a in sel]
-            v = io.code(models, np.concatenate(ctx), lambda: np.concatenate([g.q[r0:r1, :, k][a] for g, r0, r1, a in sel]))
+            v = io.code(models, np.concatenate(ctx), lambda: np.concatenate([g.q[k, r0:r1][a] for g, r0, r1, a in sel]))
             if io.decoding:
                 for (g, r0, r1, a), vk in zip(sel, _split(v, [c.size for c in ctx])):
-                    g.q[r0:r1, :, k][a] = vk
+                    g.q[k, r0:r1][a] = vk
                     if k <= LOW:
                         g.mag[k, r0:r1][a] = np.abs(vk)
-        sel = [(g.q[r0:r1].reshape(-1, g.K),) + _tail_positions(g.ext[r0:r1]) for g, (r0, r1) in part]
+        sel = [(g.q[:, r0:r1].reshape(g.K, -1),) + _tail_positions(g.ext[r0:r1]) for g, (r0, r1) in part]
         ctx = [g.off["tail"] + _tail_context(g.mag[LOW, r0:r1] + g.mag[LOW - 1, r0:r1], g.ext[r0:r1], idx, k)
                for (g, (r0, r1)), (_, idx, k) in zip(part, sel)]
-        v = io.code(models, np.concatenate(ctx), lambda: np.concatenate([qb[idx, k] for qb, idx, k in sel]))
+        v = io.code(models, np.concatenate(ctx), lambda: np.concatenate([qb[k, idx] for qb, idx, k in sel]))
         if io.decoding:
             for (qb, idx, k), vt in zip(sel, _split(v, [c.size for c in ctx])):
-                qb[idx, k] = vt
+                qb[k, idx] = vt
 
 
 def _check_kinds(shapes, kinds):
@@ -431,8 +472,10 @@ def encode_grids(grids: list[np.ndarray], kinds: list[int]) -> bytes:
     -------
     bytes
     """
-    qs = [np.asarray(q, dtype=np.int64) for q in grids]
+    qs = [np.asarray(q) for q in grids]
     for q in qs:
+        if q.dtype.kind not in "iu":
+            raise ValueError(f"coefficient grid must hold integers, got {q.dtype}")
         if q.ndim != 3 or q.shape[2] < 1:
             raise ValueError(f"coefficient grid must be 3-D with at least one component, got shape {q.shape}")
     _check_kinds(qs, kinds)
@@ -448,4 +491,4 @@ def decode_grids(data: bytes, shapes: list[tuple[int, int, int]], kinds: list[in
     models = _Models(kinds)
     grids = [_Grid(tuple(s), kind, models) for s, kind in zip(shapes, kinds)]
     _traverse(grids, models, _Decoding(_Reader(data)))
-    return [g.q for g in grids]
+    return [np.moveaxis(g.q, 0, -1) for g in grids]  # (rows, cols, K) views

@@ -28,6 +28,10 @@ RGB_TO_YCBCR = np.array(
 )
 YCBCR_TO_RGB = np.linalg.inv(RGB_TO_YCBCR)
 CHROMA_OFFSET = 128.0
+_OFFSETS = np.array([0.0, CHROMA_OFFSET, CHROMA_OFFSET])
+# 3x4 affine forms for cv2.transform: [M | offset].
+_FORWARD = np.hstack([RGB_TO_YCBCR, _OFFSETS[:, None]]).astype(np.float32)
+_CHROMA_TO_RGB = np.hstack([YCBCR_TO_RGB[:, 1:], -(YCBCR_TO_RGB[:, 1:] @ _OFFSETS[1:])[:, None]]).astype(np.float32)
 
 
 def rgb_to_ycbcr(rgb: np.ndarray) -> np.ndarray:
@@ -49,25 +53,6 @@ def ycbcr_to_rgb(ycc: np.ndarray) -> np.ndarray:
     return ycc @ YCBCR_TO_RGB.T
 
 
-def downsample2(plane: np.ndarray) -> np.ndarray:
-    """Halve a plane in both directions by 2x2 averaging (odd edges replicated)."""
-    h, w = plane.shape
-    p = np.pad(plane, ((0, h % 2), (0, w % 2)), mode="edge")
-    return 0.25 * (p[0::2, 0::2] + p[1::2, 0::2] + p[0::2, 1::2] + p[1::2, 1::2])
-
-
-def upsample2(plane: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
-    """Double a chroma plane by linear interpolation (sample centres between output pairs,
-    edges replicated, weights 3/4 and 1/4) and crop to ``shape``.
-
-    OpenCV's INTER_LINEAR with half-pixel centres is exactly this filter, and fast.
-    """
-    p = np.ascontiguousarray(plane, dtype=np.float32)
-    h, w = p.shape
-    up = cv2.resize(p, (2 * w, 2 * h), interpolation=cv2.INTER_LINEAR)
-    return up[: shape[0], : shape[1]]
-
-
 def to_planes(image: np.ndarray, chroma: str, scale: float) -> list[np.ndarray]:
     """Split an image into coding planes in 8-bit level units.
 
@@ -85,32 +70,41 @@ def to_planes(image: np.ndarray, chroma: str, scale: float) -> list[np.ndarray]:
         ``[Y]`` for grey, ``[Y, Cb, Cr]`` for colour (chroma halved for 4:2:0).
     """
     image = np.asarray(image)
+    x = image.astype(np.float32)
+    if scale != 1:
+        x *= np.float32(scale)
     if image.ndim == 2:
-        return [image.astype(np.float64) * scale]
-    rgb = [image[..., c].astype(np.float64) * scale for c in range(3)]
-    m = RGB_TO_YCBCR
-    planes = [m[i, 0] * rgb[0] + m[i, 1] * rgb[1] + m[i, 2] * rgb[2] + (CHROMA_OFFSET if i else 0.0)
-              for i in range(3)]
+        return [x]
+    # float32 is ample (the quantiser step is at least 0.01 level). OpenCV does the affine
+    # transforms, always into numpy's buffers: OpenCV's own buffers of this size cost a
+    # page fault per 4 KiB on first touch, more than the arithmetic.
+    h, w = image.shape[:2]
+    y = cv2.transform(x, _FORWARD[:1], dst=np.empty((h, w), np.float32))
     if chroma == "420":
-        planes[1:] = [downsample2(p) for p in planes[1:]]
-    return planes
-
-
-def to_channels(planes: list[np.ndarray], shape: tuple[int, int], chroma: str) -> list[np.ndarray]:
-    """Inverse of :func:`to_planes` up to the 8-bit level scale: contiguous float32 channel
-    planes (one for grey, R, G, B for colour), unclipped."""
-    if len(planes) == 1:
-        return [np.asarray(planes[0], dtype=np.float32)]
-    y, cb, cr = (np.asarray(p, dtype=np.float32) for p in planes)
-    if chroma == "420":
-        cb, cr = upsample2(cb, shape), upsample2(cr, shape)
-    cb = cb - np.float32(CHROMA_OFFSET)
-    cr = cr - np.float32(CHROMA_OFFSET)
-    m = YCBCR_TO_RGB.astype(np.float32)
-    return [y + cr * m[0, 2], y + cb * m[1, 1] + cr * m[1, 2], y + cb * m[2, 1]]
+        # Averaging is linear, so the chroma of the averaged RGB is the average of the
+        # chroma: transforming a quarter of the pixels gives the same planes.
+        x = np.pad(x, ((0, h % 2), (0, w % 2), (0, 0)), mode="edge") if (h | w) % 2 else x
+        hc, wc = x.shape[0] // 2, x.shape[1] // 2
+        x = cv2.resize(x, (wc, hc), dst=np.empty((hc, wc, 3), np.float32), interpolation=cv2.INTER_AREA)
+    c = cv2.transform(x, _FORWARD[1:], dst=np.empty(x.shape[:2] + (2,), np.float32))
+    return [y, np.ascontiguousarray(c[..., 0]), np.ascontiguousarray(c[..., 1])]
 
 
 def from_planes(planes: list[np.ndarray], shape: tuple[int, int], chroma: str) -> np.ndarray:
-    """(H, W) or (H, W, 3) array form of :func:`to_channels`."""
-    ch = to_channels(planes, shape, chroma)
-    return ch[0] if len(ch) == 1 else np.dstack(ch)
+    """Inverse of :func:`to_planes` up to the 8-bit level scale: (H, W) grey or (H, W, 3) RGB
+    float32, unclipped."""
+    if len(planes) == 1:
+        return np.array(planes[0], dtype=np.float32)
+    y, cb, cr = (np.asarray(p, dtype=np.float32) for p in planes)
+    # R, G, B = Y + (what Cb and Cr add); that part is linear in the chroma, so with 4:2:0
+    # it is computed at chroma resolution and interpolated, which is the same as
+    # interpolating the chroma first and a quarter of the work.
+    c = np.stack([cb, cr], axis=-1)
+    add = cv2.transform(c, _CHROMA_TO_RGB, dst=np.empty(c.shape[:2] + (3,), np.float32))
+    if chroma == "420":
+        hc, wc = add.shape[:2]
+        up = cv2.resize(add, (2 * wc, 2 * hc), dst=np.empty((2 * hc, 2 * wc, 3), np.float32),
+                        interpolation=cv2.INTER_LINEAR)
+        add = up[: shape[0], : shape[1]]
+    add += y[:, :, None]
+    return add

@@ -74,7 +74,7 @@ class SourceImage:
         if cached is not None:
             return cached
         h = hashlib.sha256(f"{self.pixels.shape}{self.pixels.dtype.str}".encode())
-        h.update(np.ascontiguousarray(self.pixels).tobytes())
+        h.update(np.ascontiguousarray(self.pixels))  # no copy: hashlib reads the buffer
         if self.alpha is not None:
             h.update(np.ascontiguousarray(self.alpha).tobytes())
         self.__dict__["_checksum"] = h.hexdigest()

@@ -9,6 +9,7 @@ from __future__ import annotations
 import zlib
 from dataclasses import dataclass, field
 
+import cv2
 import numpy as np
 
 from . import __version__, bundle, codecs, color, metrics
@@ -39,15 +40,16 @@ def planes_to_pixels(planes, shape, chroma, bits) -> np.ndarray:
     """Decoded planes to integer pixels: colour back to RGB, rounded and clipped."""
     peak = 65535 if bits == 16 else 255
     dtype = np.uint16 if bits == 16 else np.uint8
-    k = np.float32(peak / 255.0)
-    out = []
-    for c in color.to_channels(planes, shape, chroma):
-        if bits == 16:
-            c = c * k
+    c = color.from_planes(planes, shape, chroma)
+    if bits == 16:
+        c *= np.float32(peak / 255.0)
         np.rint(c, out=c)
         np.clip(c, 0, peak, out=c)
-        out.append(c.astype(dtype))
-    return out[0] if len(out) == 1 else np.dstack(out)
+        return c.astype(dtype)
+    # OpenCV's conversion rounds half to even and saturates at 255 in one pass; the
+    # absolute value it also takes is harmless once negatives are clipped to zero.
+    np.maximum(c, 0, out=c)
+    return cv2.convertScaleAbs(c, dst=np.empty(c.shape, np.uint8))
 
 
 def encode_alpha(alpha: np.ndarray) -> bytes:

@@ -27,7 +27,7 @@ def to_patches(plane: np.ndarray, block: int) -> np.ndarray:
         raise InputError(f"to_patches needs a non-empty 2-D plane, got shape {plane.shape}")
     rows, cols = grid_shape(plane.shape, block)
     pad = ((0, rows * block - plane.shape[0]), (0, cols * block - plane.shape[1]))
-    p = np.pad(plane, pad, mode="edge")
+    p = np.pad(plane, pad, mode="edge") if pad[0][1] or pad[1][1] else plane
     return p.reshape(rows, block, cols, block).transpose(0, 2, 1, 3).reshape(rows, cols, block * block)
 
 

@@ -65,15 +65,24 @@ def synthesise(q, synthesis, step, means, shapes, block):
     """Planes from quantised coefficients: ``mean + (q * step) @ S`` per patch, untiled."""
     out = []
     for qp, m, shape in zip(q, means, shapes):
-        kept = qp.shape[2]
-        patches = (qp.astype(np.float64) * step) @ synthesis[:kept] + m
+        rows, cols, kept = qp.shape
+        # float32 throughout: the decoder's cost is dominated by this product. Grids are
+        # stored component-major, so (K, patches) is a view and BLAS takes it transposed.
+        s = (synthesis[:kept] * step).astype(np.float32)
+        qk = np.moveaxis(qp, -1, 0).reshape(kept, -1).astype(np.float32)
+        patches = (qk.T @ s).reshape(rows, cols, -1)
+        patches += np.float32(m)
         out.append(tiling.from_patches(patches, shape, block))
     return out
 
 
 def deadzone_quantise(c: np.ndarray, step: float, offset: float) -> np.ndarray:
-    """``sign(c) * floor(|c| / step + offset)``; offset 0.5 is rounding."""
-    return (np.sign(c) * np.floor(np.abs(c) / step + offset)).astype(np.int64)
+    """``sign(c) * floor(|c| / step + offset)``; offset 0.5 is rounding.
+
+    Computed as ``trunc(c / step + copysign(offset, c))``, the same for offset < 1."""
+    x = np.multiply(c, np.asarray(1.0 / step, dtype=c.dtype))
+    x += np.copysign(np.asarray(offset, dtype=c.dtype), c)
+    return np.trunc(x, out=x).astype(np.int32)  # |q| < 2**31 for every allowed step
 
 
 class KLTCodec:
@@ -103,8 +112,10 @@ class KLTCodec:
     def analyse(self, planes, settings, shared=None) -> Analysis:
         patches, means = [], []
         for p in planes:
-            m = int(np.clip(np.round(p.mean()), -32768, 32767))
-            patches.append(tiling.to_patches(p, settings.block) - m)
+            m = int(np.clip(np.round(p.mean(dtype=np.float64)), -32768, 32767))
+            x = tiling.to_patches(p, settings.block).astype(np.float32, copy=False)
+            x -= np.float32(m)
+            patches.append(x)
             means.append(m)
         if shared is None:
             basis = klt.fit_basis(patches, settings.block)
@@ -126,7 +137,11 @@ class KLTCodec:
             ints = bits = None
             synthesis = a.basis.vectors[:, :k].T
             analysis_m = synthesis.T
-        q = [deadzone_quantise(p @ analysis_m, step, a.settings.deadzone) for p in a.patches]
+        analysis_m = analysis_m.astype(np.float32).T
+        # Component-major (K, rows, cols) underneath, viewed as (rows, cols, K): the entropy
+        # coder walks one component at a time.
+        q = [np.moveaxis(deadzone_quantise(analysis_m @ p.reshape(-1, p.shape[2]).T, step, a.settings.deadzone)
+                         .reshape(-1, *p.shape[:2]), 0, -1) for p in a.patches]
         nz = [np.flatnonzero(np.any(qp != 0, axis=(0, 1))) for qp in q]
         kept = max([int(i[-1]) + 1 for i in nz if i.size] or [1])
         q = [qp[:, :, :kept] for qp in q]
