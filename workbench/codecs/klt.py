@@ -80,8 +80,12 @@ def deadzone_quantise(c: np.ndarray, step: float, offset: float) -> np.ndarray:
     """``sign(c) * floor(|c| / step + offset)``; offset 0.5 is rounding.
 
     Computed as ``trunc(c / step + copysign(offset, c))``, the same for offset < 1."""
-    x = np.multiply(c, np.asarray(1.0 / step, dtype=c.dtype))
-    x += np.copysign(np.asarray(offset, dtype=c.dtype), c)
+    return _deadzone_in_place(np.multiply(c, np.asarray(1.0 / step, dtype=c.dtype)), offset)
+
+
+def _deadzone_in_place(x: np.ndarray, offset: float) -> np.ndarray:
+    """:func:`deadzone_quantise` of ``x`` already divided by the step; ``x`` is overwritten."""
+    x += np.copysign(np.asarray(offset, dtype=x.dtype), x)
     return np.trunc(x, out=x).astype(np.int32)  # |q| < 2**31 for every allowed step
 
 
@@ -137,10 +141,10 @@ class KLTCodec:
             ints = bits = None
             synthesis = a.basis.vectors[:, :k].T
             analysis_m = synthesis.T
-        analysis_m = analysis_m.astype(np.float32).T
+        analysis_m = (analysis_m / step).astype(np.float32).T
         # Component-major (K, rows, cols) underneath, viewed as (rows, cols, K): the entropy
         # coder walks one component at a time.
-        q = [np.moveaxis(deadzone_quantise(analysis_m @ p.reshape(-1, p.shape[2]).T, step, a.settings.deadzone)
+        q = [np.moveaxis(_deadzone_in_place(analysis_m @ p.reshape(-1, p.shape[2]).T, a.settings.deadzone)
                          .reshape(-1, *p.shape[:2]), 0, -1) for p in a.patches]
         nz = [np.flatnonzero(np.any(qp != 0, axis=(0, 1))) for qp in q]
         kept = max([int(i[-1]) + 1 for i in nz if i.size] or [1])
