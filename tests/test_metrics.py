@@ -36,6 +36,22 @@ def test_ssim_matches_scikit_image_to_1e4(name, request):
     assert abs(metrics.ssim(img, test) - _sk_ssim(img, test, r)) < 1e-4
 
 
+def test_a_reused_ssim_reference_matches_scikit_image_on_every_call(astronaut):
+    # scikit-image's structural_similarity as the reference, for several test images
+    # measured against one cached reference (the slider's use).
+    ref = metrics.SSIMReference(astronaut)
+    for amount in (5, 25, 60):
+        test = _noisy(astronaut, amount)
+        assert abs(ref.ssim(test) - _sk_ssim(astronaut, test, 255)) < 1e-4
+
+
+def test_mse_of_16_bit_images_is_exact(astronaut):
+    a = astronaut.astype(np.uint16) * 257
+    b = _noisy(astronaut, 25).astype(np.uint16) * 257
+    d = a.astype(np.float64) - b
+    assert metrics.mse(a, b) == pytest.approx(np.mean(d * d), rel=1e-12)
+
+
 def test_ssim_of_a_blurred_image_matches_scikit_image(camera):
     blurred = (camera[:-1:2, :-1:2].repeat(2, 0).repeat(2, 1)).astype(np.uint8)
     assert abs(metrics.ssim(camera, blurred) - _sk_ssim(camera, blurred, 255)) < 1e-4

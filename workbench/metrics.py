@@ -37,7 +37,12 @@ def _check_pair(ref, test, data_range):
 
 def mse(ref: np.ndarray, test: np.ndarray) -> float:
     """Mean squared error, accumulated in float64."""
-    d = np.asarray(ref, dtype=np.float64) - np.asarray(test, dtype=np.float64)
+    ref, test = np.asarray(ref), np.asarray(test)
+    if ref.dtype == test.dtype and ref.dtype in (np.uint8, np.uint16) and ref.ndim in (2, 3) and ref.size \
+            and (ref.ndim == 2 or ref.shape[2] <= 4):
+        # OpenCV sums the squared integer differences exactly, without float64 temporaries.
+        return float(cv2.norm(np.ascontiguousarray(ref), np.ascontiguousarray(test), cv2.NORM_L2SQR)) / ref.size
+    d = ref.astype(np.float64) - test.astype(np.float64)
     return float(np.mean(d * d))
 
 
@@ -62,11 +67,64 @@ _KERNEL = _gaussian_kernel()
 _PAD = (len(_KERNEL) - 1) // 2
 
 
-def _blur(x: np.ndarray) -> np.ndarray:
+_KERNEL32 = _KERNEL.astype(np.float32)
+
+
+def _blur(x: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
     # OpenCV's separable filter is several times faster than scipy.ndimage here; its
     # BORDER_REFLECT ("cba|abc") is scipy's and scikit-image's "reflect".
-    k = _KERNEL.astype(np.float32)
-    return cv2.sepFilter2D(x, cv2.CV_32F, k, k, borderType=cv2.BORDER_REFLECT)
+    if out is None:
+        out = np.empty(x.shape, np.float32)
+    return cv2.sepFilter2D(x, cv2.CV_32F, _KERNEL32, _KERNEL32, dst=out, borderType=cv2.BORDER_REFLECT)
+
+
+class _ChannelRef:
+    """What SSIM needs of one reference channel, computed once: its mean (removed, which
+    keeps the variance terms accurate in float32), blurred mean and blurred variance."""
+
+    def __init__(self, ref: np.ndarray, r: float):
+        self.offset = np.float32(np.mean(ref, dtype=np.float64))
+        self.x = np.subtract(ref, self.offset, dtype=np.float32)
+        self.ux = _blur(self.x)
+        self.var = _blur(self.x * self.x)
+        self.var -= self.ux * self.ux
+        self.c1 = np.float32((SSIM_K1 * r) ** 2)
+        self.c2 = np.float32((SSIM_K2 * r) ** 2)
+
+    def map(self, test: np.ndarray, scratch: list[np.ndarray]) -> np.ndarray:
+        """SSIM map of ``test`` against this channel, written into (and returned from) the
+        first of four float32 scratch images: fresh 16 MB temporaries cost more in page
+        faults than the arithmetic does."""
+        y, uy, a, b = scratch
+        off = self.offset
+        np.subtract(test, off, out=y, dtype=np.float32)
+        _blur(y, uy)
+        _blur(np.multiply(self.x, y, out=a), b)
+        b -= np.multiply(self.ux, uy, out=a)  # b = cov
+        _blur(np.multiply(y, y, out=y), a)
+        a -= np.multiply(uy, uy, out=y)  # a = var_y
+        uy += off  # mu_y
+        np.add(self.ux, off, out=y)  # mu_x
+        y *= uy
+        y *= 2
+        y += self.c1
+        b *= 2
+        b += self.c2
+        y *= b  # numerator
+        uy *= uy
+        np.add(self.ux, off, out=b)
+        b *= b
+        uy += b
+        uy += self.c1
+        a += self.var
+        a += self.c2
+        uy *= a  # denominator
+        y /= uy
+        return y
+
+
+def _scratch(shape) -> list[np.ndarray]:
+    return [np.empty(shape, np.float32) for _ in range(4)]
 
 
 def ssim_map(ref: np.ndarray, test: np.ndarray, *, data_range: float | None = None) -> np.ndarray:
@@ -78,25 +136,40 @@ def ssim_map(ref: np.ndarray, test: np.ndarray, *, data_range: float | None = No
     Notes
     -----
     Computed in float32 on data with the reference mean removed (which keeps the variance
-    terms accurate). Only ``sigma_x^2 + sigma_y^2`` enters the formula, so four blurred
-    images are needed, not five. Working memory is about eight float32 images.
+    terms accurate). Working memory is about eight float32 images.
     """
     ref, test, r = _check_pair(ref, test, data_range)
     if ref.ndim != 2:
         raise InputError(f"ssim_map takes one channel, got shape {ref.shape}")
-    offset = np.float32(np.mean(ref, dtype=np.float64))
-    x = ref.astype(np.float32) - offset
-    y = test.astype(np.float32) - offset
-    ux, uy = _blur(x), _blur(y)
-    sum_var = _blur(x * x + y * y) - ux * ux - uy * uy
-    cov = _blur(x * y) - ux * uy
-    c1 = np.float32((SSIM_K1 * r) ** 2)
-    c2 = np.float32((SSIM_K2 * r) ** 2)
-    ux += offset  # the luminance term needs the true means
-    uy += offset
-    num = (2 * ux * uy + c1) * (2 * cov + c2)
-    den = (ux * ux + uy * uy + c1) * (sum_var + c2)
-    return num / den
+    return _ChannelRef(ref, r).map(test, _scratch(ref.shape))
+
+
+class SSIMReference:
+    """SSIM against one fixed reference image, with the reference's share of the work done
+    once: for a slider that keeps re-measuring reconstructions of the same original.
+
+    ``SSIMReference(ref).ssim(test)`` equals ``ssim(ref, test)``.
+    """
+
+    def __init__(self, ref: np.ndarray, *, data_range: float | None = None):
+        ref, _, self.r = _check_pair(ref, ref, data_range)
+        if min(ref.shape[:2]) <= 2 * _PAD:
+            raise InputError(f"SSIM needs images larger than {2 * _PAD + 1} pixels, got {ref.shape[:2]}")
+        self.shape = ref.shape
+        chans = [ref] if ref.ndim == 2 else cv2.split(np.ascontiguousarray(ref))
+        self.channels = [_ChannelRef(c, self.r) for c in chans]
+        self._scratch = None  # kept between calls; not for use from two threads at once
+
+    def ssim(self, test: np.ndarray) -> float:
+        test = np.asarray(test)
+        if test.shape != self.shape:
+            raise InputError(f"images differ in shape: {self.shape} vs {test.shape}")
+        chans = [test] if test.ndim == 2 else cv2.split(np.ascontiguousarray(test))
+        if self._scratch is None:
+            self._scratch = _scratch(self.shape[:2])
+        vals = [np.mean(ch.map(t, self._scratch)[_PAD:-_PAD, _PAD:-_PAD], dtype=np.float64)
+                for ch, t in zip(self.channels, chans)]
+        return float(np.mean(vals))
 
 
 def ssim(ref: np.ndarray, test: np.ndarray, *, data_range: float | None = None) -> float:
@@ -106,15 +179,7 @@ def ssim(ref: np.ndarray, test: np.ndarray, *, data_range: float | None = None) 
     use_sample_covariance=False, data_range=R)``.
     """
     ref, test, r = _check_pair(ref, test, data_range)
-    if ref.ndim == 2:
-        ref, test = ref[..., None], test[..., None]
-    if min(ref.shape[:2]) <= 2 * _PAD:
-        raise InputError(f"SSIM needs images larger than {2 * _PAD + 1} pixels, got {ref.shape[:2]}")
-    vals = []
-    for c in range(ref.shape[2]):
-        m = ssim_map(ref[..., c], test[..., c], data_range=r)
-        vals.append(np.mean(m[_PAD:-_PAD, _PAD:-_PAD], dtype=np.float64))
-    return float(np.mean(vals))
+    return SSIMReference(ref, data_range=r).ssim(test)
 
 
 @dataclass(frozen=True)
