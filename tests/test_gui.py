@@ -22,6 +22,11 @@ def folder(tmp_path, chelsea, camera):
     return d
 
 
+def _open(qtbot, window, folder):
+    window.open_folder(folder)
+    qtbot.waitUntil(lambda: not window.loading, timeout=30000)
+
+
 @pytest.fixture()
 def window(qtbot, tmp_path):
     w = MainWindow(QSettings(str(tmp_path / "settings.ini"), QSettings.Format.IniFormat))
@@ -40,7 +45,7 @@ def _core_numbers(path, settings):
 
 
 def test_readouts_follow_the_slider_and_equal_the_core(qtbot, window, folder):
-    window.open_folder(folder)
+    _open(qtbot, window, folder)
     qtbot.waitUntil(lambda: window.last_numbers is not None, timeout=30000)
     first = window.last_numbers
     window.panel.count.setValue(6)
@@ -56,19 +61,19 @@ def test_readouts_follow_the_slider_and_equal_the_core(qtbot, window, folder):
 
 
 def test_switching_images_updates_the_views_and_numbers(qtbot, window, folder):
-    window.open_folder(folder)
+    _open(qtbot, window, folder)
     qtbot.waitUntil(lambda: window.last_numbers is not None, timeout=30000)
     a = window.last_numbers
     qtbot.keyClick(window.thumbs, Qt.Key.Key_Right)
     qtbot.waitUntil(lambda: window.index == 1 and window.last_numbers is not a, timeout=30000)
     core = _core_numbers(folder / "b_camera.png", window.panel.settings())
     qtbot.waitUntil(lambda: window.last_numbers.bytes == round(core.bytes), timeout=30000)
-    assert window._shown[0].shape == (256, 256)
+    qtbot.waitUntil(lambda: window._shown is not None and window._shown[0].shape == (256, 256), timeout=30000)
 
 
 def test_saved_bundle_decodes_to_the_pixels_shown(qtbot, window, folder, tmp_path):
-    window.open_folder(folder)
-    qtbot.waitUntil(lambda: window.last_numbers is not None, timeout=30000)
+    _open(qtbot, window, folder)
+    qtbot.waitUntil(lambda: window._shown is not None and window._shown[1] is not None, timeout=30000)
     shown = window._shown[1].copy()
     out = tmp_path / "saved.wbundle"
     with qtbot.waitSignal(window.jobs.finished, timeout=60000):
@@ -81,7 +86,7 @@ def test_saved_bundle_decodes_to_the_pixels_shown(qtbot, window, folder, tmp_pat
 
 def test_unreadable_file_is_listed_and_skipped(qtbot, window, folder):
     (folder / "c_broken.png").write_bytes(b"\x89PNG\r\n\x1a\n garbage")
-    window.open_folder(folder)
+    _open(qtbot, window, folder)
     assert window.notice.isVisible() and "c_broken.png" in window.notice.label.text()
     assert [i.name for i in window.images] == ["a_cat.png", "b_camera.png"]
 
@@ -91,7 +96,7 @@ def test_a_long_job_can_be_cancelled_and_writes_nothing(qtbot, window, tmp_path,
     big.mkdir()
     for i in range(6):
         Image.fromarray(np.roll(astronaut, 37 * i, axis=1)).save(big / f"f{i}.png")
-    window.open_folder(big)
+    _open(qtbot, window, big)
     window.panel.rate_mode.setCurrentIndex(window.panel.rate_mode.findData("psnr"))  # slow: searches the step
     out = tmp_path / "never.wbundle"
     with qtbot.waitSignal(window.jobs.failed, timeout=60000) as blocker:
@@ -121,7 +126,7 @@ def test_about_box_carries_the_caution_and_versions(window):
 
 
 def test_difference_view_outlines_the_worst_tiles(qtbot, window, folder):
-    window.open_folder(folder)
+    _open(qtbot, window, folder)
     qtbot.waitUntil(lambda: window._shown is not None, timeout=30000)
     assert len(window.views.views[2].marks) == 5
     window.panel.worst.setChecked(False)
@@ -129,7 +134,7 @@ def test_difference_view_outlines_the_worst_tiles(qtbot, window, folder):
 
 
 def test_quality_sheet_is_saved_from_the_window(qtbot, window, folder, tmp_path):
-    window.open_folder(folder)
+    _open(qtbot, window, folder)
     out = tmp_path / "report"
     with qtbot.waitSignal(window.jobs.finished, timeout=120000):
         assert window.save_sheet(out)
@@ -139,9 +144,10 @@ def test_quality_sheet_is_saved_from_the_window(qtbot, window, folder, tmp_path)
 def test_training_from_the_window_makes_the_model_available(qtbot, window, folder, tmp_path):
     from workbench.gui import training
 
-    window.open_folder(folder)
+    _open(qtbot, window, folder)
     with qtbot.waitSignal(window.jobs.finished, timeout=120000):
         training.start_training(window, tmp_path / "m.wmodel", minutes=1, lam=0.01, latent=4, max_steps=3)
-    assert window.conv_model is not None and window.conv_model[0].channels == 4
+    qtbot.waitUntil(lambda: window.conv_model is not None, timeout=60000)  # loaded off the GUI thread
+    assert window.conv_model[0].channels == 4
     assert "m)" in window.panel.method.itemText(window.panel.method.findData("conv"))
     assert window.last_training["steps"] == 3

@@ -48,3 +48,43 @@ def run(job: Job, on_progress: Callable[[Progress], None] | None = None,
     except KeyboardInterrupt:
         job.close()  # lets the job save what it must (training checkpoints) before we leave
         raise
+
+
+def run_in_child(conn, cancel, factory, args) -> None:
+    """Body of a child process that runs ``factory(*args)``, a job, for :func:`start_child`.
+
+    Progress goes to the parent over ``conn`` as ``("progress", fraction, text)``; the end as
+    ``("done", result)`` or ``("failed", kind, message)``; ``cancel`` (an Event) stops the job
+    at its next yield.
+    """
+    from .errors import WorkbenchError
+
+    try:
+        result = run(factory(*args), lambda p: conn.send(("progress", p.fraction, p.text)), cancel.is_set)
+        conn.send(("done", result))
+    except Cancelled:
+        conn.send(("failed", "cancelled", "cancelled"))
+    except (WorkbenchError, OSError, MemoryError) as exc:
+        conn.send(("failed", "error", str(exc).splitlines()[0] if str(exc) else type(exc).__name__))
+    except Exception as exc:  # a bug: report it to the parent rather than die silently
+        conn.send(("failed", "error", f"internal error: {type(exc).__name__}: {exc}"))
+    finally:
+        conn.close()
+
+
+def start_child(factory, args):
+    """Start ``factory(*args)`` (picklable, a job) in a fresh process.
+
+    For heavy jobs next to an interactive process: the child has its own interpreter, so
+    its imports and Python-level work never hold the parent's GIL. Returns
+    ``(process, connection, cancel_event)``; see :func:`run_in_child` for the messages.
+    """
+    import multiprocessing as mp
+
+    ctx = mp.get_context("spawn")
+    parent, child = ctx.Pipe(duplex=False)
+    cancel = ctx.Event()
+    proc = ctx.Process(target=run_in_child, args=(child, cancel, factory, args), daemon=True)
+    proc.start()
+    child.close()
+    return proc, parent, cancel

@@ -70,61 +70,83 @@ _PAD = (len(_KERNEL) - 1) // 2
 _KERNEL32 = _KERNEL.astype(np.float32)
 
 
-def _blur(x: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+def _blur(x: np.ndarray) -> np.ndarray:
     # OpenCV's separable filter is several times faster than scipy.ndimage here; its
     # BORDER_REFLECT ("cba|abc") is scipy's and scikit-image's "reflect".
-    if out is None:
-        out = np.empty(x.shape, np.float32)
-    return cv2.sepFilter2D(x, cv2.CV_32F, _KERNEL32, _KERNEL32, dst=out, borderType=cv2.BORDER_REFLECT)
+    return cv2.sepFilter2D(x, cv2.CV_32F, _KERNEL32, _KERNEL32, borderType=cv2.BORDER_REFLECT)
+
+
+STRIP = 64  # rows per pass: the working set of a strip stays in the processor's cache
 
 
 class _ChannelRef:
     """What SSIM needs of one reference channel, computed once: its mean (removed, which
-    keeps the variance terms accurate in float32), blurred mean and blurred variance."""
+    keeps the variance terms accurate in float32), blurred mean and blurred variance.
+
+    Maps are computed in strips of STRIP rows (plus the window's reach above and below):
+    the arithmetic is a couple of dozen passes, and over a whole 4-megapixel channel those
+    passes would be bound by memory traffic rather than by the processor.
+    """
 
     def __init__(self, ref: np.ndarray, r: float):
         self.offset = np.float32(np.mean(ref, dtype=np.float64))
-        self.x = np.subtract(ref, self.offset, dtype=np.float32)
-        self.ux = _blur(self.x)
-        self.var = _blur(self.x * self.x)
+        x = np.subtract(ref, self.offset, dtype=np.float32)
+        self.ux = _blur(x)
+        self.var = _blur(x * x)
         self.var -= self.ux * self.ux
+        self.xp = _pad_rows(x)
         self.c1 = np.float32((SSIM_K1 * r) ** 2)
         self.c2 = np.float32((SSIM_K2 * r) ** 2)
 
-    def map(self, test: np.ndarray, scratch: list[np.ndarray]) -> np.ndarray:
-        """SSIM map of ``test`` against this channel, written into (and returned from) the
-        first of four float32 scratch images: fresh 16 MB temporaries cost more in page
-        faults than the arithmetic does."""
-        y, uy, a, b = scratch
-        off = self.offset
-        np.subtract(test, off, out=y, dtype=np.float32)
-        _blur(y, uy)
-        _blur(np.multiply(self.x, y, out=a), b)
-        b -= np.multiply(self.ux, uy, out=a)  # b = cov
-        _blur(np.multiply(y, y, out=y), a)
-        a -= np.multiply(uy, uy, out=y)  # a = var_y
-        uy += off  # mu_y
-        np.add(self.ux, off, out=y)  # mu_x
-        y *= uy
-        y *= 2
-        y += self.c1
-        b *= 2
-        b += self.c2
-        y *= b  # numerator
-        uy *= uy
-        np.add(self.ux, off, out=b)
-        b *= b
-        uy += b
-        uy += self.c1
-        a += self.var
-        a += self.c2
-        uy *= a  # denominator
-        y /= uy
-        return y
+    def strips(self, test: np.ndarray):
+        """Yield ``(r0, r1, ssim_map_rows)`` covering ``test`` top to bottom; the yielded
+        array is reused for the next strip."""
+        h = test.shape[0]
+        tp = _pad_rows(test)
+        off, c1, c2 = self.offset, self.c1, self.c2
+        for r0 in range(0, h, STRIP):
+            r1 = min(h, r0 + STRIP)
+            y = np.subtract(tp[r0 : r1 + 2 * _PAD], off, dtype=np.float32)
+            x = self.xp[r0 : r1 + 2 * _PAD]
+            uy = _blur(y)[_PAD:-_PAD]
+            cov = _blur(x * y)[_PAD:-_PAD]
+            y *= y
+            var_y = _blur(y)[_PAD:-_PAD]
+            ux = self.ux[r0:r1]
+            cov -= ux * uy
+            var_y -= uy * uy
+            mu_x = ux + off
+            uy += off  # mu_y
+            num = mu_x * uy
+            num *= 2
+            num += c1
+            cov *= 2
+            cov += c2
+            num *= cov
+            mu_x *= mu_x
+            uy *= uy
+            uy += mu_x
+            uy += c1
+            var_y += self.var[r0:r1]
+            var_y += c2
+            uy *= var_y
+            num /= uy
+            yield r0, r1, num
+
+    def mean(self, test: np.ndarray) -> float:
+        """Mean of the SSIM map without the border of _PAD pixels."""
+        h, w = test.shape
+        total = 0.0
+        for r0, r1, m in self.strips(test):
+            a, b = max(r0, _PAD), min(r1, h - _PAD)
+            if b > a:
+                total += float(np.sum(m[a - r0 : b - r0, _PAD : w - _PAD], dtype=np.float64))
+        return total / ((h - 2 * _PAD) * (w - 2 * _PAD))
 
 
-def _scratch(shape) -> list[np.ndarray]:
-    return [np.empty(shape, np.float32) for _ in range(4)]
+def _pad_rows(a: np.ndarray) -> np.ndarray:
+    """``a`` with _PAD rows mirrored above and below (the blur's BORDER_REFLECT)."""
+    return cv2.copyMakeBorder(np.ascontiguousarray(a), _PAD, _PAD, 0, 0, cv2.BORDER_REFLECT)
 
 
 def ssim_map(ref: np.ndarray, test: np.ndarray, *, data_range: float | None = None) -> np.ndarray:
@@ -136,12 +158,15 @@ def ssim_map(ref: np.ndarray, test: np.ndarray, *, data_range: float | None = No
     Notes
     -----
     Computed in float32 on data with the reference mean removed (which keeps the variance
-    terms accurate). Working memory is about eight float32 images.
+    terms accurate).
     """
     ref, test, r = _check_pair(ref, test, data_range)
     if ref.ndim != 2:
         raise InputError(f"ssim_map takes one channel, got shape {ref.shape}")
-    return _ChannelRef(ref, r).map(test, _scratch(ref.shape))
+    out = np.empty(ref.shape, np.float32)
+    for r0, r1, m in _ChannelRef(ref, r).strips(test):
+        out[r0:r1] = m
+    return out
 
 
 class SSIMReference:
@@ -158,18 +183,13 @@ class SSIMReference:
         self.shape = ref.shape
         chans = [ref] if ref.ndim == 2 else cv2.split(np.ascontiguousarray(ref))
         self.channels = [_ChannelRef(c, self.r) for c in chans]
-        self._scratch = None  # kept between calls; not for use from two threads at once
 
     def ssim(self, test: np.ndarray) -> float:
         test = np.asarray(test)
         if test.shape != self.shape:
             raise InputError(f"images differ in shape: {self.shape} vs {test.shape}")
         chans = [test] if test.ndim == 2 else cv2.split(np.ascontiguousarray(test))
-        if self._scratch is None:
-            self._scratch = _scratch(self.shape[:2])
-        vals = [np.mean(ch.map(t, self._scratch)[_PAD:-_PAD, _PAD:-_PAD], dtype=np.float64)
-                for ch, t in zip(self.channels, chans)]
-        return float(np.mean(vals))
+        return float(np.mean([ch.mean(t) for ch, t in zip(self.channels, chans)]))
 
 
 def ssim(ref: np.ndarray, test: np.ndarray, *, data_range: float | None = None) -> float:

@@ -364,12 +364,25 @@ class Numbers:
     step: float
 
 
+@dataclass
+class Sketch:
+    """A reduced view of a reconstruction and the original under it: ``pixels[i, j]``
+    covers image pixels ``(y0 + f*i, x0 + f*j)`` to ``f`` further in each direction."""
+
+    pixels: np.ndarray
+    original: np.ndarray
+    y0: int
+    x0: int
+    factor: int
+
+
 class ImagePreview:
     """Fast what-ifs on one image: the transform is fitted once, then any step or
     component count is quantised and reconstructed exactly as the decoder would.
 
-    ``reconstruct`` is the cheap part (follows a slider); ``numbers`` entropy-codes and
-    measures (the read-outs), giving the size of a real one-image bundle.
+    ``sketch`` is the instant view for a dragging slider, ``reconstruct`` the exact image,
+    ``evaluate`` the exact image with its read-outs (entropy-coded, so the size is that of a
+    real one-image bundle).
     """
 
     def __init__(self, img: SourceImage, settings: Settings, *, shared=None, shared_ref: str | None = None):
@@ -378,6 +391,7 @@ class ImagePreview:
         self.codec = codecs.get(settings.method)
         self.shared_ref = shared_ref
         self.analysis = self.codec.analyse(image_planes(img, settings.chroma), settings, shared)
+        self._ssim_ref = None  # made on first use; one numbers() call at a time
 
     def compatible(self, settings: Settings) -> bool:
         """Whether ``settings`` can reuse this fit (only the step, count or target differ)."""
@@ -399,16 +413,65 @@ class ImagePreview:
         px = planes_to_pixels(coded.planes, self.img.pixels.shape[:2], settings.chroma, self.img.bits)
         return coded, px
 
-    def numbers(self, coded, pixels) -> Numbers:
+    def sketch(self, settings: Settings, factor: int, region=None) -> "Sketch | None":
+        """A fast approximate view of the reconstruction at ``settings`` for a dragging
+        slider: ``region`` (y0, y1, x0, x1 in image pixels, default all) at 1/``factor``
+        scale; None when the method has no such view (then use :meth:`reconstruct`)."""
+        if getattr(self.codec, "sketch", None) is None:
+            return None
+        if not self.compatible(settings):
+            raise InputError("settings changed the transform; make a new preview")
+        if factor not in self.codec.SKETCH_FACTORS:
+            raise InputError(f"sketch factor must be one of {self.codec.SKETCH_FACTORS}, got {factor!r}")
+        h, w = self.img.height, self.img.width
+        y0, y1, x0, x1 = region or (0, h, 0, w)
+        y0, y1, x0, x1 = max(0, y0), min(h, y1), max(0, x0), min(w, x1)
+        if y1 <= y0 or x1 <= x0:
+            raise InputError(f"sketch region {region!r} lies outside the {w}x{h} image")
+        al = self.codec.sketch_alignment(settings)
+        box = (y0 // al * al, -(-y1 // al) * al, x0 // al * al, -(-x1 // al) * al)
+        planes = self.codec.sketch(self.analysis, float(np.float32(settings.step)), settings.kept, factor, box)
+        px = planes_to_pixels(planes, planes[0].shape, "444", self.img.bits)
+        valid = (-(-(min(box[1], h) - box[0]) // factor), -(-(min(box[3], w) - box[2]) // factor))
+        px = px[: valid[0], : valid[1]]
+        return Sketch(px, self.original_small(factor)[box[0] // factor:, box[2] // factor:][: valid[0], : valid[1]],
+                      box[0], box[2], factor)
+
+    def original_small(self, factor: int) -> np.ndarray:
+        """The original averaged over ``factor`` x ``factor`` blocks (edges replicated),
+        as the sketches see it; kept per factor."""
+        cache = self.__dict__.setdefault("_small", {})
+        if factor not in cache:
+            px = self.img.pixels
+            h, w = px.shape[:2]
+            pad = ((0, -h % factor), (0, -w % factor)) + ((0, 0),) * (px.ndim - 2)
+            p = np.pad(px, pad, mode="edge") if pad[0][1] or pad[1][1] else px
+            size = (p.shape[1] // factor, p.shape[0] // factor)
+            cache[factor] = px if factor == 1 else cv2.resize(p, size, interpolation=cv2.INTER_AREA)
+        return cache[factor]
+
+    def evaluate(self, settings: Settings):
+        """``(coded, pixels, Numbers)`` at ``settings``: :meth:`reconstruct` and the
+        read-outs, with the entropy coder running beside the synthesis and SSIM (which
+        spend most of their time in numpy and OpenCV, outside the GIL)."""
+        import dataclasses
         from concurrent.futures import ThreadPoolExecutor
 
+        if not self.compatible(settings):
+            raise InputError("settings changed the transform; make a new preview")
+        coded = self.codec.quantise(dataclasses.replace(self.analysis, settings=settings), settings.step)
+        with ThreadPoolExecutor(max_workers=1) as threads:
+            size = threads.submit(lambda: len(self.codec.serialise(coded)))
+            px = planes_to_pixels(coded.planes, self.img.pixels.shape[:2], settings.chroma, self.img.bits)
+            n = self._measure(coded, px, size.result)
+        return coded, px, n
+
+    def _measure(self, coded, pixels, payload_size) -> Numbers:
         img = self.img
-        with ThreadPoolExecutor(max_workers=1) as pool:
-            # SSIM runs in OpenCV and numpy without the GIL, so it overlaps the entropy coder.
-            ssim = pool.submit(metrics.ssim, img.pixels, pixels, data_range=img.peak) \
-                if min(img.height, img.width) > 11 else None
-            size = _overhead_bytes(img, coded.analysis.settings, self.shared_ref) + len(self.codec.serialise(coded))
-            p = metrics.psnr(img.pixels, pixels, data_range=img.peak)
-            s = ssim.result() if ssim is not None else float("nan")
+        if self._ssim_ref is None and min(img.height, img.width) > 11:
+            self._ssim_ref = metrics.SSIMReference(img.pixels, data_range=img.peak)
+        p = metrics.psnr(img.pixels, pixels, data_range=img.peak)
+        s = self._ssim_ref.ssim(pixels) if self._ssim_ref is not None else float("nan")
+        size = _overhead_bytes(img, coded.analysis.settings, self.shared_ref) + payload_size()
         raw = img.width * img.height * img.channels * img.bits / 8
         return Numbers(size, 8 * size / (img.width * img.height), raw / size, p, s, coded.kept, coded.step)

@@ -17,6 +17,7 @@ from __future__ import annotations
 import struct
 from dataclasses import dataclass
 
+import cv2
 import numpy as np
 
 from .. import coefcode, klt, tiling
@@ -37,6 +38,7 @@ class Analysis:
     basis: klt.Basis
     inline: bool
     settings: object
+    _sketch_step: tuple | None = None  # ((step, count), synthesis, dequantised coefficients)
 
 
 @dataclass
@@ -200,6 +202,82 @@ class KLTCodec:
         kinds = [0] + [1] * (n_planes - 1)
         q = coefcode.decode_grids(payload[pos:], grid, kinds)
         return synthesise(q, synthesis, float(step), means, shapes, block)
+
+
+    # ----------------------------------------------------------------- sketches
+    SKETCH_FACTORS = (1, 2, 4, 8)
+
+    @staticmethod
+    def sketch_alignment(settings) -> int:
+        """Region edges for :meth:`sketch` fall on multiples of this many luma pixels."""
+        return settings.block * (2 if settings.chroma == "420" else 1) * 8
+
+    def sketch(self, a: Analysis, step: float, kept: int, factor: int, region) -> list[np.ndarray]:
+        """Planes of a reconstruction of ``region`` seen at 1/``factor`` scale.
+
+        For a dragging slider: the image is quantised as :meth:`quantise` would (kept for
+        the step and count), then synthesised with the basis vectors averaged over
+        ``factor`` x ``factor`` pixels, a product ``factor**2`` times smaller than the full
+        synthesis (averaging is linear, so this is the area-downscaled reconstruction).
+
+        Parameters
+        ----------
+        region : (y0, y1, x0, x1)
+            In full-resolution luma pixels, multiples of :meth:`sketch_alignment`.
+
+        Returns
+        -------
+        list of ndarray
+            float32 planes of the region at 1/factor of the luma size, all the same shape.
+        """
+        if a._sketch_step is None or a._sketch_step[0] != (step, kept):
+            # The same analysis as quantise() (refitted to the count), so that the sketch
+            # differs from the decoder's image only by rounding after the averaging.
+            if a.inline:
+                synthesis = klt.dequantise_vectors(*klt.quantise_vectors(a.basis, kept, step))
+                analysis_m = np.linalg.pinv(synthesis)
+            else:
+                synthesis = a.basis.vectors[:, :kept].T
+                analysis_m = synthesis.T
+            am = (analysis_m / step).astype(np.float32)
+            a._sketch_step = ((step, kept), synthesis, [
+                _deadzone_in_place(p.reshape(-1, p.shape[2]) @ am, a.settings.deadzone).astype(np.float32)
+                * np.float32(step) for p in a.patches])
+        _, synthesis, coefs = a._sketch_step
+        block = a.settings.block
+        y0, y1, x0, x1 = region
+        out_shape = ((y1 - y0) // factor, (x1 - x0) // factor)
+        planes = []
+        for i, (d, m, shape) in enumerate(zip(coefs, a.means, a.shapes)):
+            sub = 2 if (i and a.settings.chroma == "420") else 1
+            rows, cols = tiling.grid_shape(shape, block)
+            cell = block * sub  # luma pixels per patch
+            r0, r1 = y0 // cell, min(rows, -(-y1 // cell))
+            c0, c1 = x0 // cell, min(cols, -(-x1 // cell))
+            g = factor / sub  # plane pixels per sketch pixel
+            gb = int(min(max(g, 1), block))
+            v = synthesis[:kept].reshape(kept, block // gb, gb, block // gb, gb).mean(axis=(2, 4))
+            dd = d.reshape(rows, cols, -1)[r0:r1, c0:c1]
+            pix = dd @ v.reshape(kept, -1).astype(np.float32)
+            pix += np.float32(m)
+            plane = tiling.from_patches(pix, (pix.shape[0] * (block // gb), pix.shape[1] * (block // gb)), block // gb)
+            if g != gb:  # further down (g > block) or up (4:2:0 chroma seen at full size)
+                size = (max(1, round(plane.shape[1] * gb / g)), max(1, round(plane.shape[0] * gb / g)))
+                plane = cv2.resize(plane, size, interpolation=cv2.INTER_AREA if g > gb else cv2.INTER_LINEAR)
+            if sub == 2 and g >= 1:
+                # The decoder interpolates 4:2:0 chroma (weights 3/4, 1/4); averaged over g
+                # chroma samples that interpolation is this three-tap filter.
+                k = np.array([1 / (8 * g), 1 - 1 / (4 * g), 1 / (8 * g)], np.float32)
+                plane = cv2.sepFilter2D(plane, cv2.CV_32F, k, k, borderType=cv2.BORDER_REPLICATE)
+            planes.append(_fit(plane, out_shape))
+        return planes
+
+
+def _fit(plane: np.ndarray, shape) -> np.ndarray:
+    """Crop or edge-extend ``plane`` to ``shape`` (sketch planes can differ by a pixel)."""
+    plane = plane[: shape[0], : shape[1]]
+    pad = ((0, shape[0] - plane.shape[0]), (0, shape[1] - plane.shape[1]))
+    return np.pad(plane, pad, mode="edge") if pad[0][1] or pad[1][1] else plane
 
 
 CODEC = KLTCodec()

@@ -58,13 +58,14 @@ def start_training(window, path: Path, *, minutes: float, lam: float, latent: in
 
     images = list(window.images)
     cfg = TrainConfig(latent=latent, lam=lam, minutes=minutes, max_steps=max_steps)
-    return window._start_job(lambda: train_job(images, path, cfg), ("train", path), "training the conv encoder…")
+    # In a child process: torch's import and the training loop then never hold the GUI's GIL.
+    return window._start_job(train_job, ("train", path), "training the conv encoder…", child_args=(images, path, cfg))
 
 
-def on_trained(window, path, result) -> None:
-    from ..codecs import get
-
-    model, sha = get("conv").load_model(path)
+def on_trained(window, path, result, loaded) -> None:
+    """Make the freshly trained model (``loaded``: (model, sha256), read off the GUI
+    thread) the conv encoder of this window."""
+    model, sha = loaded
     window.conv_model = (model, sha)
     window._previews.clear()
     i = window.panel.method.findData("conv")

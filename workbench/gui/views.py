@@ -23,6 +23,12 @@ class ImageView(QGraphicsView):
         self.item = QGraphicsPixmapItem()
         self.item.setTransformationMode(Qt.TransformationMode.FastTransformation)
         self.scene().addItem(self.item)
+        # A reduced or partial view drawn over the exact image while a slider moves.
+        self.overlay = QGraphicsPixmapItem()
+        self.overlay.setTransformationMode(Qt.TransformationMode.FastTransformation)
+        self.overlay.setZValue(1)
+        self.scene().addItem(self.overlay)
+        self.shown = 0  # counts what was put on screen (exact images and sketches)
         self.marks: list[QGraphicsRectItem] = []
         self.setDragMode(QGraphicsView.DragMode.ScrollHandDrag)
         self.setTransformationAnchor(QGraphicsView.ViewportAnchor.AnchorUnderMouse)
@@ -39,9 +45,28 @@ class ImageView(QGraphicsView):
     def set_qimage(self, image) -> None:
         self.item.setPixmap(QPixmap.fromImage(image))
         self.scene().setSceneRect(QRectF(self.item.pixmap().rect()))
+        self.clear_sketch()
+        self.shown += 1
+
+    def set_sketch(self, image, x0: int, y0: int, factor: int) -> None:
+        """Show ``image`` over image pixels from (x0, y0), each of its pixels covering
+        ``factor`` x ``factor`` image pixels."""
+        self.overlay.setPixmap(QPixmap.fromImage(image))
+        self.overlay.setPos(x0, y0)
+        self.overlay.setScale(factor)
+        self.shown += 1
+
+    def clear_sketch(self) -> None:
+        if not self.overlay.pixmap().isNull():
+            self.overlay.setPixmap(QPixmap())
+
+    def visible_rect(self) -> QRectF:
+        """The part of the scene (image pixels) the viewport shows."""
+        return self.mapToScene(self.viewport().rect()).boundingRect()
 
     def clear(self) -> None:
         self.item.setPixmap(QPixmap())
+        self.clear_sketch()
         self.set_marks([])
 
     def set_marks(self, rects) -> None:
@@ -54,6 +79,7 @@ class ImageView(QGraphicsView):
         for x, y, w, h in rects:
             r = QGraphicsRectItem(x, y, w, h)
             r.setPen(pen)
+            r.setZValue(2)
             self.scene().addItem(r)
             self.marks.append(r)
 

@@ -25,6 +25,7 @@ SAMPLES = Path(__file__).resolve().parents[2] / "sample_images"
 CAUTION = ("Lossy compression discards information. Where images are evidence, records or used for "
            "diagnosis, lossy storage may be restricted: follow local regulations and professional guidelines.")
 THUMB = 96
+SKETCH_MIN_PIXELS = 1_000_000  # below this the exact preview follows a slider quickly enough
 PREVIEW_CACHE = 3  # fitted transforms kept (each holds the image's patches: ~100 MB at 4 Mpixel)
 
 
@@ -33,10 +34,10 @@ def icon(name: str) -> QIcon:
     return QIcon(str(p)) if p.exists() else QIcon()
 
 
-def _thumbnail(img: SourceImage) -> QPixmap:
-    rgb = imaging.display_rgb(img.pixels)
-    step = max(1, max(rgb.shape[:2]) // THUMB)
-    return QPixmap.fromImage(imaging.to_qimage(np.ascontiguousarray(rgb[::step, ::step])))
+def _thumbnail_image(img: SourceImage):
+    """A small QImage of ``img`` (QImage, unlike QPixmap, may be made off the GUI thread)."""
+    step = max(1, max(img.pixels.shape[:2]) // THUMB)
+    return imaging.to_qimage(imaging.display_rgb(np.ascontiguousarray(img.pixels[::step, ::step])))
 
 
 class Notice(QWidget):
@@ -79,13 +80,29 @@ class MainWindow(QMainWindow):
         self.conv_model = None  # (model, sha256) once trained here; else the shipped one
         self.last_training = None
 
-        self.fit_lane, self.preview_lane, self.numbers_lane, self.target_lane = Lane(), Lane(), Lane(), Lane()
+        self.fit_lane, self.preview_lane, self.target_lane = Lane(), Lane(), Lane()
+        # Sketches get a thread of their own so that they never queue behind slower work.
+        self._sketch_pool = QThreadPool(self)
+        self._sketch_pool.setMaxThreadCount(1)
+        self.sketch_lane = Lane(self._sketch_pool)
+        self.sketch_lane.result.connect(self._on_sketch)
+        self.sketch_lane.error.connect(self._on_sketch_error)
         self.fit_lane.result.connect(self._on_fitted)
         self.preview_lane.result.connect(self._on_preview)
-        self.numbers_lane.result.connect(self._on_numbers)
+        self.render_lane = Lane()
+        self.render_lane.result.connect(self._on_rendered)
+        self.render_lane.error.connect(self._on_lane_error)
         self.target_lane.result.connect(self._on_target)
-        for lane in (self.fit_lane, self.preview_lane, self.numbers_lane, self.target_lane):
+        for lane in (self.fit_lane, self.preview_lane, self.target_lane):
             lane.error.connect(self._on_lane_error)
+        self._after_sketch = None  # the exact preview waiting for the sketch to be shown
+        # Reading a folder and loading a model run off the GUI thread too.
+        self.loading = False
+        self.folder_lane, self.model_lane = Lane(), Lane()
+        self.folder_lane.result.connect(self._on_folder)
+        self.folder_lane.error.connect(self._on_folder_error)
+        self.model_lane.result.connect(lambda _tag, value: self._on_model_loaded(*value))
+        self.model_lane.error.connect(self._on_lane_error)
         self.jobs = JobRunner()
         self.jobs.progress.connect(self._on_job_progress)
         self.jobs.finished.connect(self._on_job_done)
@@ -202,23 +219,38 @@ class MainWindow(QMainWindow):
             self.store.setValue("last_folder", str(self.folder))
         self.store.sync()
         self.jobs.cancel()
-        for lane in (self.fit_lane, self.preview_lane, self.numbers_lane, self.target_lane):
+        for lane in (self.fit_lane, self.preview_lane, self.target_lane, self.sketch_lane,
+                     self.folder_lane, self.model_lane, self.render_lane):
             lane.invalidate()
+        self._sketch_pool.waitForDone(30000)
         QThreadPool.globalInstance().waitForDone(30000)  # let running work end before its receivers go
         super().closeEvent(event)
 
     # ------------------------------------------------------------------ opening
     def open_folder(self, folder) -> None:
-        """Read a folder's images (unreadable ones are listed and skipped)."""
+        """Read a folder's images off the GUI thread (unreadable ones are listed and
+        skipped); ``loading`` is true until they are shown."""
         folder = Path(folder)
-        try:
+        self.loading = True
+        self.status_text.setText(f"reading {folder}…")
+
+        def work():
             images, skipped = read_many([folder])
-        except ValueError as exc:
-            self.notice.show_text(str(exc))
-            return
+            return folder, images, skipped, [_thumbnail_image(i) for i in images]
+
+        self.folder_lane.submit(work, tag=folder)
+
+    def _on_folder_error(self, _tag, msg):
+        self.loading = False
+        self.status_text.setText("")
+        self.notice.show_text(msg)
+
+    def _on_folder(self, _tag, value):
+        folder, images, skipped, thumbs = value
+        self.loading = False
         self.folder, self.bundle_path = folder, None
         self.store.setValue("last_folder", str(folder))
-        self._set_images(images)
+        self._set_images(images, thumbs)
         if skipped:
             names = ", ".join(n for n, _ in skipped)
             self.notice.show_text(f"Skipped {len(skipped)} unreadable file(s): {names}")
@@ -226,15 +258,15 @@ class MainWindow(QMainWindow):
             self.notice.hide()
         self.status_text.setText(f"{folder}: {len(images)} image(s)")
 
-    def _set_images(self, images):
+    def _set_images(self, images, thumbs=None):
         self.images = images
         self._previews.clear()
         self._shared.clear()
         self._numbers.clear()
         self.thumbs.blockSignals(True)
         self.thumbs.clear()
-        for img in images:
-            item = QListWidgetItem(QIcon(_thumbnail(img)), self._caption(img))
+        for img, thumb in zip(images, thumbs or [_thumbnail_image(i) for i in images]):
+            item = QListWidgetItem(QIcon(QPixmap.fromImage(thumb)), self._caption(img))
             item.setSizeHint(QSize(THUMB + 70, THUMB + 48))
             self.thumbs.addItem(item)
         self.thumbs.blockSignals(False)
@@ -315,9 +347,56 @@ class MainWindow(QMainWindow):
             return
         self.panel.show_energy(prev.energy_kept(), s.kept)
         look = self._diff_look()
-        self.preview_lane.submit(lambda: self._reconstruct(prev, s, look), tag=(img.name, s))
+        exact = (lambda: self._reconstruct(prev, s, look)), (img.name, s)
+        view = self._sketch_view(prev)
+        if view is not None:
+            # First a reduced view of what is on screen (tens of ms), then the exact image.
+            self._after_sketch = exact
+            self.sketch_lane.submit(lambda: self._sketch(prev, s, *view, look), tag=(img.name, s))
+        else:
+            self._after_sketch = None
+            self.preview_lane.submit(*exact)
         if cached is not None:
             self._show_numbers(img, cached)
+
+    def _sketch_view(self, prev):
+        """``(factor, region)`` for a sketch of what the views show, or None where the exact
+        path is quick anyway (small images) or the method has no sketch."""
+        img = prev.img
+        if not hasattr(prev.codec, "sketch") or img.width * img.height < SKETCH_MIN_PIXELS:
+            return None
+        factor = 1
+        while factor < 8 and 2 * factor * self.views.scale <= 1.0:
+            factor *= 2
+        r = self.views.views[0].visible_rect()
+        if r.isEmpty():
+            return factor, None
+        return factor, (int(r.top()), int(r.bottom()) + 1, int(r.left()), int(r.right()) + 1)
+
+    def _sketch(self, prev, s, factor, region, look):
+        signed, gain, _ = look
+        sk = prev.sketch(s, factor, region)
+        diff = imaging.difference(sk.original, sk.pixels, prev.img.peak, gain, signed)
+        return prev, s, sk, imaging.to_qimage(imaging.display_rgb(sk.pixels)), imaging.to_qimage(diff)
+
+    def _on_sketch(self, tag, value):
+        prev, s, sk, rec, diff = value
+        if prev.img is self.current:
+            self.views.views[1].set_sketch(rec, sk.x0, sk.y0, sk.factor)
+            self.views.views[2].set_sketch(diff, sk.x0, sk.y0, sk.factor)
+            if self._shown is not None and self._shown[0] is prev.img.pixels:
+                self._shown = (self._shown[0], None, self._shown[2])
+        self._run_exact()
+
+    def _on_sketch_error(self, _tag, msg):
+        self._on_lane_error(_tag, msg)
+        self._run_exact()
+
+    def _run_exact(self):
+        if self._after_sketch is not None:
+            fn, tag = self._after_sketch
+            self._after_sketch = None
+            self.preview_lane.submit(fn, tag=tag)
 
     def _make_preview(self, img, s, key):
         if s.method == "klt" and s.basis_scope == "folder":
@@ -359,20 +438,32 @@ class MainWindow(QMainWindow):
                 "marks": marks, "look": look}
 
     def _reconstruct(self, prev, s, look):
-        coded, px = prev.reconstruct(s)
-        return prev, s, coded, px, self._render(prev.img, px, look)
+        """The exact reconstruction, with its read-outs unless they are cached already."""
+        key = (prev.img.name, s.cache_key())
+        if key in self._numbers:
+            coded, px = prev.reconstruct(s)
+            return prev, s, px, look, None
+        coded, px, n = prev.evaluate(s)
+        return prev, s, px, look, n
 
     def _on_preview(self, tag, value):
-        prev, s, coded, px, rendered = value
+        # The sketch already shows the reconstruction, so its read-outs (entropy coding and
+        # SSIM, which need both cores) came first; the exact full-resolution view follows.
+        prev, s, px, look, n = value
         img = prev.img
+        if n is not None:
+            self._on_numbers((img.name, s.cache_key()), (img, s, n))
         if img is not self.current:
             return
-        self._display(img, px, rendered)
         key = (img.name, s.cache_key())
-        if key in self._numbers:
+        if key in self._numbers and n is None:
             self._show_numbers(img, self._numbers[key])
-        else:
-            self.numbers_lane.submit(lambda: (img, s, prev.numbers(coded, px)), tag=key)
+        self.render_lane.submit(lambda: (img, px, self._render(img, px, look)), tag=tag)
+
+    def _on_rendered(self, _tag, value):
+        img, px, rendered = value
+        if img is self.current:
+            self._display(img, px, rendered)
 
     def _submit_target(self, img, s):
         if s.method == "klt" and s.basis_scope == "folder" and (s.block, s.chroma, s.kept) not in self._shared:
@@ -387,7 +478,6 @@ class MainWindow(QMainWindow):
             return img, s, n, r.reconstruction
 
         self.preview_lane.invalidate()
-        self.numbers_lane.invalidate()
         self.target_lane.submit(work, tag=(img.name, s))
 
     def _on_target(self, tag, value):
@@ -423,6 +513,7 @@ class MainWindow(QMainWindow):
         self._shown = (img.pixels, rec, img.peak)
         if first:
             self.views.views[0].set_array(imaging.display_rgb(img.pixels))
+            self.views.fit()
         self.views.views[1].set_qimage(rendered["rec"])
         if rendered["look"] == self._diff_look():
             self.views.views[2].set_qimage(rendered["diff"])
@@ -432,8 +523,8 @@ class MainWindow(QMainWindow):
             self._redraw_difference()
 
     def _redraw_difference(self):
-        if self._shown is None:
-            return
+        if self._shown is None or self._shown[1] is None:
+            return  # the exact image is on its way and will be drawn with the current look
         orig, rec, peak = self._shown
         signed = self.panel.diff_mode.currentData()
         gain = float(self.panel.gain.value())
@@ -458,13 +549,19 @@ class MainWindow(QMainWindow):
         orig, rec, peak = self._shown
         if not (0 <= y < orig.shape[0] and 0 <= x < orig.shape[1]):
             return
-        o, r = orig[y, x], rec[y, x]
-        d = np.asarray(r, dtype=np.int64) - np.asarray(o, dtype=np.int64)
         fmt = (lambda v: " ".join(str(int(c)) for c in np.atleast_1d(v)))
+        o = orig[y, x]
+        if rec is None:  # the exact image for the new settings is still on its way
+            self.views.readout.setText(f"x {x}, y {y}   original {fmt(o)}   reconstruction updating…")
+            return
+        r = rec[y, x]
+        d = np.asarray(r, dtype=np.int64) - np.asarray(o, dtype=np.int64)
         self.views.readout.setText(f"x {x}, y {y}   original {fmt(o)}   reconstruction {fmt(r)}   difference {fmt(d)}")
 
     # ------------------------------------------------------------------ long jobs
-    def _start_job(self, factory, tag, text):
+    def _start_job(self, factory, tag, text, child_args=None):
+        """Run a core job with progress and Cancel; with ``child_args`` it runs as
+        ``factory(*child_args)`` in a child process (heavy jobs such as training)."""
         if self.jobs.active:
             self.status_text.setText("another job is running; cancel it first")
             return False
@@ -472,7 +569,10 @@ class MainWindow(QMainWindow):
         self.progress.show()
         self.cancel_button.show()
         self.status_text.setText(text)
-        self.jobs.start(factory, tag)
+        if child_args is None:
+            self.jobs.start(factory, tag)
+        else:
+            self.jobs.start_child(factory, child_args, tag)
         return True
 
     def _on_job_progress(self, frac, text):
@@ -588,9 +688,15 @@ class MainWindow(QMainWindow):
         training.ask_and_train(self)
 
     def _on_trained(self, path, result):
+        from ..codecs import get
+
+        self.status_text.setText(f"Trained {path}; loading it…")
+        self.model_lane.submit(lambda: (path, result, get("conv").load_model(path)), tag=path)
+
+    def _on_model_loaded(self, path, result, loaded):
         from . import training
 
-        training.on_trained(self, path, result)
+        training.on_trained(self, path, result, loaded)
 
     # ------------------------------------------------------------------ drag and drop, about
     def dragEnterEvent(self, event):

@@ -51,6 +51,51 @@ class _Task(QRunnable):
             pass  # the window closed while this ran: nobody is left to tell
 
 
+class _ChildTask(QRunnable):
+    """Waits on a job running in a child process (:func:`workbench.jobs.start_child`) and
+    relays its messages; the waiting releases the GIL, so the GUI keeps it."""
+
+    def __init__(self, gen_id, factory, args, signals, should_stop):
+        super().__init__()
+        self.gen_id, self.factory, self.args = gen_id, factory, args
+        self.signals, self.should_stop = signals, should_stop
+        self.setAutoDelete(True)
+
+    def run(self):
+        from ..jobs import start_child
+
+        try:
+            proc, conn, cancel = start_child(self.factory, self.args)
+        except OSError as exc:
+            self._emit(self.signals.failed, f"could not start the job: {exc}")
+            return
+        msg = None
+        try:
+            while True:
+                if self.should_stop():
+                    cancel.set()
+                if not conn.poll(0.1):
+                    if not proc.is_alive() and not conn.poll():
+                        msg = ("failed", "error", f"the job's process ended unexpectedly (exit code {proc.exitcode})")
+                        break
+                    continue
+                msg = conn.recv()
+                if msg[0] == "progress":
+                    self.signals.progress.emit(msg[1], msg[2])
+                    continue
+                break
+        except (EOFError, OSError):
+            msg = ("failed", "error", f"the job's process ended unexpectedly (exit code {proc.exitcode})")
+        finally:
+            proc.join(30)
+        if msg[0] == "done":
+            self._emit(self.signals.done, msg[1])
+        else:
+            self._emit(self.signals.failed, msg[2])
+
+    _emit = _Task._emit
+
+
 def _attach(owner, pool) -> None:
     """Give ``owner`` a pool and the signals its tasks report through."""
     owner.pool = pool or QThreadPool.globalInstance()
@@ -148,6 +193,16 @@ class JobRunner(QObject):
         sig = self._signals
         self.pool.start(_Task(self._id, job_factory, sig, should_stop=lambda: self._cancel,
                               on_progress=lambda p: sig.progress.emit(p.fraction, p.text)))
+
+    def start_child(self, factory, args, tag=None) -> None:
+        """Like :meth:`start` for ``factory(*args)`` (picklable), run in a child process."""
+        if self.active:
+            raise RuntimeError("a job is already running")
+        self._cancel = False
+        self._tag = tag
+        self._id += 1
+        self.active = True
+        self.pool.start(_ChildTask(self._id, factory, args, self._signals, lambda: self._cancel))
 
     def cancel(self) -> None:
         self._cancel = True
