@@ -95,20 +95,25 @@ class Point:
     ssim: float
 
 
-def point(b: Baseline, pixels: np.ndarray, knob, *, with_ssim: bool = True) -> Point:
+def point(b: Baseline, pixels: np.ndarray, knob, *, with_ssim: bool = True, ssim_ref=None) -> Point:
+    """One encode and decode at ``knob``; ``ssim_ref`` (a :class:`metrics.SSIMReference`
+    of ``pixels``) saves redoing the reference's half of SSIM for every point."""
     data = encode(b, pixels, knob)
     rec = decode(data, grey=pixels.ndim == 2)
     if rec.shape != pixels.shape or rec.dtype != pixels.dtype:
         raise InputError(f"{b.name} decoded {rec.shape} {rec.dtype}, expected {pixels.shape} {pixels.dtype}")
     peak = 65535 if pixels.dtype == np.uint16 else 255
-    s = metrics.ssim(pixels, rec, data_range=peak) if with_ssim else float("nan")
+    if not with_ssim:
+        s = float("nan")
+    else:
+        s = ssim_ref.ssim(rec) if ssim_ref is not None else metrics.ssim(pixels, rec, data_range=peak)
     return Point(float(knob), len(data), 8 * len(data) / (pixels.shape[0] * pixels.shape[1]),
                  metrics.psnr(pixels, rec, data_range=peak), s)
 
 
-def sweep(b: Baseline, pixels: np.ndarray, knobs=None, *, with_ssim: bool = True) -> list[Point]:
+def sweep(b: Baseline, pixels: np.ndarray, knobs=None, *, with_ssim: bool = True, ssim_ref=None) -> list[Point]:
     """Rate-distortion points over ``knobs`` (the baseline's default sweep if None), by rate."""
-    pts = [point(b, pixels, k, with_ssim=with_ssim) for k in (knobs or b.knobs)]
+    pts = [point(b, pixels, k, with_ssim=with_ssim, ssim_ref=ssim_ref) for k in (knobs or b.knobs)]
     return sorted(pts, key=lambda p: p.bpp)
 
 

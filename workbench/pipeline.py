@@ -325,7 +325,7 @@ DEFAULT_STEPS = (2.0, 3.0, 4.5, 6.5, 9.5, 14.0, 20.0, 30.0, 44.0, 64.0)
 
 
 def rd_points(img: SourceImage, settings: Settings, steps=None, *, shared=None, shared_ref=None,
-              with_ssim: bool = True) -> list[RDPoint]:
+              with_ssim: bool = True, ssim_ref=None) -> list[RDPoint]:
     """Rate–distortion points of one image, each the size of a real one-image bundle.
 
     The transform is fitted once; each step is quantised, entropy-coded and laid out as a
@@ -344,7 +344,8 @@ def rd_points(img: SourceImage, settings: Settings, steps=None, *, shared=None, 
         rec = planes_to_pixels(coded.planes, img.pixels.shape[:2], settings.chroma, img.bits)
         out.append(RDPoint(coded.step, size, 8 * size / (img.width * img.height),
                            metrics.psnr(img.pixels, rec, data_range=img.peak),
-                           metrics.ssim(img.pixels, rec, data_range=img.peak) if with_ssim else float("nan")))
+                           float("nan") if not with_ssim else ssim_ref.ssim(rec) if ssim_ref is not None
+                           else metrics.ssim(img.pixels, rec, data_range=img.peak)))
     return sorted(out, key=lambda p: p.bpp)
 
 

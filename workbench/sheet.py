@@ -32,7 +32,7 @@ CAUTION = ("Lossy compression discards information. Where images are evidence, r
            "lossy storage may be restricted: follow local regulations and professional guidelines.")
 TILE = 32
 WORST_CROPS = 6
-SWEEP_POINTS = 6
+SWEEP_POINTS = 4  # Bjøntegaard's method fits a cubic through four points per curve (VCEG-M33)
 WORKERS = 2
 LIBRARIES = ("numpy", "scipy", "Pillow", "scikit-image", "opencv-python-headless", "constriction", "matplotlib")
 
@@ -75,28 +75,71 @@ def _versions() -> dict:
     return out
 
 
-PROBES = (5, 50, 95)
+PROBES = (25, 75)
+MAX_ROUNDS = 2
+MAX_QUALITY = 95  # above this the quality knobs approach lossless (AVIF 100 is), off any curve
 SHEET_STEPS = (2.5, 4.0, 6.0, 9.0, 13.5, 20.0, 30.0, 45.0)
 
 
-def _knobs(b: baselines.Baseline, pixels: np.ndarray, lo: float, hi: float, n: int) -> list:
-    """Knobs whose files should span our curve's rates [lo, hi] (with a margin), so the
-    curves overlap where BD-rate is computed. JPEG 2000's knob is a compression ratio, set
-    directly; the quality knobs are found from the sizes of a few probe files."""
-    targets = np.geomspace(0.6 * lo, 1.6 * hi, n)
-    h, w = pixels.shape[:2]
+def _baseline_curve(b: baselines.Baseline, pixels: np.ndarray, lo: float, hi: float, ssim_ref) -> list:
+    """SWEEP_POINTS points, one per target rate, whose rates span our curve's [lo, hi] (with a
+    margin) so the curves overlap where BD-rate is computed; targets spaced geometrically.
+
+    JPEG 2000's knob is a compression ratio, set directly. For the quality knobs two probe
+    files are made first; when they show that the top target needs a knob above
+    MAX_QUALITY, that knob's rate becomes the top target. Then, for the targets no file lies
+    within 20 % of yet, the knob is interpolated in (log rate, knob) between the files so
+    far (the end segments extended), for at most MAX_ROUNDS rounds.
+    """
+    targets = np.geomspace(0.6 * lo, 1.6 * hi, SWEEP_POINTS)
     if b.name == "jpeg2000":
         raw_bpp = 8 * pixels.itemsize * (1 if pixels.ndim == 2 else pixels.shape[2])
-        return sorted({round(float(raw_bpp / t), 2) for t in targets if raw_bpp / t > 1.0}, reverse=True)
-    sizes = [8 * len(baselines.encode(b, pixels, k)) / (h * w) for k in PROBES]
-    order = np.argsort(sizes)
-    knobs = np.interp(np.log(targets), np.log(np.asarray(sizes)[order]), np.asarray(PROBES, float)[order])
-    return sorted({int(np.clip(round(k), 1, 100)) for k in knobs})
+        knobs = sorted({round(float(raw_bpp / t), 2) for t in targets if raw_bpp / t > 1.0}, reverse=True)
+        return baselines.sweep(b, pixels, knobs, ssim_ref=ssim_ref)
+    pts = [baselines.point(b, pixels, k, ssim_ref=ssim_ref) for k in PROBES]
+    tried = {p.knob for p in pts}
+    known = sorted(pts, key=lambda p: p.bpp)
+    if _interp_knob(np.log(targets[-1]), np.log([p.bpp for p in known]), np.array([p.knob for p in known], float)) \
+            > MAX_QUALITY:
+        # our curve reaches rates this codec cannot (below MAX_QUALITY): end the targets there
+        top = baselines.point(b, pixels, MAX_QUALITY, ssim_ref=ssim_ref)
+        pts.append(top)
+        tried.add(top.knob)
+        if top.bpp > targets[0]:
+            targets = np.geomspace(targets[0], top.bpp, SWEEP_POINTS)
+    for _ in range(MAX_ROUNDS):
+        missing = [t for t in targets if not any(abs(np.log(p.bpp / t)) < np.log(1.2) for p in pts)]
+        if not missing:
+            break
+        known = sorted(pts, key=lambda p: p.bpp)
+        rates, knobs = np.log([p.bpp for p in known]), np.array([p.knob for p in known], float)
+        for t in missing:
+            k = int(np.clip(round(_interp_knob(np.log(t), rates, knobs)), 1, MAX_QUALITY))
+            if k not in tried:
+                tried.add(k)
+                pts.append(baselines.point(b, pixels, k, ssim_ref=ssim_ref))
+    # The curve is the point nearest each target (the others were only the search), so the
+    # i-th point of every image's curve means the same thing for the folder curves.
+    return [min(pts, key=lambda p: abs(np.log(p.bpp / t))) for t in targets]
+
+
+def _interp_knob(log_rate: float, rates: np.ndarray, knobs: np.ndarray) -> float:
+    """Knob at ``log_rate`` on the polyline through (rates, knobs), ends extended linearly."""
+    if len(rates) < 2 or rates[-1] == rates[0]:
+        return float(knobs[0])
+    i = int(np.clip(np.searchsorted(rates, log_rate), 1, len(rates) - 1))
+    r0, r1, k0, k1 = rates[i - 1], rates[i], knobs[i - 1], knobs[i]
+    return float(k0 + (log_rate - r0) * (k1 - k0) / (r1 - r0)) if r1 != r0 else float(k0)
 
 
 def _bd(ref_pts, test_pts, key) -> float | None:
     """BD-rate of ``test`` against ``ref``; the reference is limited to the rates the test
     curve spans (with a margin) so the cubic fits describe the same region."""
+    # finite values, one point per rate (a target no knob could reach repeats a point)
+    ref_pts = list({p["bpp"]: p for p in ref_pts if np.isfinite(p[key])}.values())
+    test_pts = list({p["bpp"]: p for p in test_pts if np.isfinite(p[key])}.values())
+    if not ref_pts or not test_pts:
+        return None
     lo, hi = min(p["bpp"] for p in test_pts), max(p["bpp"] for p in test_pts)
     near = [p for p in ref_pts if 0.5 * lo <= p["bpp"] <= 2 * hi]
     if len(near) >= 4:
@@ -142,7 +185,8 @@ def _curves_in_worker(name, pixels, settings_dict, names, shared_bytes, shared_r
 def _curves(img: SourceImage, settings: Settings, names, shared, shared_ref) -> dict:
     ours_settings = settings.replace(target=None)
     steps = SHEET_STEPS if settings.method == "klt" else None
-    pts = pipeline.rd_points(img, ours_settings, steps, shared=shared, shared_ref=shared_ref)
+    ref = metrics.SSIMReference(img.pixels, data_range=img.peak) if min(img.height, img.width) > 11 else None
+    pts = pipeline.rd_points(img, ours_settings, steps, shared=shared, shared_ref=shared_ref, ssim_ref=ref)
     curves = {"ours": [{"bpp": p.bpp, "psnr": p.psnr, "ssim": p.ssim, "bytes": p.bytes, "knob": p.step} for p in pts]}
     lo, hi = pts[0].bpp, pts[-1].bpp
     for n in names:
@@ -150,7 +194,7 @@ def _curves(img: SourceImage, settings: Settings, names, shared, shared_ref) -> 
         if not baselines.supports(b, img.pixels):
             continue
         curves[n] = [{"bpp": p.bpp, "psnr": p.psnr, "ssim": p.ssim, "bytes": p.bytes, "knob": p.knob}
-                     for p in baselines.sweep(b, img.pixels, _knobs(b, img.pixels, lo, hi, SWEEP_POINTS))]
+                     for p in _baseline_curve(b, img.pixels, lo, hi, ref)]
     return curves
 
 
