@@ -451,10 +451,11 @@ class ImagePreview:
             cache[factor] = px if factor == 1 else cv2.resize(p, size, interpolation=cv2.INTER_AREA)
         return cache[factor]
 
-    def evaluate(self, settings: Settings):
+    def evaluate(self, settings: Settings, coder=None):
         """``(coded, pixels, Numbers)`` at ``settings``: :meth:`reconstruct` and the
-        read-outs, with the entropy coder running beside the synthesis and SSIM (which
-        spend most of their time in numpy and OpenCV, outside the GIL)."""
+        read-outs. The entropy coder runs beside the synthesis and SSIM: in ``coder`` (a
+        :class:`workbench.coderproc.CoderProcess`) when given and the codec allows, else in
+        a thread (where it competes for the GIL)."""
         import dataclasses
         from concurrent.futures import ThreadPoolExecutor
 
@@ -462,7 +463,10 @@ class ImagePreview:
             raise InputError("settings changed the transform; make a new preview")
         coded = self.codec.quantise(dataclasses.replace(self.analysis, settings=settings), settings.step)
         with ThreadPoolExecutor(max_workers=1) as threads:
-            size = threads.submit(lambda: len(self.codec.serialise(coded)))
+            if coder is not None and hasattr(self.codec, "size_task"):
+                size = coder.submit(*self.codec.size_task(coded))
+            else:
+                size = threads.submit(lambda: len(self.codec.serialise(coded)))
             px = planes_to_pixels(coded.planes, self.img.pixels.shape[:2], settings.chroma, self.img.bits)
             n = self._measure(coded, px, size.result)
         return coded, px, n

@@ -78,6 +78,23 @@ def synthesise(q, synthesis, step, means, shapes, block):
     return out
 
 
+def payload(step, kept, inline, means, ints, bits, q) -> bytes:
+    """The image payload (layout in the module docstring) of grids ``q`` (rows, cols, K)."""
+    parts = [_HEAD.pack(step, kept, int(inline)), struct.pack(f"<{len(means)}h", *means)]
+    if inline:
+        vec = coefcode.encode_grids([ints.reshape(1, kept, -1)], [2])
+        parts += [bits.astype(np.uint8).tobytes(), struct.pack("<I", len(vec)), vec]
+    parts.append(coefcode.encode_grids(q, [0] + [1] * (len(q) - 1)))
+    return b"".join(parts)
+
+
+def payload_size(step, kept, inline, means, arrays) -> int:
+    """``len(payload(...))`` from :meth:`KLTCodec.size_task`'s arrays: the basis integers
+    and precisions (inline only), then the grids component-major, (K, rows, cols)."""
+    ints, bits, grids = (arrays[0], arrays[1], arrays[2:]) if inline else (None, None, arrays)
+    return len(payload(step, kept, inline, means, ints, bits, [np.moveaxis(g, 0, -1) for g in grids]))
+
+
 def deadzone_quantise(c: np.ndarray, step: float, offset: float) -> np.ndarray:
     """``sign(c) * floor(|c| / step + offset)``; offset 0.5 is rounding.
 
@@ -157,13 +174,14 @@ class KLTCodec:
 
     def serialise(self, c: Coded) -> bytes:
         a = c.analysis
-        parts = [_HEAD.pack(c.step, c.kept, int(a.inline)), struct.pack(f"<{len(a.means)}h", *a.means)]
-        if a.inline:
-            vec = coefcode.encode_grids([c.ints.reshape(1, c.kept, -1)], [2])
-            parts += [c.bits.astype(np.uint8).tobytes(), struct.pack("<I", len(vec)), vec]
-        kinds = [0] + [1] * (len(c.q) - 1)
-        parts.append(coefcode.encode_grids(c.q, kinds))
-        return b"".join(parts)
+        return payload(c.step, c.kept, a.inline, a.means, c.ints, c.bits, c.q)
+
+    def size_task(self, c: Coded):
+        """``(function, scalars, arrays)`` such that ``function(*scalars, arrays)`` is
+        ``len(self.serialise(c))``, from plain arrays only (to run in another process)."""
+        a = c.analysis
+        extra = [] if c.ints is None else [c.ints, c.bits]
+        return payload_size, (c.step, c.kept, a.inline, tuple(a.means)), extra + [np.moveaxis(g, -1, 0) for g in c.q]
 
     # ---------------------------------------------------------------- decoding
     def decode(self, payload: bytes, shapes, settings, shared=None) -> list[np.ndarray]:

@@ -13,6 +13,7 @@ from PySide6.QtWidgets import (QFileDialog, QHBoxLayout, QLabel, QListWidget, QL
                                QMessageBox, QProgressBar, QPushButton, QSplitter, QToolBar, QVBoxLayout, QWidget)
 
 from .. import __version__, bundle, metrics, pipeline
+from ..errors import Cancelled
 from ..imagefiles import SourceImage, list_inputs, read_many, write_atomic
 from ..settings import Settings
 from . import imaging
@@ -95,9 +96,11 @@ class MainWindow(QMainWindow):
         self.target_lane.result.connect(self._on_target)
         for lane in (self.fit_lane, self.preview_lane, self.target_lane):
             lane.error.connect(self._on_lane_error)
-        self._after_sketch = None  # the exact preview waiting for the sketch to be shown
         # Reading a folder and loading a model run off the GUI thread too.
         self.loading = False
+        self._exact_tag = None  # (image name, settings) of the exact view on screen
+        self._coder = None  # helper process for the read-outs' entropy coding, started on first use
+        self._after_sketch = None  # the exact preview waiting for the sketch to be shown
         self.folder_lane, self.model_lane = Lane(), Lane()
         self.folder_lane.result.connect(self._on_folder)
         self.folder_lane.error.connect(self._on_folder_error)
@@ -224,6 +227,8 @@ class MainWindow(QMainWindow):
             lane.invalidate()
         self._sketch_pool.waitForDone(30000)
         QThreadPool.globalInstance().waitForDone(30000)  # let running work end before its receivers go
+        if self._coder is not None:
+            self._coder.close()
         super().closeEvent(event)
 
     # ------------------------------------------------------------------ opening
@@ -349,8 +354,10 @@ class MainWindow(QMainWindow):
         look = self._diff_look()
         exact = (lambda: self._reconstruct(prev, s, look)), (img.name, s)
         view = self._sketch_view(prev)
+        self.render_lane.invalidate()
         if view is not None:
-            # First a reduced view of what is on screen (tens of ms), then the exact image.
+            # First a reduced view of what is on screen (tens of ms), then the exact image
+            # and its read-outs (run side by side they would slow the sketch down).
             self._after_sketch = exact
             self.sketch_lane.submit(lambda: self._sketch(prev, s, *view, look), tag=(img.name, s))
         else:
@@ -381,7 +388,7 @@ class MainWindow(QMainWindow):
 
     def _on_sketch(self, tag, value):
         prev, s, sk, rec, diff = value
-        if prev.img is self.current:
+        if prev.img is self.current and tag != self._exact_tag:  # not once the exact view is up
             self.views.views[1].set_sketch(rec, sk.x0, sk.y0, sk.factor)
             self.views.views[2].set_sketch(diff, sk.x0, sk.y0, sk.factor)
             if self._shown is not None and self._shown[0] is prev.img.pixels:
@@ -426,16 +433,23 @@ class MainWindow(QMainWindow):
         return (self.panel.diff_mode.currentData(), float(self.panel.gain.value()), self.panel.worst.isChecked())
 
     @staticmethod
-    def _render(img, rec, look):
-        """Everything the views need, computed off the GUI thread (QImage is thread-safe)."""
+    def _render(img, rec, look, stale=lambda: False):
+        """Everything the views need, computed off the GUI thread (QImage is thread-safe);
+        gives up between steps once ``stale()`` (the slider has moved on)."""
         signed, gain, worst = look
-        marks = []
+
+        def check():
+            if stale():
+                raise Cancelled("a newer view was asked for")
+
+        out = {"rec": imaging.to_qimage(imaging.display_rgb(rec)), "look": look, "marks": []}
+        check()
+        out["diff"] = imaging.to_qimage(imaging.difference(img.pixels, rec, img.peak, gain, signed))
         if worst and min(img.pixels.shape[:2]) >= 32:
+            check()
             tiles = metrics.tile_psnr(img.pixels, rec, tile=32, data_range=img.peak)
-            marks = [(x, y, 32, 32) for x, y, p in tiles.worst(5) if np.isfinite(p)]
-        return {"rec": imaging.to_qimage(imaging.display_rgb(rec)),
-                "diff": imaging.to_qimage(imaging.difference(img.pixels, rec, img.peak, gain, signed)),
-                "marks": marks, "look": look}
+            out["marks"] = [(x, y, 32, 32) for x, y, p in tiles.worst(5) if np.isfinite(p)]
+        return out
 
     def _reconstruct(self, prev, s, look):
         """The exact reconstruction, with its read-outs unless they are cached already."""
@@ -443,8 +457,15 @@ class MainWindow(QMainWindow):
         if key in self._numbers:
             coded, px = prev.reconstruct(s)
             return prev, s, px, look, None
-        coded, px, n = prev.evaluate(s)
+        coded, px, n = prev.evaluate(s, self._coder_process())
         return prev, s, px, look, n
+
+    def _coder_process(self):
+        if self._coder is None:
+            from ..coderproc import CoderProcess
+
+            self._coder = CoderProcess()
+        return self._coder
 
     def _on_preview(self, tag, value):
         # The sketch already shows the reconstruction, so its read-outs (entropy coding and
@@ -458,11 +479,12 @@ class MainWindow(QMainWindow):
         key = (img.name, s.cache_key())
         if key in self._numbers and n is None:
             self._show_numbers(img, self._numbers[key])
-        self.render_lane.submit(lambda: (img, px, self._render(img, px, look)), tag=tag)
+        self.render_lane.submit(lambda stale: (img, px, self._render(img, px, look, stale)), tag=tag, cancellable=True)
 
-    def _on_rendered(self, _tag, value):
+    def _on_rendered(self, tag, value):
         img, px, rendered = value
         if img is self.current:
+            self._exact_tag = tag
             self._display(img, px, rendered)
 
     def _submit_target(self, img, s):

@@ -119,10 +119,17 @@ class Lane(QObject):
         self._pending = None
         self._tags = {}
 
-    def submit(self, fn, tag=None) -> int:
-        """Queue ``fn()``; replaces any request still waiting. Returns the request id."""
+    def submit(self, fn, tag=None, *, cancellable: bool = False) -> int:
+        """Queue ``fn()``; replaces any request still waiting. Returns the request id.
+
+        With ``cancellable``, ``fn`` is called as ``fn(stale)``: ``stale()`` becomes true once
+        a newer request is made, and ``fn`` may then raise :class:`Cancelled` to stop early.
+        """
         self._latest += 1
         self._tags[self._latest] = tag
+        if cancellable:
+            gen_id, inner = self._latest, fn
+            fn = (lambda: inner(lambda: self._latest != gen_id))
         self._pending = (self._latest, fn)
         if not self._running:
             self._start_pending()
