@@ -84,3 +84,16 @@ def test_a_job_in_a_child_process_stops_when_cancelled(camera):
         messages.append(conn.recv())
     proc.join(30)
     assert messages[-1][:2] == ("failed", "cancelled")
+
+
+def test_the_helper_process_counts_the_same_bytes_as_the_coder(preview, camera):
+    from workbench.coderproc import CoderProcess
+
+    coder = CoderProcess()
+    try:
+        for p in (preview, pipeline.ImagePreview(SourceImage("camera", camera), Settings(components=30))):
+            coded, px, n = p.evaluate(p.settings, coder)
+            assert n.bytes == len(pipeline.encode([p.img], p.settings).data)
+            assert coder.submit(*p.codec.size_task(coded)).result() == len(p.codec.serialise(coded))
+    finally:
+        coder.close()

@@ -65,6 +65,7 @@ FAMILIES = (("dc", N_DC_CLASSES), ("ext", N_EXT_CLASSES), ("low", N_GROUPS * N_A
 # starting point near that saves each fresh context from learning it symbol by symbol.
 PRIOR = np.array([64, 32, 16, 8, 4, 2])
 _FAMILY = constriction.stream.model.Categorical(perfect=False)
+_AC_CLASS = np.searchsorted(AC_EDGES, np.arange(AC_EDGES[-1] + 1), side="right").astype(np.int32)
 
 
 def _tokens(mag: np.ndarray):
@@ -221,9 +222,12 @@ def _low_context(mag: np.ndarray, ext: np.ndarray, r0: int, r1: int, k: int, act
         act += mag[k - 1, r0 - 1 : r1 - 1]
     else:
         act[1:] += prev[:-1]
-    cls = np.searchsorted(AC_EDGES, act[active], side="right")
-    last = ext[r0:r1][active] == k
-    return (int(_k_group(k)) * N_AC_CLASSES + cls) * 2 + last
+    # class by table lookup (activities past the last edge share the top class)
+    ctx = _AC_CLASS[np.minimum(act, _AC_CLASS.size - 1)]
+    ctx += int(_k_group(k)) * N_AC_CLASSES
+    ctx *= 2
+    ctx += ext[r0:r1] == k
+    return ctx[active]
 
 
 def _tail_positions(ext: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -333,7 +337,7 @@ class _Reader:
 
     def _values(self, tok: np.ndarray, n_signed: int) -> np.ndarray:
         esc = tok >= DIRECT
-        mag = np.where(esc, 0, tok)
+        mag = tok  # escaped entries are overwritten below
         nz = tok[:n_signed] > 0
         signs = self._take(int(nz.sum()))  # signs precede mantissas
         if esc.any():
@@ -344,8 +348,8 @@ class _Reader:
             starts = np.cumsum(nb) - nb
             mant = np.add.reduceat(bits * weights, starts)
             mag[esc] = (np.int64(1) << nb) + mant
-        head = mag[:n_signed]
-        head[nz] *= 1 - 2 * signs.astype(np.int64)
+        neg = np.flatnonzero(nz)[signs == 1]
+        mag[neg] = -mag[neg]
         return mag
 
 
