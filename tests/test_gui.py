@@ -147,7 +147,7 @@ def test_training_from_the_window_makes_the_model_available(qtbot, window, folde
     _open(qtbot, window, folder)
     with qtbot.waitSignal(window.jobs.finished, timeout=120000):
         training.start_training(window, tmp_path / "m.wmodel", minutes=1, lam=0.01, latent=4, max_steps=3)
-    qtbot.waitUntil(lambda: window.conv_model is not None, timeout=60000)  # loaded off the GUI thread
-    assert window.conv_model[0].channels == 4
+    qtbot.waitUntil(lambda: window.conv_model_file is not None, timeout=60000)  # read off the GUI thread
+    assert window.conv_model_file == tmp_path / "m.wmodel" and window.panel.count.maximum() == 4
     assert "m)" in window.panel.method.itemText(window.panel.method.findData("conv"))
     assert window.last_training["steps"] == 3

@@ -33,10 +33,6 @@ def main(argv=None) -> int:
         w = MainWindow(QSettings(str(Path(tmp) / "s.ini"), QSettings.Format.IniFormat))
         w.resize(1560, 900)
         w.show()
-        w.open_folder(folder)
-        names = [i.name for i in w.images]
-        w.select(next((i for i, n in enumerate(names) if n.startswith("drone")), 0))
-        w.panel.count.setValue(24)
 
         def wait(cond, seconds=60):
             t = time.time()
@@ -44,7 +40,18 @@ def main(argv=None) -> int:
                 app.processEvents()
                 time.sleep(0.02)
 
-        wait(lambda: w.last_numbers is not None and w.last_numbers.kept <= 24)
+        w.open_folder(folder)
+        wait(lambda: not w.loading)
+        names = [i.name for i in w.images]
+        w.select(next((i for i, n in enumerate(names) if n.startswith("drone")), 0))
+        w.panel.count.setValue(24)
+
+        def settled():
+            key = (w.current.name, w.panel.settings().cache_key())
+            return w.last_numbers is not None and w.last_numbers is w._numbers.get(key) \
+                and w._exact_tag == (w.current.name, w.panel.settings())
+
+        wait(settled)
         w.views.fit()
         w.views._zoom(2.0, None)
         for _ in range(20):

@@ -62,15 +62,14 @@ def start_training(window, path: Path, *, minutes: float, lam: float, latent: in
     return window._start_job(train_job, ("train", path), "training the conv encoder…", child_args=(images, path, cfg))
 
 
-def on_trained(window, path, result, loaded) -> None:
-    """Make the freshly trained model (``loaded``: (model, sha256), read off the GUI
-    thread) the conv encoder of this window."""
-    model, sha = loaded
-    window.conv_model = (model, sha)
+def on_trained(window, path, result, description) -> None:
+    """Make the freshly trained model the conv encoder of this window (``description``:
+    its parsed file, read off the GUI thread; the model is loaded when first used)."""
+    window.conv_model, window.conv_model_file = None, Path(path)
     window._previews.clear()
     i = window.panel.method.findData("conv")
     window.panel.method.setItemText(i, f"Conv encoder ({Path(path).stem})")
-    window.panel.set_count_range(model.channels)
+    window.panel.set_count_range(description.arch["latent"])
     window.status_text.setText(f"Trained {path} ({result['steps']} steps); the conv encoder now uses it.")
     window.last_training = result
     if window.isVisible():

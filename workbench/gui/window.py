@@ -78,7 +78,8 @@ class MainWindow(QMainWindow):
         self._shown = None  # (orig, rec) arrays on screen
         self.last_numbers = None
         self.last_error = ""
-        self.conv_model = None  # (model, sha256) once trained here; else the shipped one
+        self.conv_model = None  # (model, sha256), loaded on first use by a worker
+        self.conv_model_file = None  # a model trained here; None for the shipped one
         self.last_training = None
 
         self.fit_lane, self.preview_lane, self.target_lane = Lane(), Lane(), Lane()
@@ -315,10 +316,10 @@ class MainWindow(QMainWindow):
     def _shared_for(self, s: Settings):
         """Shared side for the current settings, or a marker that it must be fitted first."""
         if s.method == "conv":
-            if self.conv_model is None:
+            if self.conv_model is None:  # loaded here, on a worker thread (torch comes with it)
                 from ..codecs import get
 
-                self.conv_model = get("conv").default_model()
+                self.conv_model = get("conv").load_model(self.conv_model_file)
             return self.conv_model
         if s.basis_scope != "folder":
             return None, None
@@ -710,10 +711,12 @@ class MainWindow(QMainWindow):
         training.ask_and_train(self)
 
     def _on_trained(self, path, result):
-        from ..codecs import get
+        from ..modelfile import read_model
 
-        self.status_text.setText(f"Trained {path}; loading it…")
-        self.model_lane.submit(lambda: (path, result, get("conv").load_model(path)), tag=path)
+        # Only its description is read now (no torch): the model itself is loaded by the
+        # first job that needs it.
+        self.status_text.setText(f"Trained {path}; reading it…")
+        self.model_lane.submit(lambda: (path, result, read_model(path)), tag=path)
 
     def _on_model_loaded(self, path, result, loaded):
         from . import training
