@@ -9,18 +9,79 @@ signals and a cancel flag checked at every yield.
 
 from __future__ import annotations
 
+import queue
 import traceback
 
-from PySide6.QtCore import QObject, QRunnable, QThreadPool, Signal
+from PySide6.QtCore import QObject, QRunnable, QThreadPool, QTimer, Signal
 
 from ..errors import Cancelled, WorkbenchError
 from ..jobs import run
 
+POLL_MS = 5
 
-class _Signals(QObject):
-    done = Signal(int, object)
-    failed = Signal(int, str)
-    progress = Signal(float, str)
+
+class _Mailbox(QObject):
+    """Where worker threads leave results for the GUI thread, which collects them every
+    POLL_MS. Worker threads never emit Qt signals: emitting from pool threads through
+    PySide6 has been fragile (with 6.12.0 a long session aborted on a reference-count
+    error); a queue read by a GUI-thread timer is plain Python and needs no such care."""
+
+    def __init__(self):
+        super().__init__()
+        self._queue = queue.SimpleQueue()
+        self._timer = QTimer(self)
+        self._timer.setInterval(POLL_MS)
+        self._timer.timeout.connect(self._drain)
+        self._timer.start()
+
+    def post(self, fn, args) -> None:  # any thread
+        self._queue.put((fn, args))
+
+    def _drain(self):
+        while True:
+            try:
+                fn, args = self._queue.get_nowait()
+            except queue.Empty:
+                return
+            try:
+                fn(*args)
+            except RuntimeError:
+                pass  # its receiver was closed while the work ran: nobody is left to tell
+            except Exception:  # a bug in a receiver: report it, keep delivering
+                traceback.print_exc()
+
+
+_MAILBOX: _Mailbox | None = None
+
+
+def _mailbox() -> _Mailbox:
+    global _MAILBOX
+    if _MAILBOX is None:  # made by the first Lane or JobRunner, on the GUI thread
+        _MAILBOX = _Mailbox()
+    return _MAILBOX
+
+
+class _Channel:
+    """A signal-like hand-over: ``emit`` from any thread, receivers called on the GUI thread."""
+
+    def __init__(self):
+        self._receivers = []
+        self._box = _mailbox()
+
+    def connect(self, fn) -> None:
+        self._receivers.append(fn)
+
+    def emit(self, *args) -> None:
+        self._box.post(self._deliver, args)
+
+    def _deliver(self, *args):
+        for fn in self._receivers:
+            fn(*args)
+
+
+class _Signals:
+    def __init__(self):
+        self.done, self.failed, self.progress = _Channel(), _Channel(), _Channel()
 
 
 class _Task(QRunnable):
@@ -44,11 +105,8 @@ class _Task(QRunnable):
             traceback.print_exc()
             self._emit(self.signals.failed, f"internal error: {type(exc).__name__}: {exc}")
 
-    def _emit(self, signal, value):
-        try:
-            signal.emit(self.gen_id, value)
-        except RuntimeError:
-            pass  # the window closed while this ran: nobody is left to tell
+    def _emit(self, channel, value):
+        channel.emit(self.gen_id, value)
 
 
 class _ChildTask(QRunnable):
@@ -183,7 +241,7 @@ class JobRunner(QObject):
     def __init__(self, pool: QThreadPool | None = None, parent=None):
         super().__init__(parent)
         _attach(self, pool)
-        self._signals.progress.connect(self.progress)
+        self._signals.progress.connect(self.progress.emit)
         self._cancel = False
         self._tag = None
         self._id = 0
