@@ -234,6 +234,9 @@ def command(register):
 
 def main(argv=None) -> int:
     from . import cli_extra  # noqa: F401  (registers sheet and train)
+    from .runtime import tune_allocator
+
+    tune_allocator()
 
     parser = build_parser()
     a = parser.parse_args(argv)

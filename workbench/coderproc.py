@@ -22,6 +22,9 @@ def _run(fn, scalars, block: str, specs) -> int:
     """Child side: views into the shared block, then ``fn(*scalars, arrays)``."""
     shm = _attached.get(block)
     if shm is None:
+        from .runtime import tune_allocator
+
+        tune_allocator()
         for old in _attached.values():
             old.close()
         _attached.clear()

@@ -176,7 +176,10 @@ def _curves_in_worker(name, pixels, settings_dict, names, shared_bytes, shared_r
 
     from . import codecs
 
+    from .runtime import tune_allocator
+
     cv2.setNumThreads(1)  # one image per process already fills the cores
+    tune_allocator()
     settings = Settings.from_dict(settings_dict)
     shared = None if shared_bytes is None else codecs.get(settings.method).shared_from_bytes(shared_bytes)
     return _curves(SourceImage(name, pixels), settings, names, shared, shared_ref)

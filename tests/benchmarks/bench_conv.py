@@ -107,6 +107,10 @@ def section_speed():
 
 
 def main():
+    # as the command line and the app do for themselves (workbench.runtime)
+    from workbench.runtime import tune_allocator
+
+    tune_allocator()
     ap = argparse.ArgumentParser()
     ap.add_argument("--minutes", type=float, default=10.0)
     ap.add_argument("--skip-training", action="store_true")

@@ -38,6 +38,10 @@ def launch_time() -> float:
 
 
 def main():
+    # as the command line and the app do for themselves (workbench.runtime)
+    from workbench.runtime import tune_allocator
+
+    tune_allocator()
     import numpy as np
     from PIL import Image
     from PySide6.QtCore import QElapsedTimer, QSettings, QTimer

@@ -148,6 +148,10 @@ def section_memory():
 
 
 def main():
+    # as the command line and the app do for themselves (workbench.runtime)
+    from workbench.runtime import tune_allocator
+
+    tune_allocator()
     ap = argparse.ArgumentParser()
     ap.add_argument("--quick", action="store_true", help="fewer repeats")
     a = ap.parse_args()

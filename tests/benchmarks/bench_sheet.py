@@ -26,6 +26,10 @@ from workbench.sheet import sheet_job  # noqa: E402
 
 
 def main():
+    # as the command line and the app do for themselves (workbench.runtime)
+    from workbench.runtime import tune_allocator
+
+    tune_allocator()
     rng = np.random.default_rng(5)
     images = []
     for i in range(20):
