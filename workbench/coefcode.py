@@ -24,7 +24,8 @@ Other coefficients (k >= 1, up to the extent)
     upper neighbours' previous coefficient) x whether k is the patch's last coefficient.
     The rest of a band goes in one call, with context = group of k x the patch's own
     activity at components LOW-1 and LOW x the distance from k to the extent (zero means the
-    coefficient is the last one and known to be non-zero).
+    coefficient is the last one and known to be non-zero). The bands advance as a wavefront
+    (band i's component k beside band i+1's component k-1), which changes no context.
 
 Every count is an integer and every model is built from those integers, so a decoder on
 any machine rebuilds bit for bit the models the encoder used.
@@ -435,25 +436,37 @@ def _traverse(grids: list[_Grid], models: _Models, io) -> None:
     if io.decoding:
         for g in grids:
             g.q[0] = _dc_from_residual(g.res)
-    for i in range(max(len(g.bands) for g in grids)):
-        part = [(g, g.bands[i]) for g in grids if i < len(g.bands)]
-        top = max(min(LOW, int(g.ext[r0:r1].max(initial=0))) for g, (r0, r1) in part)
-        for k in range(1, top + 1):
-            sel = [(g, r0, r1, g.ext[r0:r1] >= k) for g, (r0, r1) in part if k < g.K]
-            ctx = [g.off["low"] + _low_context(g.mag, g.ext, r0, r1, k, a) for g, r0, r1, a in sel]
-            v = io.code(models, np.concatenate(ctx), lambda: np.concatenate([g.q[k, r0:r1][a] for g, r0, r1, a in sel]))
-            if io.decoding:
-                for (g, r0, r1, a), vk in zip(sel, _split(v, [c.size for c in ctx])):
-                    g.q[k, r0:r1][a] = vk
-                    if k <= LOW:
-                        g.mag[k, r0:r1][a] = np.abs(vk)
-        sel = [(g.q[:, r0:r1].reshape(g.K, -1),) + _tail_positions(g.ext[r0:r1]) for g, (r0, r1) in part]
-        ctx = [g.off["tail"] + _tail_context(g.mag[LOW, r0:r1] + g.mag[LOW - 1, r0:r1], g.ext[r0:r1], idx, k)
-               for (g, (r0, r1)), (_, idx, k) in zip(part, sel)]
-        v = io.code(models, np.concatenate(ctx), lambda: np.concatenate([qb[k, idx] for qb, idx, k in sel]))
+    # Component k of band i needs component k-1 of its own patches and of the row above
+    # (the last row of band i-1), nothing more: so the bands run as a wavefront, call t
+    # carrying component t-i+1 of every band i (and the rest of band i once its first LOW
+    # components are known). The contexts are those of a band-by-band order, in far fewer
+    # coder calls.
+    for t in range(max(len(g.bands) for g in grids) + LOW):
+        low, tail = [], []
+        for g in grids:
+            for i, (r0, r1) in enumerate(g.bands):
+                k = t - i + 1
+                if 1 <= k <= min(LOW, g.K - 1):
+                    a = g.ext[r0:r1] >= k
+                    if a.any():
+                        low.append((g, r0, r1, k, a))
+                elif k == LOW + 1 and g.K > LOW + 1:
+                    tail.append((g, r0, r1) + _tail_positions(g.ext[r0:r1]))
+        if not low and not tail:
+            continue
+        ctx = [g.off["low"] + _low_context(g.mag, g.ext, r0, r1, k, a) for g, r0, r1, k, a in low]
+        ctx += [g.off["tail"] + _tail_context(g.mag[LOW, r0:r1] + g.mag[LOW - 1, r0:r1], g.ext[r0:r1], idx, kk)
+                for g, r0, r1, idx, kk in tail]
+        v = io.code(models, np.concatenate(ctx), lambda: np.concatenate(
+            [g.q[k, r0:r1][a] for g, r0, r1, k, a in low]
+            + [g.q[:, r0:r1].reshape(g.K, -1)[kk, idx] for g, r0, r1, idx, kk in tail]))
         if io.decoding:
-            for (qb, idx, k), vt in zip(sel, _split(v, [c.size for c in ctx])):
-                qb[k, idx] = vt
+            parts = _split(v, [c.size for c in ctx])
+            for (g, r0, r1, k, a), vk in zip(low, parts):
+                g.q[k, r0:r1][a] = vk
+                g.mag[k, r0:r1][a] = np.abs(vk)
+            for (g, r0, r1, idx, kk), vt in zip(tail, parts[len(low):]):
+                g.q[:, r0:r1].reshape(g.K, -1)[kk, idx] = vt
 
 
 def _check_kinds(shapes, kinds):

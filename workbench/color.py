@@ -106,5 +106,6 @@ def from_planes(planes: list[np.ndarray], shape: tuple[int, int], chroma: str) -
         up = cv2.resize(add, (2 * wc, 2 * hc), dst=np.empty((2 * hc, 2 * wc, 3), np.float32),
                         interpolation=cv2.INTER_LINEAR)
         add = up[: shape[0], : shape[1]]
-    add += y[:, :, None]
+    for c in range(3):  # a channel at a time: numpy's broadcast over a last axis of 3 is slow
+        add[..., c] += y
     return add
