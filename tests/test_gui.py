@@ -151,3 +151,25 @@ def test_training_from_the_window_makes_the_model_available(qtbot, window, folde
     assert window.conv_model_file == tmp_path / "m.wmodel" and window.panel.count.maximum() == 4
     assert "m)" in window.panel.method.itemText(window.panel.method.findData("conv"))
     assert window.last_training["steps"] == 3
+
+
+def test_on_a_large_image_a_sketch_shows_first_and_the_exact_view_replaces_it(qtbot, window, tmp_path):
+    # scikit-image's 'astronaut' enlarged past the sketch threshold (one megapixel)
+    from skimage import data
+    from skimage.transform import resize
+
+    big = tmp_path / "big"
+    big.mkdir()
+    img = (resize(data.astronaut(), (1024, 1024), anti_aliasing=True) * 255).round().astype(np.uint8)
+    Image.fromarray(img).save(big / "a.png")
+    _open(qtbot, window, big)
+    qtbot.waitUntil(lambda: window._exact_tag is not None, timeout=30000)
+    rec = window.views.views[1]
+    shown = rec.shown
+    window.panel.count.setValue(5)
+    qtbot.waitUntil(lambda: not rec.overlay.pixmap().isNull(), timeout=30000)  # the sketch
+    assert rec.shown > shown
+    qtbot.waitUntil(lambda: window._exact_tag == ("a.png", window.panel.settings()), timeout=30000)
+    assert rec.overlay.pixmap().isNull()  # cleared once the exact image is up
+    core = pipeline.ImagePreview(window.current, window.panel.settings()).reconstruct(window.panel.settings())[1]
+    assert np.array_equal(window._shown[1], core)
