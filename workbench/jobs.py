@@ -50,6 +50,12 @@ def run(job: Job, on_progress: Callable[[Progress], None] | None = None,
         raise
 
 
+def error_text(exc: BaseException) -> str:
+    """The one line a failed job reports: the error's first line, or its kind."""
+    text = str(exc)
+    return text.splitlines()[0] if text else type(exc).__name__
+
+
 def run_in_child(conn, cancel, factory, args) -> None:
     """Body of a child process that runs ``factory(*args)``, a job, for :func:`start_child`.
 
@@ -65,7 +71,7 @@ def run_in_child(conn, cancel, factory, args) -> None:
     except Cancelled:
         conn.send(("failed", "cancelled", "cancelled"))
     except (WorkbenchError, OSError, MemoryError) as exc:
-        conn.send(("failed", "error", str(exc).splitlines()[0] if str(exc) else type(exc).__name__))
+        conn.send(("failed", "error", error_text(exc)))
     except Exception as exc:  # a bug: report it to the parent rather than die silently
         conn.send(("failed", "error", f"internal error: {type(exc).__name__}: {exc}"))
     finally:

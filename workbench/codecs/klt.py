@@ -78,6 +78,21 @@ def synthesise(q, synthesis, step, means, shapes, block):
     return out
 
 
+def _matrices(a: Analysis, kept: int, step: float):
+    """``(ints, bits, synthesis, analysis)`` for ``kept`` components at ``step``: the stored
+    basis integers and precisions (inline basis only, else None), the decoder's synthesis
+    vectors (kept x n) and the float32 analysis matrix already divided by the step (n x kept)."""
+    if a.inline:
+        ints, bits = klt.quantise_vectors(a.basis, kept, step)
+        synthesis = klt.dequantise_vectors(ints, bits)
+        analysis_m = np.linalg.pinv(synthesis)
+    else:
+        ints = bits = None
+        synthesis = a.basis.vectors[:, :kept].T
+        analysis_m = synthesis.T
+    return ints, bits, synthesis, (analysis_m / step).astype(np.float32)
+
+
 def payload(step, kept, inline, means, ints, bits, q) -> bytes:
     """The image payload (layout in the module docstring) of grids ``q`` (rows, cols, K)."""
     parts = [_HEAD.pack(step, kept, int(inline)), struct.pack(f"<{len(means)}h", *means)]
@@ -151,16 +166,8 @@ class KLTCodec:
     def quantise(self, a: Analysis, step: float) -> Coded:
         """Quantise at ``step`` and reconstruct exactly as the decoder will."""
         step = float(np.float32(step))
-        k = a.settings.kept
-        if a.inline:
-            ints, bits = klt.quantise_vectors(a.basis, k, step)
-            synthesis = klt.dequantise_vectors(ints, bits)
-            analysis_m = np.linalg.pinv(synthesis)
-        else:
-            ints = bits = None
-            synthesis = a.basis.vectors[:, :k].T
-            analysis_m = synthesis.T
-        analysis_m = (analysis_m / step).astype(np.float32).T
+        ints, bits, synthesis, analysis_m = _matrices(a, a.settings.kept, step)
+        analysis_m = analysis_m.T
         # Component-major (K, rows, cols) underneath, viewed as (rows, cols, K): the entropy
         # coder walks one component at a time.
         q = [np.moveaxis(_deadzone_in_place(analysis_m @ p.reshape(-1, p.shape[2]).T, a.settings.deadzone)
@@ -251,13 +258,7 @@ class KLTCodec:
         if a._sketch_step is None or a._sketch_step[0] != (step, kept):
             # The same analysis as quantise() (refitted to the count), so that the sketch
             # differs from the decoder's image only by rounding after the averaging.
-            if a.inline:
-                synthesis = klt.dequantise_vectors(*klt.quantise_vectors(a.basis, kept, step))
-                analysis_m = np.linalg.pinv(synthesis)
-            else:
-                synthesis = a.basis.vectors[:, :kept].T
-                analysis_m = synthesis.T
-            am = (analysis_m / step).astype(np.float32)
+            _, _, synthesis, am = _matrices(a, kept, step)
             a._sketch_step = ((step, kept), synthesis, [
                 _deadzone_in_place(p.reshape(-1, p.shape[2]) @ am, a.settings.deadzone).astype(np.float32)
                 * np.float32(step) for p in a.patches])

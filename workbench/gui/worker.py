@@ -15,7 +15,7 @@ import traceback
 from PySide6.QtCore import QObject, QRunnable, QThreadPool, QTimer, Signal
 
 from ..errors import Cancelled, WorkbenchError
-from ..jobs import run
+from ..jobs import Progress, error_text, run, start_child
 
 POLL_MS = 5
 
@@ -100,7 +100,7 @@ class _Task(QRunnable):
         except Cancelled:
             self._emit(self.signals.failed, "cancelled")
         except (WorkbenchError, OSError, MemoryError) as exc:
-            self._emit(self.signals.failed, str(exc).splitlines()[0] if str(exc) else type(exc).__name__)
+            self._emit(self.signals.failed, error_text(exc))
         except Exception as exc:  # a bug: report in the window, never crash the app
             traceback.print_exc()
             self._emit(self.signals.failed, f"internal error: {type(exc).__name__}: {exc}")
@@ -109,49 +109,36 @@ class _Task(QRunnable):
         channel.emit(self.gen_id, value)
 
 
-class _ChildTask(QRunnable):
-    """Waits on a job running in a child process (:func:`workbench.jobs.start_child`) and
-    relays its messages; the waiting releases the GIL, so the GUI keeps it."""
-
-    def __init__(self, gen_id, factory, args, signals, should_stop):
-        super().__init__()
-        self.gen_id, self.factory, self.args = gen_id, factory, args
-        self.signals, self.should_stop = signals, should_stop
-        self.setAutoDelete(True)
-
-    def run(self):
-        from ..jobs import start_child
-
-        try:
-            proc, conn, cancel = start_child(self.factory, self.args)
-        except OSError as exc:
-            self._emit(self.signals.failed, f"could not start the job: {exc}")
-            return
-        msg = None
-        try:
-            while True:
-                if self.should_stop():
-                    cancel.set()
-                if not conn.poll(0.1):
-                    if not proc.is_alive() and not conn.poll():
-                        msg = ("failed", "error", f"the job's process ended unexpectedly (exit code {proc.exitcode})")
-                        break
-                    continue
-                msg = conn.recv()
-                if msg[0] == "progress":
-                    self.signals.progress.emit(msg[1], msg[2])
-                    continue
-                break
-        except (EOFError, OSError):
-            msg = ("failed", "error", f"the job's process ended unexpectedly (exit code {proc.exitcode})")
-        finally:
-            proc.join(30)
-        if msg[0] == "done":
-            self._emit(self.signals.done, msg[1])
-        else:
-            self._emit(self.signals.failed, msg[2])
-
-    _emit = _Task._emit
+def _wait_for_child(factory, args, should_stop, on_progress):
+    """Run ``factory(*args)`` in a child process (:func:`workbench.jobs.start_child`) and
+    wait for it, relaying progress and Cancel; returns its result or raises as a job would.
+    The waiting releases the GIL, so the GUI keeps it."""
+    try:
+        proc, conn, cancel = start_child(factory, args)
+    except OSError as exc:
+        raise WorkbenchError(f"could not start the job: {exc}") from None
+    died = "the job's process ended unexpectedly (exit code {})"
+    try:
+        while True:
+            if should_stop():
+                cancel.set()
+            if not conn.poll(0.1):
+                if not proc.is_alive() and not conn.poll():
+                    raise WorkbenchError(died.format(proc.exitcode))
+                continue
+            msg = conn.recv()
+            if msg[0] == "progress":
+                on_progress(Progress(msg[1], 1.0, msg[2]))
+            elif msg[0] == "done":
+                return msg[1]
+            elif msg[1] == "cancelled":
+                raise Cancelled("stopped by request")
+            else:
+                raise WorkbenchError(msg[2])
+    except (EOFError, OSError):
+        raise WorkbenchError(died.format(proc.exitcode)) from None
+    finally:
+        proc.join(30)
 
 
 def _attach(owner, pool) -> None:
@@ -255,19 +242,15 @@ class JobRunner(QObject):
         self._tag = tag
         self._id += 1
         self.active = True
-        sig = self._signals
-        self.pool.start(_Task(self._id, job_factory, sig, should_stop=lambda: self._cancel,
-                              on_progress=lambda p: sig.progress.emit(p.fraction, p.text)))
+        self.pool.start(_Task(self._id, job_factory, self._signals, should_stop=lambda: self._cancel,
+                              on_progress=self._report))
 
     def start_child(self, factory, args, tag=None) -> None:
         """Like :meth:`start` for ``factory(*args)`` (picklable), run in a child process."""
-        if self.active:
-            raise RuntimeError("a job is already running")
-        self._cancel = False
-        self._tag = tag
-        self._id += 1
-        self.active = True
-        self.pool.start(_ChildTask(self._id, factory, args, self._signals, lambda: self._cancel))
+        self.start(lambda: _wait_for_child(factory, args, lambda: self._cancel, self._report), tag)
+
+    def _report(self, p) -> None:  # any thread
+        self._signals.progress.emit(p.fraction, p.text)
 
     def cancel(self) -> None:
         self._cancel = True
