@@ -66,3 +66,27 @@ def test_420_reconstruction_keeps_a_constant_colour():
     img = np.zeros((7, 9, 3), np.uint8) + np.array([200, 30, 90], np.uint8)
     back = color.from_planes(color.to_planes(img, "420", 1.0), (7, 9), "420")
     assert np.abs(back - img).max() < 1e-3
+
+
+def test_integer_pixels_of_444_planes_restore_an_8bit_photo_exactly(chelsea):
+    # scikit-image's bundled "chelsea": T.871 there and back, rounded, is lossless.
+    px = color.to_pixels(color.to_planes(chelsea, "444", 1.0), chelsea.shape[:2], "444", 8)
+    assert px.dtype == np.uint8 and np.array_equal(px, chelsea)
+
+
+def test_integer_pixels_of_444_planes_restore_a_16bit_image_exactly(chelsea):
+    img = chelsea.astype(np.uint16) * 257 + np.arange(chelsea.shape[1], dtype=np.uint16)[None, :, None] % 251
+    px = color.to_pixels(color.to_planes(img, "444", 255 / 65535), img.shape[:2], "444", 16)
+    assert px.dtype == np.uint16 and np.array_equal(px, img)
+
+
+def test_integer_pixels_are_rounded_half_to_even_and_clipped():
+    y = np.array([[-3.0, 0.5, 1.5, 2.5, 254.6, 300.0]], np.float32)
+    assert color.to_pixels([y], y.shape, "444", 8).tolist() == [[0, 0, 2, 2, 255, 255]]
+
+
+def test_integer_pixels_of_420_planes_match_the_float_inverse_rounded(chelsea):
+    odd = chelsea[:299, :451]
+    planes = color.to_planes(odd, "420", 1.0)
+    ref = np.clip(np.rint(color.from_planes(planes, odd.shape[:2], "420")), 0, 255)
+    assert np.abs(color.to_pixels(planes, odd.shape[:2], "420", 8) - ref).max() == 0

@@ -90,22 +90,61 @@ def to_planes(image: np.ndarray, chroma: str, scale: float) -> list[np.ndarray]:
     return [y, np.ascontiguousarray(c[..., 0]), np.ascontiguousarray(c[..., 1])]
 
 
+def _chroma_terms(cb: np.ndarray, cr: np.ndarray, shape: tuple[int, int], chroma: str):
+    """What Cb and Cr add to Y in each of R, G and B, at full resolution: three (H, W) float32.
+
+    The term is linear in the chroma, so with 4:2:0 it is computed at chroma resolution
+    and then interpolated, which equals interpolating the chroma first at a third of the work.
+    One plane at a time: OpenCV and numpy run fastest over contiguous planes.
+    """
+    for c in range(3):
+        wb, wr = float(YCBCR_TO_RGB[c, 1]), float(YCBCR_TO_RGB[c, 2])
+        t = cv2.addWeighted(cb, wb, cr, wr, -CHROMA_OFFSET * (wb + wr))
+        if chroma == "420":
+            hc, wc = t.shape
+            t = cv2.resize(t, (2 * wc, 2 * hc), interpolation=cv2.INTER_LINEAR)[: shape[0], : shape[1]]
+        yield t
+
+
+def _colour_planes(planes):
+    y, cb, cr = (np.asarray(p, dtype=np.float32) for p in planes)
+    return y, cb, cr
+
+
 def from_planes(planes: list[np.ndarray], shape: tuple[int, int], chroma: str) -> np.ndarray:
     """Inverse of :func:`to_planes` up to the 8-bit level scale: (H, W) grey or (H, W, 3) RGB
     float32, unclipped."""
     if len(planes) == 1:
         return np.array(planes[0], dtype=np.float32)
-    y, cb, cr = (np.asarray(p, dtype=np.float32) for p in planes)
-    # R, G, B = Y + (what Cb and Cr add); that part is linear in the chroma, so with 4:2:0
-    # it is computed at chroma resolution and interpolated, which is the same as
-    # interpolating the chroma first and a quarter of the work.
-    c = np.stack([cb, cr], axis=-1)
-    add = cv2.transform(c, _CHROMA_TO_RGB, dst=np.empty(c.shape[:2] + (3,), np.float32))
-    if chroma == "420":
-        hc, wc = add.shape[:2]
-        up = cv2.resize(add, (2 * wc, 2 * hc), dst=np.empty((2 * hc, 2 * wc, 3), np.float32),
-                        interpolation=cv2.INTER_LINEAR)
-        add = up[: shape[0], : shape[1]]
-    for c in range(3):  # a channel at a time: numpy's broadcast over a last axis of 3 is slow
-        add[..., c] += y
-    return add
+    y, cb, cr = _colour_planes(planes)
+    return np.dstack([t + y for t in _chroma_terms(cb, cr, shape, chroma)])
+
+
+def to_pixels(planes: list[np.ndarray], shape: tuple[int, int], chroma: str, bits: int) -> np.ndarray:
+    """Decoded planes (8-bit level units) to integer pixels, rounded half to even and clipped.
+
+    Parameters
+    ----------
+    planes : list of ndarray
+        ``[Y]`` or ``[Y, Cb, Cr]`` as :func:`to_planes` makes them.
+    shape : (int, int)
+        Image height and width.
+    chroma : {"420", "444"}
+    bits : {8, 16}
+
+    Returns
+    -------
+    ndarray
+        (H, W) or (H, W, 3), uint8 or uint16.
+    """
+    if bits not in (8, 16):
+        raise InputError(f"to_pixels needs 8 or 16 bits, got {bits}")
+    # The sum, the scale to the output range, the rounding and the saturation are one
+    # OpenCV pass per plane (saturate_cast rounds half to even).
+    depth, gain = (cv2.CV_16U, 65535 / 255) if bits == 16 else (cv2.CV_8U, 1.0)
+    if len(planes) == 1:
+        y = np.asarray(planes[0], dtype=np.float32)
+        return cv2.addWeighted(y, gain, y, 0.0, 0.0, dtype=depth)
+    y, cb, cr = _colour_planes(planes)
+    return cv2.merge([cv2.addWeighted(t, gain, y, gain, 0.0, dtype=depth) for t in _chroma_terms(cb, cr, shape, chroma)])
+

@@ -38,18 +38,7 @@ def image_planes(img: SourceImage, chroma: str) -> list[np.ndarray]:
 
 def planes_to_pixels(planes, shape, chroma, bits) -> np.ndarray:
     """Decoded planes to integer pixels: colour back to RGB, rounded and clipped."""
-    peak = 65535 if bits == 16 else 255
-    dtype = np.uint16 if bits == 16 else np.uint8
-    c = color.from_planes(planes, shape, chroma)
-    if bits == 16:
-        c *= np.float32(peak / 255.0)
-        np.rint(c, out=c)
-        np.clip(c, 0, peak, out=c)
-        return c.astype(dtype)
-    # OpenCV's conversion rounds half to even and saturates at 255 in one pass; the
-    # absolute value it also takes is harmless once negatives are clipped to zero.
-    np.maximum(c, 0, out=c)
-    return cv2.convertScaleAbs(c, dst=np.empty(c.shape, np.uint8))
+    return color.to_pixels(planes, shape, chroma, bits)
 
 
 def encode_alpha(alpha: np.ndarray) -> bytes:
