@@ -23,7 +23,7 @@ from .errors import BundleError
 from .settings import Settings
 
 MAGIC = b"WKBUNDLE"
-VERSION = 2  # 2: coefficient streams coded in lockstep (coefcode)
+VERSION = 3  # 2: coefficient streams coded in lockstep (coefcode); 3: first pass as a row hierarchy
 MAX_PIXELS = 1 << 27
 _HEX64 = re.compile(r"^[0-9a-f]{64}$")
 

@@ -13,10 +13,10 @@ Symbols
 First coefficient (k = 0) and extent
     the first coefficient is replaced by the residual of the planar predictor ``L + T - TL``
     over the patch grid; the extent of a patch is the index of its last non-zero coefficient
-    (0 when only the first is non-zero), and nothing past it is coded. Both are coded row
-    by row for every COARSE-th row (context from the coarse row above), then the rows
-    halfway between, level by level, in chunks that double, with a context from the coded
-    rows above and below.
+    (0 when only the first is non-zero), and nothing past it is coded. Both are coded for
+    row 0, then for the rows halfway between coded rows, level by level (row P/2; P/4 and
+    3P/4; ... for P the power of two at or above the row count), with a context from the
+    coded rows above and below; a level is one coder call, or calls of CHUNK rows.
 Other coefficients (k >= 1, up to the extent)
     coded in bands of rows whose height doubles (1, 1, 2, 4, 8, ... rows) so the models adapt
     early. The first LOW components are coded one at a time, with context = coefficient group
@@ -45,9 +45,8 @@ MAX_BITS = 26
 ALPHABET = DIRECT + MAX_BITS - 4  # tokens for bit lengths 5..MAX_BITS
 INCREMENT = 32
 COUNT_LIMIT = 1 << 16
-COARSE = 8  # pass 1 codes every COARSE-th row first, then fills in between
-LEVELS = COARSE.bit_length() - 1
 LOW = 8
+CHUNK = 32  # pass-1 rows per coder call at most: big images' models adapt within a level
 AC_EDGES = np.array([1, 2, 3, 4, 6, 8, 11, 15, 20, 28, 40])
 DC_EDGES = np.array([1, 2, 3, 5, 8, 12, 18, 28, 44, 70])
 EXT_EDGES = np.array([1, 2, 4, 6, 9, 13, 18, 25, 35, 50, 70, 100])
@@ -139,18 +138,21 @@ def _line(a: np.ndarray) -> np.ndarray:
 
 
 def _row_phases(grids):
-    """Pass-1 phases: lists of (grid, rows, level). Rows ``0, S, 2S...`` (S = COARSE) come first,
-    one per phase, each with a context from the coarse row above; then the rows halfway
-    between coded rows, level by level, all of a level in one phase, with a context from
-    the coded rows on both sides."""
-    phases = [[(g, np.array([r]), LEVELS) for g in grids if r < g.rows]
-              for r in range(0, max(g.rows for g in grids), COARSE)]
-    for level in range(LEVELS - 1, -1, -1):
-        d = 1 << level
+    """Pass-1 phases: lists of (grid, rows, d). Row 0 of every grid comes first (d = 0); then,
+    for d = P/2, P/4, ... 1 (P the power of two at or above the most rows), the rows halfway
+    between rows already coded, ``d, 3d, 5d, ...``, with a context from the coded rows d above
+    and d below. A level holds about as many rows as all before it, so the models adapt
+    between calls whose sizes double, and the whole pass takes about log2(P) + 1 calls (levels
+    of more than CHUNK rows are split)."""
+    top = max(g.rows for g in grids)
+    phases = [[(g, np.array([0]), 0) for g in grids]]
+    d = 1 << max(top - 1, 0).bit_length()
+    while d > 1:
+        d //= 2
         rows = {id(g): np.arange(d, g.rows, 2 * d) for g in grids}
-        # in chunks that double, so the models adapt between them
-        for c0, c1 in _bands(max(r.size for r in rows.values())):
-            part = [(g, rows[id(g)][c0:c1], level) for g in grids if rows[id(g)][c0:c1].size]
+        n = max(r.size for r in rows.values())
+        for c0 in range(0, n, CHUNK):
+            part = [(g, rows[id(g)][c0:c0 + CHUNK], d) for g in grids if rows[id(g)][c0:c0 + CHUNK].size]
             if part:
                 phases.append(part)
     return phases
@@ -159,18 +161,10 @@ def _row_phases(grids):
 def _code_rows(phase, models: _Models, io) -> None:
     """First coefficients and extents of the rows of one pass-1 phase, in one coder call."""
     dc, ex, shapes = [], [], []
-    for g, rows, level in phase:
-        if level == LEVELS:
-            r = int(rows[0])
-            if r == 0:
-                c_dc, c_ext = np.array([[N_DC_CLASSES - 1]]), np.array([[N_EXT_CLASSES - 1]])
-            else:
-                s = _line(np.abs(np.stack([g.res[r - COARSE], g.ext[r - COARSE]])))
-                c_dc, c_ext = s[:1], s[1:]
-                c_dc = np.searchsorted(DC_EDGES, c_dc, side="right")
-                c_ext = np.searchsorted(EXT_EDGES, c_ext, side="right")
+    for g, rows, d in phase:
+        if d == 0:
+            c_dc, c_ext = np.array([[N_DC_CLASSES - 1]]), np.array([[N_EXT_CLASSES - 1]])
         else:
-            d = 1 << level
             below = np.where(rows + d < g.rows, rows + d, rows - d)
             s = _line(np.abs(np.stack([g.res[rows - d], g.ext[rows - d]]))) + _line(
                 np.abs(np.stack([g.res[below], g.ext[below]])))
@@ -208,6 +202,10 @@ def _k_group(k):
     return np.searchsorted(K_EDGES, k, side="right")
 
 
+# (group of k x activity class) x 2 for k = 0..LOW, indexed by the clipped activity
+_LOW_TABLE = [((int(_k_group(k)) * N_AC_CLASSES + _AC_CLASS) * 2).astype(np.int32) for k in range(LOW + 1)]
+
+
 def _low_context(mag: np.ndarray, ext: np.ndarray, r0: int, r1: int, k: int, active: np.ndarray) -> np.ndarray:
     """Context of component k (1 <= k <= LOW) for the active patches of rows r0:r1.
 
@@ -223,12 +221,11 @@ def _low_context(mag: np.ndarray, ext: np.ndarray, r0: int, r1: int, k: int, act
         act += mag[k - 1, r0 - 1 : r1 - 1]
     else:
         act[1:] += prev[:-1]
-    # class by table lookup (activities past the last edge share the top class)
-    ctx = _AC_CLASS[np.minimum(act, _AC_CLASS.size - 1)]
-    ctx += int(_k_group(k)) * N_AC_CLASSES
-    ctx *= 2
-    ctx += ext[r0:r1] == k
-    return ctx[active]
+    # class by table lookup (activities past the last edge share the top class), and the
+    # table already holds k's group: two operations on the active patches only
+    ctx = _LOW_TABLE[k][np.minimum(act[active], _AC_CLASS.size - 1)]
+    ctx += ext[r0:r1][active] == k
+    return ctx
 
 
 def _tail_positions(ext: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -464,7 +461,7 @@ def _traverse(grids: list[_Grid], models: _Models, io) -> None:
             parts = _split(v, [c.size for c in ctx])
             for (g, r0, r1, k, a), vk in zip(low, parts):
                 g.q[k, r0:r1][a] = vk
-                g.mag[k, r0:r1][a] = np.abs(vk)
+                np.abs(g.q[k, r0:r1], out=g.mag[k, r0:r1])  # inactive patches hold zeros
             for (g, r0, r1, idx, kk), vt in zip(tail, parts[len(low):]):
                 g.q[:, r0:r1].reshape(g.K, -1)[kk, idx] = vt
 

@@ -12,6 +12,8 @@ inverse is exact rather than a rounded table.
 
 from __future__ import annotations
 
+from concurrent.futures import ThreadPoolExecutor
+
 import cv2
 import numpy as np
 
@@ -90,20 +92,39 @@ def to_planes(image: np.ndarray, chroma: str, scale: float) -> list[np.ndarray]:
     return [y, np.ascontiguousarray(c[..., 0]), np.ascontiguousarray(c[..., 1])]
 
 
-def _chroma_terms(cb: np.ndarray, cr: np.ndarray, shape: tuple[int, int], chroma: str):
-    """What Cb and Cr add to Y in each of R, G and B, at full resolution: three (H, W) float32.
+STRIP = 128  # output rows per task of the inverse: a strip's interpolated terms stay in cache
+_POOL: ThreadPoolExecutor | None = None
+
+
+def _pool() -> ThreadPoolExecutor:
+    # OpenCV releases the GIL, so two strips run on two cores.
+    global _POOL
+    if _POOL is None:
+        _POOL = ThreadPoolExecutor(max_workers=2, thread_name_prefix="workbench-colour")
+    return _POOL
+
+
+def _chroma_terms(cb: np.ndarray, cr: np.ndarray, r0: int, r1: int, width: int, chroma: str):
+    """What Cb and Cr add to Y in each of R, G and B for image rows r0:r1: three (r1 - r0,
+    width) float32.
 
     The term is linear in the chroma, so with 4:2:0 it is computed at chroma resolution
-    and then interpolated, which equals interpolating the chroma first at a third of the work.
-    One plane at a time: OpenCV and numpy run fastest over contiguous planes.
+    and then interpolated, which equals interpolating the chroma first at a third of the
+    work. The interpolation of a strip reads one chroma row beyond it on each side, so it
+    equals the strip of the whole image's interpolation.
     """
+    if chroma == "420":
+        hc, wc = cb.shape
+        s0, s1 = max(r0 // 2 - 1, 0), min((r1 + 1) // 2 + 1, hc)
+        cb, cr = cb[s0:s1], cr[s0:s1]
     for c in range(3):
         wb, wr = float(YCBCR_TO_RGB[c, 1]), float(YCBCR_TO_RGB[c, 2])
-        t = cv2.addWeighted(cb, wb, cr, wr, -CHROMA_OFFSET * (wb + wr))
         if chroma == "420":
-            hc, wc = t.shape
-            t = cv2.resize(t, (2 * wc, 2 * hc), interpolation=cv2.INTER_LINEAR)[: shape[0], : shape[1]]
-        yield t
+            t = cv2.addWeighted(cb, wb, cr, wr, -CHROMA_OFFSET * (wb + wr))
+            t = cv2.resize(t, (2 * wc, 2 * (s1 - s0)), interpolation=cv2.INTER_LINEAR)
+            yield t[r0 - 2 * s0 : r1 - 2 * s0, :width]
+        else:
+            yield cv2.addWeighted(cb[r0:r1], wb, cr[r0:r1], wr, -CHROMA_OFFSET * (wb + wr))
 
 
 def _colour_planes(planes):
@@ -117,7 +138,7 @@ def from_planes(planes: list[np.ndarray], shape: tuple[int, int], chroma: str) -
     if len(planes) == 1:
         return np.array(planes[0], dtype=np.float32)
     y, cb, cr = _colour_planes(planes)
-    return np.dstack([t + y for t in _chroma_terms(cb, cr, shape, chroma)])
+    return np.dstack([t + y for t in _chroma_terms(cb, cr, 0, shape[0], shape[1], chroma)])
 
 
 def to_pixels(planes: list[np.ndarray], shape: tuple[int, int], chroma: str, bits: int) -> np.ndarray:
@@ -146,5 +167,14 @@ def to_pixels(planes: list[np.ndarray], shape: tuple[int, int], chroma: str, bit
         y = np.asarray(planes[0], dtype=np.float32)
         return cv2.addWeighted(y, gain, y, 0.0, 0.0, dtype=depth)
     y, cb, cr = _colour_planes(planes)
-    return cv2.merge([cv2.addWeighted(t, gain, y, gain, 0.0, dtype=depth) for t in _chroma_terms(cb, cr, shape, chroma)])
+    h, w = shape
+    out = np.empty((h, w, 3), np.uint16 if bits == 16 else np.uint8)
 
+    def strip(r0: int) -> None:
+        r1 = min(r0 + STRIP, h)
+        terms = _chroma_terms(cb, cr, r0, r1, w, chroma)
+        cv2.merge([cv2.addWeighted(t, gain, y[r0:r1], gain, 0.0, dtype=depth) for t in terms], dst=out[r0:r1])
+
+    for _ in _pool().map(strip, range(0, h, STRIP)):
+        pass
+    return out

@@ -108,27 +108,30 @@ def section_speed(repeats):
     print("\n== 4-megapixel RGB (retina resized to 2048x2048): time ratios to Pillow JPEG at the same rate")
     img = four_mp()
     jpeg = baselines.get("jpeg")
-    times_enc, times_dec = [], []
-    for _ in range(repeats):
-        t = time.perf_counter()
-        b = workbench.compress({"x": img}, step=6.0)
-        times_enc.append(time.perf_counter() - t)
-        t = time.perf_counter()
-        workbench.decompress(b)
-        times_dec.append(time.perf_counter() - t)
+    b = workbench.compress({"x": img}, step=6.0)
     bpp = 8 * len(b) / img.shape[0] / img.shape[1]
     q = baselines.at_rate(jpeg, img, bpp).knob
-    je, jd = [], []
-    for _ in range(repeats):
-        t = time.perf_counter()
-        jb = baselines.encode(jpeg, img, q)
-        je.append(time.perf_counter() - t)
-        t = time.perf_counter()
-        baselines.decode(jb)
-        jd.append(time.perf_counter() - t)
+    jb = baselines.encode(jpeg, img, q)
+    ours = (lambda: workbench.compress({"x": img}, step=6.0), lambda: workbench.decompress(b))
+    theirs = (lambda: baselines.encode(jpeg, img, q), lambda: baselines.decode(jb))
+    times = {key: [] for key in ("enc", "dec", "jenc", "jdec")}
+    # Interleaved, alternating which goes first, so that drifts of this machine's speed
+    # fall on both sides of each ratio.
+    for i in range(repeats + 1):
+        pairs = [(("enc", "dec"), ours), (("jenc", "jdec"), theirs)]
+        for keys, fns in pairs if i % 2 else pairs[::-1]:
+            for key, fn in zip(keys, fns):
+                t = time.perf_counter()
+                fn()
+                if i:  # the first round warms up
+                    times[key].append(time.perf_counter() - t)
+    times_enc, times_dec, je, jd = times["enc"], times["dec"], times["jenc"], times["jdec"]
     e, d, e0, d0 = map(statistics.median, (times_enc, times_dec, je, jd))
     print(f"ours {bpp:.2f} bpp: encode {e:.3f} s, decode {d:.3f} s | JPEG q{int(q)} {8*len(jb)/img.size*3:.2f} bpp: "
           f"encode {e0:.3f} s, decode {d0:.3f} s | ratios encode {e/e0:.1f}x, decode {d/d0:.1f}x (median of {repeats})")
+    for label, a, b in (("encode", times_enc, je), ("decode", times_dec, jd)):
+        r = sorted(x / y for x, y in zip(a, b))
+        print(f"  {label} ratio round by round: median {statistics.median(r):.1f}x, range {r[0]:.1f}-{r[-1]:.1f}x")
     t0 = time.perf_counter()
     for _ in range(repeats):
         workbench.metrics.ssim(img, img)
@@ -154,10 +157,12 @@ def main():
     tune_allocator()
     ap = argparse.ArgumentParser()
     ap.add_argument("--quick", action="store_true", help="fewer repeats")
+    ap.add_argument("--speed", action="store_true", help="only the speed and memory sections")
     a = ap.parse_args()
-    section_per_image()
-    section_folder_basis()
-    section_speed(3 if a.quick else 5)
+    if not a.speed:
+        section_per_image()
+        section_folder_basis()
+    section_speed(5 if a.quick else 11)
     section_memory()
 
 
