@@ -9,7 +9,7 @@ from PySide6.QtCore import QSettings, Qt  # noqa: E402
 
 from workbench import cli, pipeline  # noqa: E402
 from workbench.gui.window import MainWindow  # noqa: E402
-from workbench.imagefiles import SourceImage, read_image  # noqa: E402
+from workbench.imagefiles import read_image  # noqa: E402
 from workbench.settings import Settings  # noqa: E402
 
 
@@ -173,3 +173,65 @@ def test_on_a_large_image_a_sketch_shows_first_and_the_exact_view_replaces_it(qt
     assert rec.overlay.pixmap().isNull()  # cleared once the exact image is up
     core = pipeline.ImagePreview(window.current, window.panel.settings()).reconstruct(window.panel.settings())[1]
     assert np.array_equal(window._shown[1], core)
+
+
+def test_conv_readouts_come_from_the_helper_process_and_equal_the_core(qtbot, window, tmp_path, chelsea):
+    # The conv encoder runs in a helper process (workbench.remote); its numbers must still
+    # be the core's own for the same settings (shipped model, scikit-image's "chelsea").
+    d = tmp_path / "one"
+    d.mkdir()
+    Image.fromarray(chelsea[:96, :128]).save(d / "cat.png")
+    _open(qtbot, window, d)
+    window.panel.method.setCurrentIndex(window.panel.method.findData("conv"))
+    s = window.panel.settings()
+    core = _core_numbers(d / "cat.png", s)
+    qtbot.waitUntil(lambda: _settled(window, core) and window.panel.settings().method == "conv", timeout=120000)
+    n = window.last_numbers
+    assert n.bytes == round(core.bytes) and n.psnr == pytest.approx(core.psnr) and n.ssim == pytest.approx(core.ssim)
+    qtbot.waitUntil(lambda: window._exact_tag == ("cat.png", s), timeout=60000)  # the conv image is up
+    assert np.array_equal(window._shown[1], core.reconstruction)
+
+
+def test_the_apps_process_never_imports_torch(tmp_path, chelsea):
+    # Importing torch holds the GIL for a noticeable time; the conv encoder's previews and
+    # saves therefore run in child processes. Checked in a fresh interpreter, since this
+    # test session has torch loaded already.
+    import subprocess
+    import sys
+    import textwrap
+
+    d = tmp_path / "one"
+    d.mkdir()
+    Image.fromarray(chelsea[:64, :64]).save(d / "cat.png")
+    script = textwrap.dedent(f"""
+        import os, sys, time
+        os.environ["QT_QPA_PLATFORM"] = "offscreen"
+        from PySide6.QtCore import QSettings
+        from PySide6.QtWidgets import QApplication
+        from workbench.gui.window import MainWindow
+        app = QApplication([])
+        w = MainWindow(QSettings({str(tmp_path / 's.ini')!r}, QSettings.Format.IniFormat))
+        w.open_folder({str(d)!r})
+        def wait(cond, limit=120):
+            end = time.time() + limit
+            while not cond():
+                app.processEvents()
+                time.sleep(0.01)
+                if time.time() > end:
+                    sys.exit("timed out")
+        wait(lambda: not w.loading and w.last_numbers is not None)
+        w.panel.method.setCurrentIndex(w.panel.method.findData("conv"))
+        wait(lambda: any(key[1] == "conv" for key in w._previews))  # fitted in the helper
+        w.last_numbers = None
+        w.refresh()
+        wait(lambda: w.last_numbers is not None)
+        w.save_bundle({str(tmp_path / 'c.wbundle')!r})
+        wait(lambda: not w.jobs.active and os.path.exists({str(tmp_path / 'c.wbundle')!r}))
+        w.close()
+        print("torch" in sys.modules)
+    """)
+    r = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0, r.stderr[-2000:]
+    assert r.stdout.strip().splitlines()[-1] == "False"
+    contents, decoded = pipeline.decode((tmp_path / "c.wbundle").read_bytes())
+    assert contents.settings.method == "conv" and decoded[0].pixels.shape == (64, 64, 3)

@@ -388,6 +388,13 @@ class ImagePreview:
         a, b = self.settings, settings
         return (a.method, a.block, a.chroma, a.basis_scope) == (b.method, b.block, b.chroma, b.basis_scope)
 
+    @property
+    def channels(self) -> int | None:
+        """The most components this method offers here (the conv model's latent
+        channels), or None where the block size sets it."""
+        model = getattr(self.analysis, "model", None)
+        return None if model is None else model.channels
+
     def energy_kept(self):
         basis = getattr(self.analysis, "basis", None)
         return None if basis is None else basis.energy_kept()

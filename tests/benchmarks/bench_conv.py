@@ -7,7 +7,6 @@ Run: python tests/benchmarks/bench_conv.py [--minutes 10] [--skip-training]
 from __future__ import annotations
 
 import argparse
-import resource
 import statistics
 import subprocess
 import sys

@@ -1,6 +1,6 @@
 """KLT benchmark: rate–distortion and BD-rate against Pillow's codecs, speed, memory.
 
-Run: python tests/benchmarks/bench_klt.py [--quick]
+Run: python tests/benchmarks/bench_klt.py [--quick] [--speed]
 Prints, in one run and side by side: per-image BD-rate (PSNR) of the per-image-basis KLT
 against JPEG, JPEG 2000, WebP and AVIF on scikit-image's colour photographs; the folder-basis
 KLT on held-out images of one source; encode/decode time of a 4-megapixel image as ratios
@@ -10,7 +10,6 @@ to Pillow's JPEG at the same rate (medians of repeated runs); and peak memory.
 from __future__ import annotations
 
 import argparse
-import resource
 import statistics
 import subprocess
 import sys
@@ -29,7 +28,7 @@ import workbench  # noqa: E402
 import workbench.basisfile  # noqa: E402
 import workbench.codecs  # noqa: E402
 import workbench.metrics  # noqa: E402
-from workbench import baselines, bdrate, klt, pipeline, tiling  # noqa: E402
+from workbench import baselines, bdrate, pipeline  # noqa: E402
 from workbench.imagefiles import SourceImage  # noqa: E402
 from workbench.settings import Settings  # noqa: E402
 

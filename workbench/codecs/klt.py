@@ -143,9 +143,6 @@ class KLTCodec:
     def shared_to_bytes(self, basis: klt.Basis) -> bytes:
         return basis_to_bytes(basis)
 
-    def shared_from_bytes(self, data: bytes) -> klt.Basis:
-        return basis_from_bytes(data)
-
     # ---------------------------------------------------------------- encoding
     def analyse(self, planes, settings, shared=None) -> Analysis:
         patches, means = [], []

@@ -65,7 +65,7 @@ def start_training(window, path: Path, *, minutes: float, lam: float, latent: in
 def on_trained(window, path, result, description) -> None:
     """Make the freshly trained model the conv encoder of this window (``description``:
     its parsed file, read off the GUI thread; the model is loaded when first used)."""
-    window.conv_model, window.conv_model_file = None, Path(path)
+    window.conv_model_file = Path(path)
     window._previews.clear()
     i = window.panel.method.findData("conv")
     window.panel.method.setItemText(i, f"Conv encoder ({Path(path).stem})")

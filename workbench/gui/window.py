@@ -12,7 +12,7 @@ from PySide6.QtGui import QAction, QIcon, QKeySequence, QPixmap
 from PySide6.QtWidgets import (QFileDialog, QHBoxLayout, QLabel, QListWidget, QListWidgetItem, QMainWindow,
                                QMessageBox, QProgressBar, QPushButton, QSplitter, QToolBar, QVBoxLayout, QWidget)
 
-from .. import __version__, bundle, metrics, pipeline
+from .. import __version__, metrics, pipeline, remote
 from ..errors import Cancelled
 from ..imagefiles import SourceImage, list_inputs, read_many, write_atomic
 from ..settings import Settings
@@ -78,8 +78,8 @@ class MainWindow(QMainWindow):
         self._shown = None  # (orig, rec) arrays on screen
         self.last_numbers = None
         self.last_error = ""
-        self.conv_model = None  # (model, sha256), loaded on first use by a worker
         self.conv_model_file = None  # a model trained here; None for the shipped one
+        self._remote = None  # the helper process of the conv encoder (remote.py), on first use
         self.last_training = None
 
         self.fit_lane, self.preview_lane, self.target_lane = Lane(), Lane(), Lane()
@@ -228,8 +228,9 @@ class MainWindow(QMainWindow):
             lane.invalidate()
         self._sketch_pool.waitForDone(30000)
         QThreadPool.globalInstance().waitForDone(30000)  # let running work end before its receivers go
-        if self._coder is not None:
-            self._coder.close()
+        for helper in (self._coder, self._remote):
+            if helper is not None:
+                helper.close()
         super().closeEvent(event)
 
     # ------------------------------------------------------------------ opening
@@ -314,13 +315,8 @@ class MainWindow(QMainWindow):
         return self.images[self.index] if 0 <= self.index < len(self.images) else None
 
     def _shared_for(self, s: Settings):
-        """Shared side for the current settings, or a marker that it must be fitted first."""
-        if s.method == "conv":
-            if self.conv_model is None:  # loaded here, on a worker thread (torch comes with it)
-                from ..codecs import get
-
-                self.conv_model = get("conv").load_model(self.conv_model_file)
-            return self.conv_model
+        """Shared side of the block KLT for the current settings, or a marker that it must be
+        fitted first (the conv encoder's model lives in the helper process)."""
         if s.basis_scope != "folder":
             return None, None
         return self._shared.get((s.block, s.chroma, s.kept), (None, "missing"))
@@ -348,6 +344,10 @@ class MainWindow(QMainWindow):
         if prev is not None:
             self._previews.move_to_end(key)
         if prev is None:
+            # what is still on its way was asked for under the old transform: drop it
+            for lane in (self.sketch_lane, self.preview_lane, self.render_lane):
+                lane.invalidate()
+            self._after_sketch = None
             self.status_text.setText(f"fitting the transform for {img.name}…")
             self.fit_lane.submit(lambda: self._make_preview(img, s, key), tag=key)
             return
@@ -416,17 +416,25 @@ class MainWindow(QMainWindow):
                 basis, raw, _ = get("klt").prepare_shared(
                     [pipeline.image_planes(i, s.chroma) for i in self.images], s)
                 self._shared[skey] = (basis, basis_hash(raw))
+        if s.method == "conv":
+            return key, self._helper().open(key, img, s, self.conv_model_file)
         shared, ref = self._shared_for(s)
         return key, pipeline.ImagePreview(img, s, shared=shared, shared_ref=ref)
+
+    def _helper(self):
+        if self._remote is None:
+            from ..remote import PreviewProcess
+
+            self._remote = PreviewProcess()
+        return self._remote
 
     def _on_fitted(self, _tag, value):
         key, prev = value
         self._previews[key] = prev
         while len(self._previews) > PREVIEW_CACHE:
             self._previews.popitem(last=False)
-        model = getattr(prev.analysis, "model", None)
-        if model is not None and self.panel.count.maximum() != model.channels:
-            self.panel.set_count_range(model.channels)
+        if prev.channels is not None and self.panel.count.maximum() != prev.channels:
+            self.panel.set_count_range(prev.channels)
         self.status_text.setText("")
         self.refresh()
 
@@ -495,6 +503,9 @@ class MainWindow(QMainWindow):
             return
 
         def work():
+            if s.method == "conv":
+                n, rec = self._helper().encode_one(img, s, self.conv_model_file)
+                return img, s, n, rec
             shared, ref = self._shared_for(s)
             r = pipeline.encode([img], s, shared=shared, shared_ref=ref).images[0]
             n = pipeline.Numbers(int(round(r.bytes)), r.bpp, r.ratio, r.psnr, r.ssim, r.kept, r.step)
@@ -639,13 +650,17 @@ class MainWindow(QMainWindow):
         s = self.panel.settings()
         images, protect, path = list(self.images), self._protected(), Path(path)
 
+        text = f"saving {path.name}…"
+        if s.method == "conv":  # torch stays out of this process
+            return self._start_job(remote.save_job, ("save", path), text,
+                                   child_args=(images, s, path, protect, self.conv_model_file))
+
         def job():
-            shared, ref = (None, None) if s.method == "klt" else self._shared_for(s)
-            result = yield from pipeline.encode_job(images, s, shared=shared, shared_ref=ref, measure=False)
+            result = yield from pipeline.encode_job(images, s, measure=False)
             write_atomic(path, result.data, protect=protect)
             return result
 
-        return self._start_job(job, ("save", path), f"saving {path.name}…")
+        return self._start_job(job, ("save", path), text)
 
     def _ask_save_bundle(self):
         start = str(Path(self.store.value("last_save_dir", str(Path.home()))) / ((self.folder.name if self.folder else "images") + ".wbundle"))
@@ -694,11 +709,15 @@ class MainWindow(QMainWindow):
         s = self.panel.settings()
         images, outdir, protect = list(self.images), Path(outdir), self._protected()
 
-        def job():
-            shared, ref = (None, None) if s.method == "klt" else self._shared_for(s)
-            return (yield from sheet.sheet_job(images, s, outdir, shared=shared, shared_ref=ref, protect=protect))
+        text = "writing the quality sheet…"
+        if s.method == "conv":  # torch stays out of this process
+            return self._start_job(remote.sheet_job, ("sheet", outdir), text,
+                                   child_args=(images, s, outdir, protect, self.conv_model_file))
 
-        return self._start_job(job, ("sheet", outdir), "writing the quality sheet…")
+        def job():
+            return (yield from sheet.sheet_job(images, s, outdir, protect=protect))
+
+        return self._start_job(job, ("sheet", outdir), text)
 
     def _ask_save_sheet(self):
         path = QFileDialog.getExistingDirectory(self, "Folder for the quality sheet", str(Path.home()))
