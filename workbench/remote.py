@@ -13,9 +13,11 @@ from __future__ import annotations
 import multiprocessing as mp
 from collections import OrderedDict
 from concurrent.futures import ProcessPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
 
 from . import codecs, pipeline
+from .errors import InputError
 from .imagefiles import SourceImage, write_atomic
 from .settings import Settings
 
@@ -71,17 +73,30 @@ class PreviewProcess:
     (worker) thread, never the GIL, while the child computes."""
 
     def __init__(self):
-        self._pool = ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("spawn"))
+        self._pool = self._start()
+
+    @staticmethod
+    def _start() -> ProcessPoolExecutor:
+        return ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("spawn"))
+
+    def call(self, fn, *args):
+        """``fn(*args)`` in the helper. If the helper has died (killed, out of memory), the
+        call fails with a clear message and the next one starts a fresh helper."""
+        try:
+            return self._pool.submit(fn, *args).result()
+        except BrokenProcessPool:
+            self._pool = self._start()
+            raise InputError("the conv encoder's helper process stopped; it restarts on the next try") from None
 
     def open(self, key, img: SourceImage, settings: Settings, model_file=None) -> "RemotePreview":
         """Fit ``img`` (the encoder's forward pass) in the helper."""
         key = (key, None if model_file is None else str(model_file))
-        channels = self._pool.submit(_open, key, img, settings, model_file).result()
+        channels = self.call(_open, key, img, settings, model_file)
         return RemotePreview(self, key, img, settings, model_file, channels)
 
     def encode_one(self, img: SourceImage, settings: Settings, model_file=None):
         """``(Numbers, reconstruction)`` of a one-image bundle (rate control included)."""
-        return self._pool.submit(_encode_one, img, settings, model_file).result()
+        return self.call(_encode_one, img, settings, model_file)
 
     def close(self) -> None:
         self._pool.shutdown(wait=True, cancel_futures=True)
@@ -107,11 +122,10 @@ class RemotePreview:
         return None
 
     def _call(self, what, settings):
-        pool = self._proc._pool
-        out = pool.submit(_call, self._key, what, settings).result()
-        if out[0] == "missing":  # the helper kept newer fits: fit this one again
-            pool.submit(_open, self._key, self.img, self.settings, self._model_file).result()
-            out = pool.submit(_call, self._key, what, settings).result()
+        out = self._proc.call(_call, self._key, what, settings)
+        if out[0] == "missing":  # the helper kept newer fits (or restarted): fit this one again
+            self._proc.call(_open, self._key, self.img, self.settings, self._model_file)
+            out = self._proc.call(_call, self._key, what, settings)
         return out[1]
 
     def reconstruct(self, settings: Settings):
