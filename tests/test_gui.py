@@ -193,8 +193,8 @@ def test_conv_readouts_come_from_the_helper_process_and_equal_the_core(qtbot, wi
 
 
 def test_the_apps_process_never_imports_torch(tmp_path, chelsea):
-    # Importing torch holds the GIL for a noticeable time; the conv encoder's previews and
-    # saves therefore run in child processes. Checked in a fresh interpreter, since this
+    # Importing torch holds the GIL for a noticeable time; the conv encoder's previews,
+    # saves and bundle decoding therefore run in child processes. Checked in a fresh interpreter, since this
     # test session has torch loaded already.
     import subprocess
     import sys
@@ -227,6 +227,8 @@ def test_the_apps_process_never_imports_torch(tmp_path, chelsea):
         wait(lambda: w.last_numbers is not None)
         w.save_bundle({str(tmp_path / 'c.wbundle')!r})
         wait(lambda: not w.jobs.active and os.path.exists({str(tmp_path / 'c.wbundle')!r}))
+        w.open_bundle({str(tmp_path / 'c.wbundle')!r})
+        wait(lambda: not w.jobs.active and w.bundle_path is not None)
         w.close()
         print("torch" in sys.modules)
     """)

@@ -12,8 +12,8 @@ from PySide6.QtGui import QAction, QIcon, QKeySequence, QPixmap
 from PySide6.QtWidgets import (QFileDialog, QHBoxLayout, QLabel, QListWidget, QListWidgetItem, QMainWindow,
                                QMessageBox, QProgressBar, QPushButton, QSplitter, QToolBar, QVBoxLayout, QWidget)
 
-from .. import __version__, metrics, pipeline, remote
-from ..errors import Cancelled
+from .. import __version__, bundle, metrics, pipeline, remote
+from ..errors import BundleError, Cancelled
 from ..imagefiles import SourceImage, list_inputs, read_many, write_atomic
 from ..settings import Settings
 from . import imaging
@@ -676,7 +676,14 @@ class MainWindow(QMainWindow):
         except OSError as exc:
             self.notice.show_text(f"Cannot read {path}: {exc.strerror}")
             return False
-        return self._start_job(lambda: pipeline.decode_job(data), ("open", path), f"decoding {path.name}…")
+        text, tag = f"decoding {path.name}…", ("open", path)
+        try:
+            conv = bundle.parse(data).settings.method == "conv"
+        except BundleError:
+            conv = False  # the decoding job reports what is wrong with it
+        if conv:  # torch stays out of this process
+            return self._start_job(pipeline.decode_job, tag, text, child_args=(data,))
+        return self._start_job(lambda: pipeline.decode_job(data), tag, text)
 
     def _show_bundle(self, path, contents, decoded):
         images = [SourceImage(d.name, d.pixels) for d in decoded]
