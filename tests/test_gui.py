@@ -141,6 +141,22 @@ def test_quality_sheet_is_saved_from_the_window(qtbot, window, folder, tmp_path)
     assert {p.name for p in out.iterdir()} == {"bundle.wbundle", "sheet.pdf", "sheet.csv", "sheet.json"}
 
 
+def test_quality_sheet_with_the_conv_encoder_is_saved_from_a_child_process(qtbot, window, tmp_path, chelsea):
+    # The sheet's own worker pool then runs inside the child job (a crop of "chelsea").
+    d = tmp_path / "one"
+    d.mkdir()
+    Image.fromarray(chelsea[:64, :96]).save(d / "cat.png")
+    _open(qtbot, window, d)
+    window.panel.method.setCurrentIndex(window.panel.method.findData("conv"))
+    out = tmp_path / "report"
+    assert window.save_sheet(out)
+    qtbot.waitUntil(lambda: not window.jobs.active, timeout=240000)
+    assert window.last_error == ""
+    assert {p.name for p in out.iterdir()} == {"bundle.wbundle", "sheet.pdf", "sheet.csv", "sheet.json"}
+    contents, _ = pipeline.decode((out / "bundle.wbundle").read_bytes())
+    assert contents.settings.method == "conv"
+
+
 def test_training_from_the_window_makes_the_model_available(qtbot, window, folder, tmp_path):
     from workbench.gui import training
 

@@ -48,3 +48,28 @@ def test_a_helper_that_died_gives_one_clear_error_then_starts_again(helper, cat)
             remote.evaluate(s)
     _, px, n = remote.evaluate(s)  # a fresh helper fits the image again
     assert px.shape == (80, 112, 3) and n.bytes > 0
+
+
+def test_closing_stops_the_helper_and_a_waiting_call_gives_up(cat):
+    import threading
+
+    from workbench.errors import Cancelled
+
+    h = PreviewProcess()
+    s = Settings(method="conv")
+    remote = h.open("k", cat, s)
+    outcome = []
+
+    def wait_for_it():
+        try:
+            for _ in range(200):  # keeps the helper busy until it is closed
+                remote.evaluate(s)
+            outcome.append("finished")
+        except Cancelled:
+            outcome.append("cancelled")
+
+    t = threading.Thread(target=wait_for_it)
+    t.start()
+    h.close()
+    t.join(60)
+    assert outcome == ["cancelled"]

@@ -63,10 +63,17 @@ def run_in_child(conn, cancel, factory, args) -> None:
     ``("done", result)`` or ``("failed", kind, message)``; ``cancel`` (an Event) stops the job
     at its next yield.
     """
+    import os
+
     from .errors import WorkbenchError
 
+    parent = os.getppid()
+
+    def should_stop() -> bool:  # asked to, or the parent has gone (then nobody waits for the result)
+        return cancel.is_set() or os.getppid() != parent
+
     try:
-        result = run(factory(*args), lambda p: conn.send(("progress", p.fraction, p.text)), cancel.is_set)
+        result = run(factory(*args), lambda p: conn.send(("progress", p.fraction, p.text)), should_stop)
         conn.send(("done", result))
     except Cancelled:
         conn.send(("failed", "cancelled", "cancelled"))
@@ -90,7 +97,9 @@ def start_child(factory, args):
     ctx = mp.get_context("spawn")
     parent, child = ctx.Pipe(duplex=False)
     cancel = ctx.Event()
-    proc = ctx.Process(target=run_in_child, args=(child, cancel, factory, args), daemon=True)
+    # Not a daemon: a job may start processes of its own (the quality sheet's worker pool).
+    # It stops at its next yield once cancelled or orphaned (see run_in_child).
+    proc = ctx.Process(target=run_in_child, args=(child, cancel, factory, args))
     proc.start()
     child.close()
     return proc, parent, cancel

@@ -11,13 +11,14 @@ runs as a child job (:func:`save_job`, :func:`sheet_job`, started by
 from __future__ import annotations
 
 import multiprocessing as mp
+import threading
 from collections import OrderedDict
-from concurrent.futures import ProcessPoolExecutor
+from concurrent.futures import CancelledError, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
 
 from . import codecs, pipeline
-from .errors import InputError
+from .errors import Cancelled, InputError
 from .imagefiles import SourceImage, write_atomic
 from .settings import Settings
 
@@ -74,6 +75,8 @@ class PreviewProcess:
 
     def __init__(self):
         self._pool = self._start()
+        self._lock = threading.Lock()
+        self._closed = False
 
     @staticmethod
     def _start() -> ProcessPoolExecutor:
@@ -82,10 +85,17 @@ class PreviewProcess:
     def call(self, fn, *args):
         """``fn(*args)`` in the helper. If the helper has died (killed, out of memory), the
         call fails with a clear message and the next one starts a fresh helper."""
+        pool = self._pool
         try:
-            return self._pool.submit(fn, *args).result()
-        except BrokenProcessPool:
-            self._pool = self._start()
+            return pool.submit(fn, *args).result()
+        except (BrokenProcessPool, CancelledError, RuntimeError) as exc:
+            with self._lock:
+                if self._closed:  # shut down, or cancelled by the shutdown
+                    raise Cancelled("the app is closing") from None
+                if not isinstance(exc, BrokenProcessPool):
+                    raise  # the child's own error
+                if self._pool is pool:
+                    self._pool = self._start()
             raise InputError("the conv encoder's helper process stopped; it restarts on the next try") from None
 
     def open(self, key, img: SourceImage, settings: Settings, model_file=None) -> "RemotePreview":
@@ -99,7 +109,15 @@ class PreviewProcess:
         return self.call(_encode_one, img, settings, model_file)
 
     def close(self) -> None:
-        self._pool.shutdown(wait=True, cancel_futures=True)
+        """Stop the helper now, even in the middle of a computation (whoever waits for
+        it gets :class:`workbench.errors.Cancelled`)."""
+        with self._lock:
+            self._closed = True
+            pool = self._pool
+        processes = list((getattr(pool, "_processes", None) or {}).values())
+        pool.shutdown(wait=False, cancel_futures=True)
+        for proc in processes:
+            proc.terminate()
 
 
 class RemotePreview:

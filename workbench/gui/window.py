@@ -226,11 +226,12 @@ class MainWindow(QMainWindow):
         for lane in (self.fit_lane, self.preview_lane, self.target_lane, self.sketch_lane,
                      self.folder_lane, self.model_lane, self.render_lane):
             lane.invalidate()
+        if self._remote is not None:  # stops a conv computation at once; its waiter gives up
+            self._remote.close()
         self._sketch_pool.waitForDone(30000)
         QThreadPool.globalInstance().waitForDone(30000)  # let running work end before its receivers go
-        for helper in (self._coder, self._remote):
-            if helper is not None:
-                helper.close()
+        if self._coder is not None:
+            self._coder.close()
         super().closeEvent(event)
 
     # ------------------------------------------------------------------ opening

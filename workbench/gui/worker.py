@@ -139,6 +139,9 @@ def _wait_for_child(factory, args, should_stop, on_progress):
         raise WorkbenchError(died.format(proc.exitcode)) from None
     finally:
         proc.join(30)
+        if proc.is_alive():  # a job that ignores Cancel must not outlive the app
+            proc.terminate()
+            proc.join(5)
 
 
 def _attach(owner, pool) -> None:
