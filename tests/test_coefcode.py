@@ -12,7 +12,7 @@ def _grid(seed, shape):
     return q
 
 
-@pytest.mark.parametrize("shape", [(1, 1, 1), (1, 7, 3), (9, 1, 16), (40, 33, 64)])
+@pytest.mark.parametrize("shape", [(1, 1, 1), (1, 7, 3), (2, 3, 2), (9, 1, 16), (40, 33, 64), (131, 5, 12)])
 def test_grids_round_trip_exactly(shape):
     q = _grid(1, shape)
     assert np.array_equal(coefcode.decode_grids(coefcode.encode_grids([q], [0]), [shape], [0])[0], q)
