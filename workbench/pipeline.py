@@ -366,6 +366,12 @@ class Sketch:
     factor: int
 
 
+def same_transform(a: Settings, b: Settings) -> bool:
+    """Whether one fit of the transform serves both settings (only the step, count or
+    target differ)."""
+    return (a.method, a.block, a.chroma, a.basis_scope) == (b.method, b.block, b.chroma, b.basis_scope)
+
+
 class ImagePreview:
     """Fast what-ifs on one image: the transform is fitted once, then any step or
     component count is quantised and reconstructed exactly as the decoder would.
@@ -385,8 +391,7 @@ class ImagePreview:
 
     def compatible(self, settings: Settings) -> bool:
         """Whether ``settings`` can reuse this fit (only the step, count or target differ)."""
-        a, b = self.settings, settings
-        return (a.method, a.block, a.chroma, a.basis_scope) == (b.method, b.block, b.chroma, b.basis_scope)
+        return same_transform(self.settings, settings)
 
     @property
     def channels(self) -> int | None:

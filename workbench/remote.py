@@ -130,8 +130,7 @@ class RemotePreview:
         self.codec = codecs.get(settings.method)
 
     def compatible(self, settings: Settings) -> bool:
-        a, b = self.settings, settings
-        return (a.method, a.block, a.chroma, a.basis_scope) == (b.method, b.block, b.chroma, b.basis_scope)
+        return pipeline.same_transform(self.settings, settings)
 
     def energy_kept(self):
         return None
