@@ -1,6 +1,7 @@
 """The KLT against its textbook properties."""
 
 import numpy as np
+import pytest
 
 from workbench import klt, tiling
 
@@ -63,3 +64,58 @@ def test_quantised_vectors_rebuild_exactly_from_their_integers(camera):
     s2 = klt.dequantise_vectors(ints.copy(), bits.copy())
     assert np.array_equal(s1, s2)
     assert np.abs(s1 - basis.vectors.T).max() <= 2.0 ** -3 / 2 + 1e-12
+
+
+def _sparse_tail_grid(value):
+    # four dense components, then one lone coefficient in component 40
+    rng = np.random.default_rng(3)
+    q = np.zeros((32, 32, 64), np.int32)
+    q[:, :, :4] = rng.integers(-6, 7, (32, 32, 4))
+    q[5, 7, 40] = value
+    return q
+
+
+def test_a_lone_coefficient_far_down_does_not_cost_its_basis_vectors():
+    # A stored vector costs n * bits; one coefficient of 1 step is worth ~1 squared step,
+    # far less than lambda times those bits (RD_LAMBDA: common practice, from memory).
+    from workbench.codecs.klt import rd_kept
+
+    bits = np.full(64, 3, np.uint8)
+    assert rd_kept([_sparse_tail_grid(1)], bits, 64) == 4
+
+
+def test_a_coefficient_far_down_is_kept_when_it_avoids_more_error_than_its_bits_cost():
+    from workbench.codecs.klt import RD_LAMBDA, rd_kept
+
+    bits = np.full(64, 3, np.uint8)
+    # 200**2 squared steps of error against 37 more vectors of 64 x 3 bits: kept
+    assert 200**2 > RD_LAMBDA * 37 * 64 * 3
+    assert rd_kept([_sparse_tail_grid(200)], bits, 64) == 41
+    # with a shared basis only the coefficient's own few bits are at stake: 1 squared step
+    # of error is worth more than RD_LAMBDA x 6 bits
+    assert rd_kept([_sparse_tail_grid(1)], None, 64) == 41
+
+
+def _keep_every_used_component(q, bits, n):
+    return max([int(np.flatnonzero(np.any(qp != 0, axis=(0, 1)))[-1]) + 1 for qp in q if qp.any()] or [1])
+
+
+@pytest.mark.parametrize("name", ["astronaut", "camera", "coffee"])
+def test_dropping_sparse_trailing_components_gives_a_better_rate_distortion_curve(name, monkeypatch):
+    # Bjontegaard BD-rate (VCEG-M33) at the low rates where components are dropped, against
+    # keeping every component with a non-zero coefficient (scikit-image's bundled images).
+    from skimage import data
+
+    from workbench import bdrate, pipeline
+    from workbench.codecs import klt as klt_codec
+    from workbench.imagefiles import SourceImage
+    from workbench.settings import Settings
+
+    img = SourceImage(name, getattr(data, name)())
+    steps = (20.0, 30.0, 44.0, 64.0)
+    ours = pipeline.rd_points(img, Settings(), steps, with_ssim=False)
+    monkeypatch.setattr(klt_codec, "rd_kept", _keep_every_used_component)
+    every = pipeline.rd_points(img, Settings(), steps, with_ssim=False)
+    assert sum(p.bpp for p in ours) < sum(p.bpp for p in every)
+    bd = bdrate.bd_rate([p.bpp for p in every], [p.psnr for p in every], [p.bpp for p in ours], [p.psnr for p in ours])
+    assert bd < 0, bd

@@ -42,3 +42,4 @@ def test_unreachable_target_is_reported_not_met(camera16):
 def test_search_step_on_a_monotone_function_finds_the_threshold():
     step, ok = pipeline.search_step(lambda s: 100 - s, "psnr", 60.0)
     assert ok and step == pytest.approx(40.0, rel=0.02) and 100 - step >= 60.0
+
