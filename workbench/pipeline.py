@@ -353,6 +353,11 @@ class Numbers:
     kept: int
     step: float
 
+    @classmethod
+    def of(cls, r: ImageResult) -> "Numbers":
+        """The read-outs of an encoded image."""
+        return cls(int(round(r.bytes)), r.bpp, r.ratio, r.psnr, r.ssim, r.kept, r.step)
+
 
 @dataclass
 class Sketch:

@@ -5,7 +5,8 @@ GIL for 150–250 ms: in the app's own interpreter that would freeze the window.
 conv encoder's previews live in a helper process (:class:`PreviewProcess`, one model and a
 few fitted images kept there), and saving a bundle or writing a quality sheet with it
 runs as a child job (:func:`save_job`, :func:`sheet_job`, started by
-:func:`workbench.jobs.start_child`). The app's process never imports torch.
+:func:`workbench.jobs.start_child`; the app decodes its bundles the same way). The app's
+process never imports torch.
 """
 
 from __future__ import annotations
@@ -65,7 +66,7 @@ def _call(key, what: str, settings: Settings):
 def _encode_one(img: SourceImage, settings: Settings, model_file):
     shared, ref = _shared(model_file)
     r = pipeline.encode([img], settings, shared=shared, shared_ref=ref).images[0]
-    return pipeline.Numbers(int(round(r.bytes)), r.bpp, r.ratio, r.psnr, r.ssim, r.kept, r.step), r.reconstruction
+    return pipeline.Numbers.of(r), r.reconstruction
 
 
 # --------------------------------------------------------------- parent side

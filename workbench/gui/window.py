@@ -509,7 +509,7 @@ class MainWindow(QMainWindow):
                 return img, s, n, rec
             shared, ref = self._shared_for(s)
             r = pipeline.encode([img], s, shared=shared, shared_ref=ref).images[0]
-            n = pipeline.Numbers(int(round(r.bytes)), r.bpp, r.ratio, r.psnr, r.ssim, r.kept, r.step)
+            n = pipeline.Numbers.of(r)
             return img, s, n, r.reconstruction
 
         self.preview_lane.invalidate()
