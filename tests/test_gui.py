@@ -253,3 +253,11 @@ def test_the_apps_process_never_imports_torch(tmp_path, chelsea):
     assert r.stdout.strip().splitlines()[-1] == "False"
     contents, decoded = pipeline.decode((tmp_path / "c.wbundle").read_bytes())
     assert contents.settings.method == "conv" and decoded[0].pixels.shape == (64, 64, 3)
+
+
+def test_highlighting_the_conv_encoder_starts_its_helper_early(qtbot, window):
+    # Its helper process needs seconds to start (it imports torch): begin while the user chooses.
+    assert window._remote is None
+    window.panel.method.highlighted.emit(window.panel.method.findData("conv"))
+    assert window._remote is not None
+    window.panel.method.highlighted.emit(window.panel.method.findData("klt"))  # no second helper

@@ -43,6 +43,10 @@ def _shared(model_file):
     return _models[key]
 
 
+def _warm(model_file) -> None:
+    _shared(model_file)
+
+
 def _open(key, img: SourceImage, settings: Settings, model_file) -> int | None:
     shared, ref = _shared(model_file)
     _previews[key] = pipeline.ImagePreview(img, settings, shared=shared, shared_ref=ref)
@@ -104,6 +108,14 @@ class PreviewProcess:
         key = (key, None if model_file is None else str(model_file))
         channels = self.call(_open, key, img, settings, model_file)
         return RemotePreview(self, key, img, settings, model_file, channels)
+
+    def warm(self, model_file=None) -> None:
+        """Start the helper and load the model now, so that the first preview is quicker.
+        Quietly does nothing on failure: the first real call reports it."""
+        try:
+            self.call(_warm, model_file)
+        except Exception:  # noqa: BLE001  (the call that needs the model will say what is wrong)
+            pass
 
     def encode_one(self, img: SourceImage, settings: Settings, model_file=None):
         """``(Numbers, reconstruction)`` of a one-image bundle (rate control included)."""

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import importlib.metadata as md
+import threading
 from collections import OrderedDict
 from pathlib import Path
 
@@ -80,6 +81,7 @@ class MainWindow(QMainWindow):
         self.last_error = ""
         self.conv_model_file = None  # a model trained here; None for the shipped one
         self._remote = None  # the helper process of the conv encoder (remote.py), on first use
+        self._remote_lock = threading.Lock()
         self.last_training = None
 
         self.fit_lane, self.preview_lane, self.target_lane = Lane(), Lane(), Lane()
@@ -135,6 +137,7 @@ class MainWindow(QMainWindow):
         self.panel = SidePanel()
         self.panel.changed.connect(self._on_settings_changed)
         self.panel.diff_changed.connect(self._redraw_difference)
+        self.panel.method.highlighted.connect(self._on_method_highlighted)
 
         centre = QWidget()
         col = QVBoxLayout(centre)
@@ -423,11 +426,16 @@ class MainWindow(QMainWindow):
         return key, pipeline.ImagePreview(img, s, shared=shared, shared_ref=ref)
 
     def _helper(self):
-        if self._remote is None:
-            from ..remote import PreviewProcess
+        with self._remote_lock:  # worker threads ask for it
+            if self._remote is None:
+                self._remote = remote.PreviewProcess()
+            return self._remote
 
-            self._remote = PreviewProcess()
-        return self._remote
+    def _on_method_highlighted(self, index: int) -> None:
+        # The conv encoder's helper needs seconds to start (it imports torch): begin while
+        # the user is still choosing.
+        if self.panel.method.itemData(index) == "conv" and self._remote is None:
+            threading.Thread(target=self._helper().warm, args=(self.conv_model_file,), daemon=True).start()
 
     def _on_fitted(self, _tag, value):
         key, prev = value
