@@ -27,6 +27,16 @@ def _open(qtbot, window, folder):
     qtbot.waitUntil(lambda: not window.loading, timeout=30000)
 
 
+def _open_with_conv(qtbot, window, tmp_path, pixels):
+    """A folder of one image ``cat.png``, opened, with the conv encoder chosen."""
+    d = tmp_path / "one"
+    d.mkdir()
+    Image.fromarray(pixels).save(d / "cat.png")
+    _open(qtbot, window, d)
+    window.panel.method.setCurrentIndex(window.panel.method.findData("conv"))
+    return d
+
+
 @pytest.fixture()
 def window(qtbot, tmp_path):
     w = MainWindow(QSettings(str(tmp_path / "settings.ini"), QSettings.Format.IniFormat))
@@ -143,11 +153,7 @@ def test_quality_sheet_is_saved_from_the_window(qtbot, window, folder, tmp_path)
 
 def test_quality_sheet_with_the_conv_encoder_is_saved_from_a_child_process(qtbot, window, tmp_path, chelsea):
     # The sheet's own worker pool then runs inside the child job (a crop of "chelsea").
-    d = tmp_path / "one"
-    d.mkdir()
-    Image.fromarray(chelsea[:64, :96]).save(d / "cat.png")
-    _open(qtbot, window, d)
-    window.panel.method.setCurrentIndex(window.panel.method.findData("conv"))
+    _open_with_conv(qtbot, window, tmp_path, chelsea[:64, :96])
     out = tmp_path / "report"
     assert window.save_sheet(out)
     qtbot.waitUntil(lambda: not window.jobs.active, timeout=240000)
@@ -194,11 +200,7 @@ def test_on_a_large_image_a_sketch_shows_first_and_the_exact_view_replaces_it(qt
 def test_conv_readouts_come_from_the_helper_process_and_equal_the_core(qtbot, window, tmp_path, chelsea):
     # The conv encoder runs in a helper process (workbench.remote); its numbers must still
     # be the core's own for the same settings (shipped model, scikit-image's "chelsea").
-    d = tmp_path / "one"
-    d.mkdir()
-    Image.fromarray(chelsea[:96, :128]).save(d / "cat.png")
-    _open(qtbot, window, d)
-    window.panel.method.setCurrentIndex(window.panel.method.findData("conv"))
+    d = _open_with_conv(qtbot, window, tmp_path, chelsea[:96, :128])
     s = window.panel.settings()
     core = _core_numbers(d / "cat.png", s)
     qtbot.waitUntil(lambda: _settled(window, core) and window.panel.settings().method == "conv", timeout=120000)
