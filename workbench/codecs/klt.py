@@ -40,6 +40,14 @@ class Analysis:
     settings: object
     _sketch_step: tuple | None = None  # ((step, count), synthesis, dequantised coefficients)
 
+    @property
+    def directions(self) -> int:
+        """How many components a basis fitted on these patches can carry: one per patch,
+        less each plane's mean. Beyond that the eigenvalues are rounding noise, and the
+        quantised vectors of an inline basis would make the analysis ill-conditioned
+        (large, cancelling coefficients in every component)."""
+        return max(1, sum(p.shape[0] * p.shape[1] - 1 for p in self.patches))
+
 
 @dataclass
 class Coded:
@@ -81,8 +89,10 @@ def synthesise(q, synthesis, step, means, shapes, block):
 def _matrices(a: Analysis, kept: int, step: float):
     """``(ints, bits, synthesis, analysis)`` for ``kept`` components at ``step``: the stored
     basis integers and precisions (inline basis only, else None), the decoder's synthesis
-    vectors (kept x n) and the float32 analysis matrix already divided by the step (n x kept)."""
+    vectors (kept x n) and the float32 analysis matrix already divided by the step (n x kept).
+    With an inline basis ``kept`` is capped at :attr:`Analysis.directions`."""
     if a.inline:
+        kept = min(kept, a.directions)
         ints, bits = klt.quantise_vectors(a.basis, kept, step)
         synthesis = klt.dequantise_vectors(ints, bits)
         analysis_m = np.linalg.pinv(synthesis)
@@ -97,13 +107,14 @@ def _matrices(a: Analysis, kept: int, step: float):
 # slope of a uniform quantiser at high rate (2 ln 2 / 12 = 0.116) and, from memory, what
 # H.264's reference encoder uses (0.85 * 2**((QP - 12) / 3) = 0.13 * Qstep**2).
 RD_LAMBDA = 0.13
-SPARSE = 0.02  # trailing components with non-zeros in fewer patches than this are candidates
+SPARSE = 0.02  # shared basis: trailing components with non-zeros in fewer patches are candidates
 COEF_BITS = 6.0  # rough cost of a lone non-zero coefficient far down a patch (token, sign, extent)
 
 
 def rd_kept(q: list[np.ndarray], bits: np.ndarray | None, n: int) -> int:
     """How many leading components to keep: the count that minimises distortion + lambda x
-    rate over the sparse trailing components.
+    rate (over every component with an inline basis, over the sparse trailing ones with a
+    shared basis).
 
     A component costs its stored basis vector (``n`` values of ``bits[k]`` bits each, inline
     bases only) and its few non-zero coefficients; dropping it adds about ``q**2`` squared
@@ -118,8 +129,11 @@ def rd_kept(q: list[np.ndarray], bits: np.ndarray | None, n: int) -> int:
     used = np.flatnonzero(counts)
     last = int(used[-1]) + 1 if used.size else 1
     patches = sum(qp.shape[0] * qp.shape[1] for qp in q)
-    dense = np.flatnonzero(counts[:last] >= SPARSE * patches)
-    first = max(1, int(dense[-1]) + 1 if dense.size else 1)  # components below this stay
+    if bits is not None:  # every stored vector is at stake
+        first = 1
+    else:  # only coefficient bits are: dense components always pay for themselves
+        dense = np.flatnonzero(counts[:last] >= SPARSE * patches)
+        first = max(1, int(dense[-1]) + 1 if dense.size else 1)  # components below this stay
     if first >= last:
         return last
     value = np.zeros(last)  # error avoided by coding component k, in squared steps
