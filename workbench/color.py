@@ -175,6 +175,5 @@ def to_pixels(planes: list[np.ndarray], shape: tuple[int, int], chroma: str, bit
         terms = _chroma_terms(cb, cr, r0, r1, w, chroma)
         cv2.merge([cv2.addWeighted(t, gain, y[r0:r1], gain, 0.0, dtype=depth) for t in terms], dst=out[r0:r1])
 
-    for _ in _pool().map(strip, range(0, h, STRIP)):
-        pass
+    list(_pool().map(strip, range(0, h, STRIP)))  # waits, and re-raises a strip's error
     return out

@@ -24,6 +24,12 @@ from .imagefiles import SourceImage, write_atomic
 from .settings import Settings
 
 KEEP = 4  # fitted images the helper keeps (each holds its latents)
+METHODS = frozenset({"conv"})  # methods whose work the app hands to this module
+
+
+def handles(method: str) -> bool:
+    """Whether the app runs ``method``'s work here, in child processes."""
+    return method in METHODS
 
 # --------------------------------------------------------------- child side
 _previews: OrderedDict = OrderedDict()
@@ -44,7 +50,7 @@ def _shared(model_file):
 
 
 def _warm(model_file) -> None:
-    _shared(model_file)
+    _shared(model_file)  # returns nothing: a model sent back would bring torch into the app
 
 
 def _open(key, img: SourceImage, settings: Settings, model_file) -> int | None:
@@ -171,7 +177,7 @@ class RemotePreview:
 # --------------------------------------------------------------- child jobs
 def save_job(images, settings: Settings, path: Path, protect, model_file=None):
     """Encode ``images`` into the bundle ``path`` (a job, for a child process)."""
-    shared, ref = _shared(model_file) if settings.method == "conv" else (None, None)
+    shared, ref = _shared(model_file) if handles(settings.method) else (None, None)
     result = yield from pipeline.encode_job(images, settings, shared=shared, shared_ref=ref, measure=False)
     write_atomic(path, result.data, protect=protect)
     for r in result.images:  # the parent needs the numbers, not the pixels
@@ -183,5 +189,5 @@ def sheet_job(images, settings: Settings, outdir: Path, protect, model_file=None
     """The quality sheet of ``images`` into ``outdir`` (a job, for a child process)."""
     from . import sheet
 
-    shared, ref = _shared(model_file) if settings.method == "conv" else (None, None)
+    shared, ref = _shared(model_file) if handles(settings.method) else (None, None)
     return (yield from sheet.sheet_job(images, settings, outdir, shared=shared, shared_ref=ref, protect=protect))

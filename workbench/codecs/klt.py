@@ -122,9 +122,9 @@ def rd_kept(q: list[np.ndarray], bits: np.ndarray | None, n: int) -> int:
     would cost 40 stored vectors and make the rate grow as the step grows.
     """
     K = q[0].shape[2]
+    flats = [np.moveaxis(qp, -1, 0).reshape(K, -1) for qp in q]  # component-major underneath: views
     counts = np.zeros(K)
-    for qp in q:
-        flat = np.moveaxis(qp, -1, 0).reshape(K, -1)  # component-major underneath: a view
+    for flat in flats:
         counts += np.count_nonzero(flat, axis=1)
     used = np.flatnonzero(counts)
     last = int(used[-1]) + 1 if used.size else 1
@@ -137,9 +137,8 @@ def rd_kept(q: list[np.ndarray], bits: np.ndarray | None, n: int) -> int:
     if first >= last:
         return last
     value = np.zeros(last)  # error avoided by coding component k, in squared steps
-    for qp in q:
-        flat = np.moveaxis(qp, -1, 0).reshape(K, -1)[first:last]
-        value[first:] += np.einsum("kn,kn->k", flat, flat, dtype=np.float64, casting="unsafe")
+    for flat in flats:
+        value[first:] += np.einsum("kn,kn->k", flat[first:last], flat[first:last], dtype=np.float64, casting="unsafe")
     cost = COEF_BITS * counts[:last]
     if bits is not None:
         cost = cost + n * bits[:last].astype(np.float64)

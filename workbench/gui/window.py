@@ -14,7 +14,7 @@ from PySide6.QtWidgets import (QFileDialog, QHBoxLayout, QLabel, QListWidget, QL
                                QMessageBox, QProgressBar, QPushButton, QSplitter, QToolBar, QVBoxLayout, QWidget)
 
 from .. import __version__, bundle, metrics, pipeline, remote
-from ..errors import BundleError, Cancelled
+from ..errors import Cancelled
 from ..imagefiles import SourceImage, list_inputs, read_many, write_atomic
 from ..settings import Settings
 from . import imaging
@@ -420,7 +420,7 @@ class MainWindow(QMainWindow):
                 basis, raw, _ = get("klt").prepare_shared(
                     [pipeline.image_planes(i, s.chroma) for i in self.images], s)
                 self._shared[skey] = (basis, basis_hash(raw))
-        if s.method == "conv":
+        if remote.handles(s.method):
             return key, self._helper().open(key, img, s, self.conv_model_file)
         shared, ref = self._shared_for(s)
         return key, pipeline.ImagePreview(img, s, shared=shared, shared_ref=ref)
@@ -434,7 +434,7 @@ class MainWindow(QMainWindow):
     def _on_method_highlighted(self, index: int) -> None:
         # The conv encoder's helper needs seconds to start (it imports torch): begin while
         # the user is still choosing.
-        if self.panel.method.itemData(index) == "conv" and self._remote is None:
+        if remote.handles(self.panel.method.itemData(index)) and self._remote is None:
             threading.Thread(target=self._helper().warm, args=(self.conv_model_file,), daemon=True).start()
 
     def _on_fitted(self, _tag, value):
@@ -512,7 +512,7 @@ class MainWindow(QMainWindow):
             return
 
         def work():
-            if s.method == "conv":
+            if remote.handles(s.method):
                 n, rec = self._helper().encode_one(img, s, self.conv_model_file)
                 return img, s, n, rec
             shared, ref = self._shared_for(s)
@@ -660,7 +660,7 @@ class MainWindow(QMainWindow):
         images, protect, path = list(self.images), self._protected(), Path(path)
 
         text = f"saving {path.name}…"
-        if s.method == "conv":  # torch stays out of this process
+        if remote.handles(s.method):  # torch stays out of this process
             return self._start_job(remote.save_job, ("save", path), text,
                                    child_args=(images, s, path, protect, self.conv_model_file))
 
@@ -685,14 +685,12 @@ class MainWindow(QMainWindow):
         except OSError as exc:
             self.notice.show_text(f"Cannot read {path}: {exc.strerror}")
             return False
-        text, tag = f"decoding {path.name}…", ("open", path)
-        try:
-            conv = bundle.parse(data).settings.method == "conv"
-        except BundleError:
-            conv = False  # the decoding job reports what is wrong with it
-        if conv:  # torch stays out of this process
-            return self._start_job(pipeline.decode_job, tag, text, child_args=(data,))
-        return self._start_job(lambda: pipeline.decode_job(data), tag, text)
+        def job():  # the method is read off the GUI thread (parsing checks every CRC)
+            if remote.handles(bundle.parse(data).settings.method):  # torch stays out of this process
+                return self.jobs.in_child(pipeline.decode_job, (data,))
+            return pipeline.decode_job(data)
+
+        return self._start_job(job, ("open", path), f"decoding {path.name}…")
 
     def _show_bundle(self, path, contents, decoded):
         images = [SourceImage(d.name, d.pixels) for d in decoded]
@@ -726,7 +724,7 @@ class MainWindow(QMainWindow):
         images, outdir, protect = list(self.images), Path(outdir), self._protected()
 
         text = "writing the quality sheet…"
-        if s.method == "conv":  # torch stays out of this process
+        if remote.handles(s.method):  # torch stays out of this process
             return self._start_job(remote.sheet_job, ("sheet", outdir), text,
                                    child_args=(images, s, outdir, protect, self.conv_model_file))
 

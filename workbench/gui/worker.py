@@ -250,7 +250,12 @@ class JobRunner(QObject):
 
     def start_child(self, factory, args, tag=None) -> None:
         """Like :meth:`start` for ``factory(*args)`` (picklable), run in a child process."""
-        self.start(lambda: _wait_for_child(factory, args, lambda: self._cancel, self._report), tag)
+        self.start(lambda: self.in_child(factory, args), tag)
+
+    def in_child(self, factory, args):
+        """From inside the running job: ``factory(*args)`` in a child process, with this
+        runner's progress and Cancel; returns its result."""
+        return _wait_for_child(factory, args, lambda: self._cancel, self._report)
 
     def _report(self, p) -> None:  # any thread
         self._signals.progress.emit(p.fraction, p.text)
