@@ -107,3 +107,17 @@ def test_help_lists_the_commands():
     assert r.returncode == 0
     for word in ("encode", "decode", "info", "fit-basis"):
         assert word in r.stdout
+
+
+def test_a_reader_that_stops_early_is_not_an_error(folder, tmp_path):
+    # `workbench info --json | head -c 10`: the reader closes the pipe; Python's docs ("Note
+    # on SIGPIPE") say to go quiet then rather than print a traceback or an error line.
+    out = tmp_path / "b.wbundle"
+    assert _run("encode", folder / "cat.png", "-o", out).returncode == 0
+    p = subprocess.Popen([sys.executable, "-m", "workbench", "info", str(out), "--json"],
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    p.stdout.close()  # the reader is gone before anything is written
+    with p.stderr:
+        err = p.stderr.read().decode()
+    p.wait(timeout=60)
+    assert "error" not in err and "Traceback" not in err

@@ -99,3 +99,21 @@ def test_atomic_write_refuses_to_replace_a_source(tmp_path, camera):
     with pytest.raises(InputError, match="source image"):
         imagefiles.write_atomic(p, b"xx", protect={p})
     assert p.read_bytes() == before and not list(tmp_path.glob(".*part"))
+
+
+def test_atomic_write_removes_stale_temporaries_of_a_killed_writer(tmp_path):
+    # A writer killed between creating its temporary file and the rename leaves it behind;
+    # the next successful write of that name removes ours once they are clearly stale, and
+    # keeps a fresh one (a writer that may still be running).
+    import os
+    import time
+
+    target = tmp_path / "x.wbundle"
+    stale, fresh = tmp_path / ".x.wbundle.abc.part", tmp_path / ".x.wbundle.def.part"
+    stale.write_bytes(b"half")
+    fresh.write_bytes(b"half")
+    old = time.time() - imagefiles.STALE_PART_SECONDS - 60
+    os.utime(stale, (old, old))
+    imagefiles.write_atomic(target, b"new")
+    assert target.read_bytes() == b"new"
+    assert not stale.exists() and fresh.exists()

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 from pathlib import Path
 
@@ -244,6 +245,12 @@ def main(argv=None) -> int:
         a = parser.parse_args(["gui"])
     try:
         return a.func(a)
+    except BrokenPipeError:
+        # The reader of our output went away (``| head``): not an error of ours. Point
+        # stdout at devnull so the interpreter's final flush stays quiet (Python's docs, "Note
+        # on SIGPIPE", signal module).
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 1
     except (WorkbenchError, OSError) as exc:
         msg = str(exc).splitlines()[0] if str(exc) else exc.__class__.__name__
         print(f"error: {msg}", file=sys.stderr)

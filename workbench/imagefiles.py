@@ -233,12 +233,45 @@ def write_atomic(path: str | os.PathLike, data: bytes, *, protect: set[Path] | N
             f.flush()
             os.fsync(f.fileno())
         os.replace(tmp, path)
+        _sync_folder(path.parent)
     except BaseException:
         try:
             os.unlink(tmp)
         except FileNotFoundError:
             pass
         raise
+    _remove_stale_parts(path)
+
+
+STALE_PART_SECONDS = 600.0  # a temporary file this old belongs to a writer that was killed
+
+
+def _sync_folder(folder: Path) -> None:
+    """fsync the folder so the rename itself survives a power cut (POSIX; a no-op elsewhere)."""
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass  # some file systems refuse fsync on a directory
+    finally:
+        os.close(fd)
+
+
+def _remove_stale_parts(path: Path) -> None:
+    """Remove temporary files of earlier, killed writes of ``path`` (ours by their name)."""
+    import glob
+    import time
+
+    now = time.time()
+    for part in path.parent.glob(f".{glob.escape(path.name)}.*.part"):
+        try:
+            if now - part.stat().st_mtime > STALE_PART_SECONDS:
+                part.unlink()
+        except OSError:
+            pass
 
 
 def encode_png(pixels: np.ndarray) -> bytes:
