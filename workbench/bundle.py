@@ -19,13 +19,19 @@ import re
 from dataclasses import dataclass
 
 from . import container
-from .errors import BundleError
+from .errors import BundleError, InputError
+from .names import name_problem
 from .settings import Settings
 
 MAGIC = b"WKBUNDLE"
 VERSION = 3  # 2: coefficient streams coded in lockstep (coefcode); 3: first pass as a row hierarchy
-MAX_PIXELS = 1 << 27
+MAX_SIDE = 65536
+MAX_IMAGE_PIXELS = 1 << 27  # one image
+MAX_PIXELS = 1 << 28  # default budget for all images of one bundle together (raise it per call)
+MAX_IMAGES = 4096
 _HEX64 = re.compile(r"^[0-9a-f]{64}$")
+_TOP_KEYS = {"format", "version", "tool", "settings", "images", "basis_sha256"}
+_ENTRY_KEYS = {"name", "width", "height", "bits", "channels", "sha256", "chunk", "alpha_chunk"}
 
 
 @dataclass
@@ -71,45 +77,90 @@ def assemble(meta: dict, shared: bytes | None, payloads: list[bytes], alphas: li
     return container.pack(MAGIC, VERSION, chunks)
 
 
+def check_images(specs, *, max_pixels: int = MAX_PIXELS, error=BundleError) -> None:
+    """Check what a bundle may hold: the one rule shared by the encoder and the decoder.
+
+    Parameters
+    ----------
+    specs : list of (name, width, height, bits, channels)
+    max_pixels : int
+        Budget for the declared pixels of all images together, checked before any work
+        (the decoder's answer to a small file that declares huge images).
+    error : type
+        :class:`BundleError` when reading a file, :class:`InputError` when encoding.
+    """
+    if len(specs) > MAX_IMAGES:
+        raise error(f"a bundle holds at most {MAX_IMAGES} images, got {len(specs)}")
+    names, total = set(), 0
+    for i, (name, w, h, bits, ch) in enumerate(specs):
+        problem = name_problem(name)
+        if problem:
+            raise error(f"image {i} has an invalid name: {problem}")
+        label = name
+        if name in names:
+            raise error(f"{label}: the name is used twice in one bundle")
+        names.add(name)
+        if not (1 <= w <= MAX_SIDE and 1 <= h <= MAX_SIDE and w * h <= MAX_IMAGE_PIXELS):
+            raise error(f"{label}: size {w}x{h} is outside what a bundle holds "
+                        f"(sides 1..{MAX_SIDE}, at most {MAX_IMAGE_PIXELS:,} pixels)")
+        if bits not in (8, 16) or ch not in (1, 3):
+            raise error(f"{label}: {bits}-bit {ch}-channel images are not supported")
+        total += w * h
+        if total > max_pixels:
+            raise error(f"the images declare more than {max_pixels:,} pixels in all "
+                        "(raise the pixel budget to open this bundle)")
+
+
 def _field(d: dict, key: str, kind, what: str):
-    if key not in d or not isinstance(d[key], kind) or isinstance(d[key], bool) and kind is not bool:
+    value = d.get(key)
+    if value is None or not isinstance(value, kind) or isinstance(value, bool) and kind is not bool:
         raise BundleError(f"bundle metadata: {what} has a missing or invalid {key!r}")
-    return d[key]
+    return value
 
 
-def parse(data: bytes) -> Contents:
-    """Validate a bundle and return its contents without decoding any image."""
+def parse(data: bytes, *, max_pixels: int = MAX_PIXELS) -> Contents:
+    """Validate a bundle and return its contents without decoding any image.
+
+    Every metadata field is checked for type, range and known keys before anything is built
+    from it, and the declared pixels are held to ``max_pixels`` (see :func:`check_images`).
+    """
     chunks = container.unpack(data, MAGIC, (VERSION,), "workbench bundle")
     if not chunks or chunks[0][0] != b"META":
         raise BundleError("bundle has no metadata chunk")
     meta = container.unpack_json(chunks[0][1], "bundle")
     if not isinstance(meta, dict) or meta.get("format") != "wbundle":
         raise BundleError("bundle metadata is not a workbench bundle description")
+    unknown = set(meta) - _TOP_KEYS
+    if unknown:
+        raise BundleError(f"bundle metadata has unknown fields {sorted(unknown)[:5]}")
     try:
         settings = Settings.from_dict(_field(meta, "settings", dict, "bundle"))
-    except ValueError as exc:
+    except InputError as exc:
         raise BundleError(f"bundle settings are invalid: {exc}") from None
+    if not isinstance(meta.get("tool", ""), str):
+        raise BundleError("bundle metadata has an invalid 'tool'")
     basis_ref = meta.get("basis_sha256")
     if basis_ref is not None and not (isinstance(basis_ref, str) and _HEX64.match(basis_ref)):
         raise BundleError("bundle metadata has an invalid basis reference")
     shared = next((body for tag, body in chunks if tag == b"BASE"), None)
     images = _field(meta, "images", list, "bundle")
-    entries, names = [], set()
+    if len(images) > MAX_IMAGES:
+        raise BundleError(f"a bundle holds at most {MAX_IMAGES} images, this one declares {len(images)}")
+    specs = []
     for i, d in enumerate(images):
-        if not isinstance(d, dict):
-            raise BundleError(f"bundle metadata: image {i} is not an object")
         what = f"image {i}"
-        name = _field(d, "name", str, what)
-        w, h = _field(d, "width", int, what), _field(d, "height", int, what)
-        bits, ch = _field(d, "bits", int, what), _field(d, "channels", int, what)
-        checksum = _field(d, "sha256", str, what)
-        if not (1 <= w <= 65536 and 1 <= h <= 65536 and w * h <= MAX_PIXELS):
-            raise BundleError(f"bundle metadata: {what} has an invalid size {w}x{h}")
-        if bits not in (8, 16) or ch not in (1, 3) or not _HEX64.match(checksum):
-            raise BundleError(f"bundle metadata: {what} has invalid bits/channels/checksum")
-        if not name or len(name) > 1024 or name in names or "\x00" in name:
-            raise BundleError(f"bundle metadata: {what} has an invalid or repeated name")
-        names.add(name)
+        if not isinstance(d, dict):
+            raise BundleError(f"bundle metadata: {what} is not an object")
+        if set(d) - _ENTRY_KEYS:
+            raise BundleError(f"bundle metadata: {what} has unknown fields {sorted(set(d) - _ENTRY_KEYS)[:5]}")
+        specs.append((_field(d, "name", str, what), _field(d, "width", int, what), _field(d, "height", int, what),
+                      _field(d, "bits", int, what), _field(d, "channels", int, what)))
+        if not _HEX64.match(_field(d, "sha256", str, what)):
+            raise BundleError(f"bundle metadata: {what} has an invalid checksum")
+    check_images(specs, max_pixels=max_pixels)
+    entries = []
+    for i, (d, (name, w, h, bits, ch)) in enumerate(zip(images, specs)):
+        what = f"image {i}"
         idx = _field(d, "chunk", int, what)
         if not (0 < idx < len(chunks)) or chunks[idx][0] != b"IMGD":
             raise BundleError(f"bundle metadata: {what} points at a missing image chunk")
@@ -119,5 +170,5 @@ def parse(data: bytes) -> Contents:
             if not (0 < j < len(chunks)) or chunks[j][0] != b"ALFA":
                 raise BundleError(f"bundle metadata: {what} points at a missing alpha chunk")
             alpha = chunks[j][1]
-        entries.append(Entry(name, w, h, bits, ch, checksum, chunks[idx][1], alpha))
+        entries.append(Entry(name, w, h, bits, ch, d["sha256"], chunks[idx][1], alpha))
     return Contents(meta, settings, basis_ref, shared, entries, len(data))

@@ -38,6 +38,14 @@ def _add_codec_options(p: argparse.ArgumentParser) -> None:
     r.add_argument("--target-bpp", type=float, metavar="R", help="per image, the finest step whose rate stays within R bits per pixel")
 
 
+def _add_budget_option(p: argparse.ArgumentParser) -> None:
+    from .bundle import MAX_PIXELS
+
+    p.add_argument("--max-pixels", type=int, default=MAX_PIXELS, metavar="N",
+                   help=f"refuse bundles declaring more than N pixels in all (default {MAX_PIXELS:,}: "
+                        f"{MAX_PIXELS * 6 / 2**30:.1f} GiB of 16-bit RGB)")
+
+
 def settings_from_args(a) -> Settings:
     target = None
     for kind in ("psnr", "ssim", "bpp"):
@@ -91,7 +99,8 @@ def cmd_encode(a) -> int:
     settings = settings_from_args(a)
     shared, ref = _shared_from_args(a)
     images, _ = _read_inputs(a.inputs)
-    job = pipeline.encode_job(images, settings, shared=shared, shared_ref=ref, embed=a.embed_model)
+    job = pipeline.encode_job(images, settings, shared=shared, shared_ref=ref, embed=a.embed_model,
+                              max_pixels=a.max_pixels)
     result = run(job, _progress)
     write_atomic(a.output, result.data, protect=set(list_inputs(a.inputs)))
     if a.json:
@@ -109,21 +118,22 @@ def cmd_encode(a) -> int:
 
 def cmd_decode(a) -> int:
     from . import pipeline
-    from .imagefiles import encode_png, write_atomic
+    from .imagefiles import encode_png, write_all_atomic
+    from .names import output_paths
 
     data = _read_bundle(a.bundle)
     shared, ref = _shared_from_args(a)
-    _, decoded = pipeline.decode(data, shared=shared, shared_ref=ref)
+    _, decoded = pipeline.decode(data, shared=shared, shared_ref=ref, max_pixels=a.max_pixels)
     out = Path(a.output)
-    out.mkdir(parents=True, exist_ok=True)
-    targets = []
-    for d in decoded:
-        t = out / (Path(d.name).stem + ".png")
-        if t.exists() and not a.force:
-            raise WorkbenchError(f"{t} exists; choose another folder or pass --force")
-        targets.append((t, d))
-    for t, d in targets:
-        write_atomic(t, encode_png(d.pixels))
+    targets = [out / p for p in output_paths([d.name for d in decoded])]
+    if not a.force:
+        existing = [t for t in targets if t.exists()]
+        if existing:
+            raise WorkbenchError(f"{existing[0]} exists ({len(existing)} of {len(targets)} outputs do); "
+                                 "choose another folder or pass --force")
+    # Every PNG is staged before any is renamed into place: a full disk leaves OUTDIR as it was.
+    write_all_atomic((t, encode_png(d.pixels)) for t, d in zip(targets, decoded))
+    for t in targets:
         print(f"wrote {t}")
     return 0
 
@@ -138,7 +148,7 @@ def _read_bundle(path) -> bytes:
 def cmd_info(a) -> int:
     from . import bundle
 
-    c = bundle.parse(_read_bundle(a.bundle))
+    c = bundle.parse(_read_bundle(a.bundle), max_pixels=a.max_pixels)
     info = {"bundle": str(a.bundle), "bytes": c.size, "tool": c.meta.get("tool"), "settings": c.settings.to_dict(),
             "basis": "external " + c.basis_ref if c.basis_ref else ("shared in bundle" if c.shared else "per image"),
             "images": [{"name": e.name, "width": e.width, "height": e.height, "bits": e.bits, "channels": e.channels,
@@ -192,6 +202,7 @@ def build_parser() -> argparse.ArgumentParser:
     e.add_argument("inputs", nargs="+", metavar="INPUT", help="image files or folders")
     e.add_argument("-o", "--output", required=True, metavar="OUT.wbundle")
     e.add_argument("--json", action="store_true", help="print one JSON object instead of text")
+    _add_budget_option(e)
     _add_codec_options(e)
     e.set_defaults(func=cmd_encode)
 
@@ -201,11 +212,13 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--basis", metavar="FILE", help="the .wbasis file the bundle was made with, if external")
     d.add_argument("--model", metavar="FILE", help="the .wmodel file the bundle was made with, if not the shipped one")
     d.add_argument("--force", action="store_true", help="replace existing files in OUTDIR")
+    _add_budget_option(d)
     d.set_defaults(func=cmd_decode, method="klt")
 
     i = sub.add_parser("info", help="describe a bundle without decoding it")
     i.add_argument("bundle", metavar="BUNDLE")
     i.add_argument("--json", action="store_true")
+    _add_budget_option(i)
     i.set_defaults(func=cmd_info)
 
     f = sub.add_parser("fit-basis", help="fit one KLT basis on many images of one source")

@@ -26,7 +26,7 @@ from .errors import BundleError
 HEADER = struct.Struct("<8sHHII")
 ENTRY = struct.Struct("<4sIQQ")
 MAX_CHUNKS = 1 << 16
-MAX_JSON = 64 << 20
+MAX_JSON = 4 << 20  # about 10,000 images' entries; a small cap keeps a deflate bomb's objects small
 
 
 def pack(magic: bytes, version: int, chunks: list[tuple[bytes, bytes]]) -> bytes:
@@ -96,5 +96,7 @@ def unpack_json(body: bytes, what: str):
         if d.unconsumed_tail:
             raise BundleError(f"{what} metadata is larger than {MAX_JSON} bytes")
         return json.loads(raw.decode("utf-8"))
-    except (zlib.error, UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise BundleError(f"{what} metadata is unreadable ({exc})") from None
+    except RecursionError:
+        raise BundleError(f"{what} metadata is nested too deeply") from None
+    except (zlib.error, ValueError) as exc:  # ValueError covers bad UTF-8, bad JSON and 5,000-digit numbers
+        raise BundleError(f"{what} metadata is unreadable ({str(exc)[:80]})") from None

@@ -21,8 +21,8 @@ import numpy as np
 from PIL import Image, ImageOps, UnidentifiedImageError
 
 from .errors import InputError
+from .names import IMAGE_SUFFIXES, bundle_names
 
-IMAGE_SUFFIXES = {".png", ".jpg", ".jpeg", ".tif", ".tiff", ".bmp", ".webp", ".gif", ".ppm", ".pgm", ".pnm"}
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
 
@@ -184,7 +184,9 @@ def list_inputs(inputs) -> list[Path]:
             out.append(p)
         else:
             raise InputError(f"{p}: no such file or folder")
-    return out
+    # The same file named twice (``a.png ./a.png``) is one image.
+    seen: set[Path] = set()
+    return [p for p in out if not (p.resolve() in seen or seen.add(p.resolve()))]
 
 
 def read_many(inputs) -> tuple[list[SourceImage], list[tuple[str, str]]]:
@@ -195,14 +197,11 @@ def read_many(inputs) -> tuple[list[SourceImage], list[tuple[str, str]]]:
     images : list of SourceImage
     skipped : list of (name, reason)
     """
-    images, skipped, seen = [], [], set()
-    for path in list_inputs(inputs):
-        name = path.name
-        if name in seen:
-            name = f"{path.parent.name}/{path.name}"
+    images, skipped = [], []
+    paths = list_inputs(inputs)
+    for path, name in zip(paths, bundle_names(paths)):
         try:
             images.append(read_image(path, name))
-            seen.add(name)
         except InputError as exc:
             skipped.append((name, str(exc)))
     return images, skipped
@@ -219,9 +218,43 @@ def write_atomic(path: str | os.PathLike, data: bytes, *, protect: set[Path] | N
     protect : set of Path, optional
         Files that must never be replaced (the sources being compressed).
     """
-    path = Path(path)
-    if protect and path.resolve() in {p.resolve() for p in protect}:
-        raise InputError(f"{path}: refusing to overwrite a source image")
+    write_all_atomic([(path, data)], protect=protect)
+
+
+def write_all_atomic(items, *, protect: set[Path] | None = None) -> None:
+    """Write several files all or nothing: every file to a temporary first, then the renames.
+
+    Parameters
+    ----------
+    items : iterable of (path, bytes)
+        May be a generator, so that each file's bytes exist only while it is written. If
+        anything fails before the renames (a full disk, an error making the next file), no
+        target is touched and every temporary is removed.
+    protect : set of Path, optional
+        Files that must never be replaced (the sources being compressed).
+    """
+    protected = {p.resolve() for p in protect or ()}
+    staged: list[tuple[str, Path]] = []
+    try:
+        for path, data in items:
+            path = Path(path)
+            if path.resolve() in protected:
+                raise InputError(f"{path}: refusing to overwrite a source image")
+            staged.append((_stage(path, data), path))
+    except BaseException:
+        for tmp, _ in staged:
+            _unlink_quietly(tmp)
+        raise
+    for tmp, path in staged:
+        os.replace(tmp, path)
+    for folder in {path.parent for _, path in staged}:
+        _sync_folder(folder)
+    for _, path in staged:
+        _remove_stale_parts(path)
+
+
+def _stage(path: Path, data: bytes) -> str:
+    """``data`` in a synced temporary file beside ``path``; returns the temporary's name."""
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
     umask = os.umask(0)
@@ -232,15 +265,17 @@ def write_atomic(path: str | os.PathLike, data: bytes, *, protect: set[Path] | N
             f.write(data)
             f.flush()
             os.fsync(f.fileno())
-        os.replace(tmp, path)
-        _sync_folder(path.parent)
     except BaseException:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
+        _unlink_quietly(tmp)
         raise
-    _remove_stale_parts(path)
+    return tmp
+
+
+def _unlink_quietly(path) -> None:
+    try:
+        os.unlink(path)
+    except FileNotFoundError:
+        pass
 
 
 STALE_PART_SECONDS = 600.0  # a temporary file this old belongs to a writer that was killed

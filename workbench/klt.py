@@ -43,12 +43,11 @@ CHUNK = 1 << 16  # rows per float32 product: ~1e-5 relative error, ample for a b
 
 
 class CovarianceAccumulator:
-    """Running sums for a patch covariance, fed in batches (float64)."""
+    """Running sums for a patch second-moment matrix, fed in batches (float64)."""
 
     def __init__(self, n: int):
         self.n = n
         self.count = 0
-        self.sum = np.zeros(n)
         self.outer = np.zeros((n, n))
 
     def add(self, patches: np.ndarray) -> None:
@@ -61,14 +60,13 @@ class CovarianceAccumulator:
         # each partial sum stays accurate, and the slices are summed in float64.
         for i in range(0, x.shape[0], CHUNK):
             c = x[i : i + CHUNK]
-            self.sum += c.T @ np.ones(c.shape[0], c.dtype)
             self.outer += c.T @ c
 
-    def covariance(self) -> np.ndarray:
-        if self.count < 2:
-            raise InputError("need at least two patches to fit a basis")
-        mean = self.sum / self.count
-        return self.outer / self.count - np.outer(mean, mean)
+    def second_moment(self) -> np.ndarray:
+        """Mean outer product of the patches as given (one patch is enough)."""
+        if self.count < 1:
+            raise InputError("need at least one patch to fit a basis")
+        return self.outer / self.count
 
 
 def basis_from_covariance(cov: np.ndarray, block: int) -> Basis:
@@ -95,14 +93,17 @@ def fit_basis(patch_sets, block: int) -> Basis:
     """Fit one basis on several patch arrays, each (..., B*B), means removed per array.
 
     Removing each plane's own mean keeps a bright luma plane and a mid-grey chroma plane
-    from inflating the first component when they are pooled.
+    from inflating the first component when they are pooled. The basis diagonalises the
+    second moment about those plane means, which is what the codec codes: the patches'
+    own average pattern is not stored anywhere, so it must be in the basis (and an image
+    of a single patch gets a basis that holds that patch).
     """
     acc = CovarianceAccumulator(block * block)
     for patches in patch_sets:
         x = np.asarray(patches)
         x = x.reshape(-1, block * block).astype(np.float32 if x.dtype == np.float32 else np.float64, copy=False)
         acc.add(x - x.mean())  # numpy's pairwise sum keeps a float32 mean accurate
-    return basis_from_covariance(acc.covariance(), block)
+    return basis_from_covariance(acc.second_moment(), block)
 
 
 def markov_covariance(n: int, rho: float) -> np.ndarray:

@@ -183,7 +183,7 @@ def _overhead_bytes(img: SourceImage, settings: Settings, shared_ref: str | None
 
 
 def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, shared_ref: str | None = None,
-               embed: bool = False, measure: bool = True):
+               embed: bool = False, measure: bool = True, max_pixels: int = bundle.MAX_PIXELS):
     """Generator job: encode ``images`` into one bundle.
 
     Parameters
@@ -193,6 +193,8 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
     shared : object, optional
         An external shared side (a KLT basis from a ``.wbasis`` file, a conv model); the
         bundle then refers to it by ``shared_ref`` (its content hash) instead of carrying it.
+    max_pixels : int
+        The decoder's pixel budget: a bundle it would refuse is refused here, before any work.
 
     Returns
     -------
@@ -200,6 +202,8 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
     """
     if not images:
         raise InputError("nothing to encode: no readable images")
+    bundle.check_images([(i.name, i.width, i.height, i.bits, i.channels) for i in images],
+                        max_pixels=max_pixels, error=InputError)
     codec = codecs.get(settings.method)
     total = len(images) + 1
     shared_bytes = None
@@ -242,6 +246,7 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
         payloads.append(payload)
         alphas.append(None if img.alpha is None else encode_alpha(img.alpha))
     data = bundle.assemble(_meta(settings, images, shared_ref), shared_bytes, payloads, alphas)
+    bundle.parse(data, max_pixels=max_pixels)  # the decoder's own reading, before anyone writes the bytes
     own = [len(p) + (len(a) if a else 0) for p, a in zip(payloads, alphas)]
     overhead = len(data) - sum(own)
     pixels = sum(r.pixels for r in results)
@@ -267,9 +272,12 @@ class Decoded:
     checksum: str
 
 
-def decode_job(data: bytes, *, shared=None, shared_ref: str | None = None):
-    """Generator job: decode every image of a bundle; returns ``(Contents, list[Decoded])``."""
-    contents = bundle.parse(data)
+def decode_job(data: bytes, *, shared=None, shared_ref: str | None = None, max_pixels: int = bundle.MAX_PIXELS):
+    """Generator job: decode every image of a bundle; returns ``(Contents, list[Decoded])``.
+
+    A bundle declaring more than ``max_pixels`` pixels in all is refused before any work.
+    """
+    contents = bundle.parse(data, max_pixels=max_pixels)
     s = contents.settings
     codec = codecs.get(s.method)
     if contents.shared is not None:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import dataclasses
 import json
+import math
 from dataclasses import dataclass
 
 from .errors import InputError
@@ -57,20 +58,20 @@ class Settings:
 
         if self.method not in REGISTRY:
             raise InputError(f"unknown method {self.method!r}; choose one of {', '.join(REGISTRY)}")
-        if self.block not in BLOCK_SIZES:
+        if self.block not in BLOCK_SIZES or not _is(self.block, int):
             raise InputError(f"block size must be one of {BLOCK_SIZES}, got {self.block!r}")
         if self.components is not None and not (1 <= int(self.components) <= self.block**2):
             raise InputError(
                 f"components must be between 1 and {self.block**2} for block {self.block}, "
                 f"got {self.components!r}"
             )
-        if not (0.01 <= float(self.step) <= 4096):
+        if not (0.01 <= _finite(self.step, "step") <= 4096):
             raise InputError(f"step must be between 0.01 and 4096 grey levels, got {self.step!r}")
         if self.chroma not in CHROMA_MODES:
             raise InputError(f"chroma must be one of {CHROMA_MODES}, got {self.chroma!r}")
         if self.basis_scope not in BASIS_SCOPES:
             raise InputError(f"basis scope must be one of {BASIS_SCOPES}, got {self.basis_scope!r}")
-        if not (0.0 < float(self.deadzone) <= 0.5):
+        if not (0.0 < _finite(self.deadzone, "deadzone") <= 0.5):
             raise InputError(f"deadzone rounding offset must be in (0, 0.5], got {self.deadzone!r}")
         if self.latent is not None and int(self.latent) < 1:
             raise InputError(f"latent channels must be at least 1, got {self.latent!r}")
@@ -82,9 +83,9 @@ class Settings:
             if kind not in TARGET_KINDS:
                 raise InputError(f"target kind must be one of {TARGET_KINDS}, got {kind!r}")
             limits = {"psnr": (5.0, 120.0), "ssim": (0.0, 1.0), "bpp": (0.001, 64.0)}[kind]
-            if not (limits[0] < float(value) <= limits[1]):
+            if not (limits[0] < _finite(value, f"target {kind}") <= limits[1]):
                 raise InputError(f"target {kind} must be in ({limits[0]}, {limits[1]}], got {value!r}")
-            object.__setattr__(self, "target", (kind, float(value)))
+            object.__setattr__(self, "target", (kind, _finite(value, "target")))
 
     @property
     def kept(self) -> int:
@@ -102,22 +103,50 @@ class Settings:
 
     @classmethod
     def from_dict(cls, d: dict) -> "Settings":
+        """Settings from stored metadata, every field checked for its JSON type first.
+
+        Raises
+        ------
+        InputError
+            Naming the field, for unknown fields, wrong types (``8.0`` for a block size,
+            ``true`` for a count), non-finite or out-of-range numbers.
+        """
         if not isinstance(d, dict):
             raise InputError("settings must be a JSON object")
-        known = {f.name for f in dataclasses.fields(cls)}
-        unknown = set(d) - known
+        unknown = set(d) - set(_FIELD_TYPES)
         if unknown:
-            raise InputError(f"unknown settings: {sorted(unknown)}")
+            raise InputError(f"unknown settings: {sorted(unknown)[:5]}")
         d = dict(d)
-        if d.get("target") is not None:
-            t = d["target"]
-            if not (isinstance(t, (list, tuple)) and len(t) == 2):
-                raise InputError(f"target must be a [kind, value] pair, got {t!r}")
-            d["target"] = (str(t[0]), float(t[1]))
-        try:
-            return cls(**d)
-        except TypeError as exc:
-            raise InputError(f"bad settings: {exc}") from None
+        for key, kinds in _FIELD_TYPES.items():
+            if key in d and not _is(d[key], kinds):
+                raise InputError(f"setting {key!r} has the wrong type ({type(d[key]).__name__})")
+        t = d.get("target")
+        if t is not None:
+            if not (len(t) == 2 and isinstance(t[0], str) and _is(t[1], (int, float))):
+                raise InputError("setting 'target' must be a [kind, number] pair")
+            d["target"] = (t[0], t[1])
+        return cls(**d)
 
     def cache_key(self) -> str:
         return json.dumps(self.to_dict(), sort_keys=True)
+
+
+# JSON types each stored field may have (bool is not a number here, though Python says it is).
+_FIELD_TYPES = {"method": (str,), "block": (int,), "components": (int, type(None)), "step": (int, float),
+                "chroma": (str,), "basis_scope": (str,), "target": (list, tuple, type(None)),
+                "latent": (int, type(None)), "deadzone": (int, float)}
+
+
+def _is(value, kinds) -> bool:
+    return isinstance(value, kinds) and not isinstance(value, bool)
+
+
+def _finite(value, name: str) -> float:
+    """``value`` as a finite float, or an InputError naming ``name``."""
+    try:
+        f = float(value)
+    except (TypeError, ValueError, OverflowError):
+        raise InputError(f"{name} must be a finite number, got {str(value)[:40]!r}") from None
+    if not math.isfinite(f):
+        raise InputError(f"{name} must be a finite number, got {value!r}")
+    return f
