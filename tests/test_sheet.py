@@ -100,3 +100,22 @@ def test_target_search_reports_the_saving(tmp_path, astronaut, camera):
 def test_output_into_the_source_folder_is_refused(tmp_path, camera):
     Image.fromarray(camera).save(tmp_path / "c.png")
     assert cli.main(["sheet", str(tmp_path), "-o", str(tmp_path)]) == 2
+
+
+def test_a_sheet_that_fails_late_leaves_the_previous_set_untouched(tmp_path, camera, monkeypatch, capsys):
+    from workbench import sheet
+
+    src = tmp_path / "src"
+    src.mkdir()
+    Image.fromarray(camera[:96, :96]).save(src / "c.png")
+    out = tmp_path / "o"
+    args = ["sheet", str(src), "-o", str(out), "--baselines", "jpeg"]
+    assert cli.main(args + ["--step", "4"]) == 0
+    before = {p.name: p.read_bytes() for p in out.iterdir()}
+
+    def disk_full(*a, **k):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(sheet, "_pdf", disk_full)  # the last output to be made
+    assert cli.main(args + ["--step", "12"]) == 2
+    assert {p.name: p.read_bytes() for p in out.iterdir()} == before

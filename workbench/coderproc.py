@@ -9,11 +9,12 @@ resulting size go through the pipe.
 
 from __future__ import annotations
 
-import multiprocessing as mp
-from concurrent.futures import Future, ProcessPoolExecutor
+from concurrent.futures import Future
 from multiprocessing import shared_memory
 
 import numpy as np
+
+from . import jobs
 
 _attached: dict[str, shared_memory.SharedMemory] = {}  # in the child: blocks by name
 
@@ -37,7 +38,7 @@ class CoderProcess:
     """One helper process with a shared block that grows as needed; one task at a time."""
 
     def __init__(self):
-        self._pool = ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("spawn"))
+        self._pool = jobs.pool(1)
         self._shm: shared_memory.SharedMemory | None = None
 
     def submit(self, fn, scalars, arrays) -> Future:

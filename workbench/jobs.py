@@ -56,6 +56,68 @@ def error_text(exc: BaseException) -> str:
     return text.splitlines()[0] if text else type(exc).__name__
 
 
+def end_with_parent(pid: int) -> None:
+    """Make this process exit as soon as process ``pid`` has ended, whatever it is doing.
+
+    For children of ours (pool workers, helpers): when their parent is killed (``kill -9``,
+    a logout's SIGTERM) nothing else tells them, and a pool worker blocked on its queue would
+    live for ever. Runs a daemon thread; use as a pool ``initializer`` with the parent's pid.
+    A pid file descriptor (Linux 5.3+) wakes the thread the moment the parent ends; elsewhere
+    it looks once a second.
+    """
+    import os
+    import threading
+
+    def wait_pidfd(fd):
+        import select
+
+        select.select([fd], [], [])
+
+    def wait_poll():
+        import time
+
+        while True:
+            time.sleep(1.0)
+            try:
+                os.kill(pid, 0)
+            except ProcessLookupError:
+                return
+            except PermissionError:
+                pass
+
+    try:
+        fd = os.pidfd_open(pid)
+        waiter = lambda: wait_pidfd(fd)  # noqa: E731
+    except (AttributeError, OSError):
+        waiter = wait_poll
+
+    def watch():
+        waiter()
+        os._exit(1)
+
+    threading.Thread(target=watch, name="end-with-parent", daemon=True).start()
+
+
+def _pool_worker_start(parent: int) -> None:
+    import signal
+
+    # Ctrl-C reaches the whole process group; the parent alone answers it (and closes the
+    # pool), so workers print no tracebacks of their own.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    end_with_parent(parent)
+
+
+def pool(workers: int, context: str = "spawn"):
+    """A process pool whose workers end with this process (see :func:`end_with_parent`)
+    and leave Ctrl-C to it."""
+    import multiprocessing as mp
+    import os
+    from concurrent.futures import ProcessPoolExecutor
+
+    return ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context(context),
+                               initializer=_pool_worker_start, initargs=(os.getpid(),))
+
+
 def run_in_child(conn, cancel, factory, args) -> None:
     """Body of a child process that runs ``factory(*args)``, a job, for :func:`start_child`.
 
@@ -68,6 +130,7 @@ def run_in_child(conn, cancel, factory, args) -> None:
     from .errors import WorkbenchError
 
     parent = os.getppid()
+    end_with_parent(parent)
 
     def should_stop() -> bool:  # asked to, or the parent has gone (then nobody waits for the result)
         return cancel.is_set() or os.getppid() != parent

@@ -11,14 +11,13 @@ process never imports torch.
 
 from __future__ import annotations
 
-import multiprocessing as mp
 import threading
 from collections import OrderedDict
 from concurrent.futures import CancelledError, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
 
-from . import codecs, pipeline
+from . import codecs, jobs, pipeline
 from .errors import Cancelled, InputError
 from .imagefiles import SourceImage, write_atomic
 from .settings import Settings
@@ -91,7 +90,7 @@ class PreviewProcess:
 
     @staticmethod
     def _start() -> ProcessPoolExecutor:
-        return ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("spawn"))
+        return jobs.pool(1)
 
     def call(self, fn, *args):
         """``fn(*args)`` in the helper. If the helper has died (killed, out of memory), the

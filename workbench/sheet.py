@@ -15,16 +15,14 @@ import hashlib
 import importlib.metadata as md
 import io
 import json
-import multiprocessing
-from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
-from . import __version__, baselines, bdrate, metrics, pipeline
+from . import __version__, baselines, bdrate, jobs, metrics, pipeline
 from .errors import InputError
-from .imagefiles import SourceImage, write_atomic
+from .imagefiles import SourceImage, write_all_atomic
 from .jobs import Progress
 from .settings import Settings
 
@@ -217,7 +215,6 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
     yield Progress(0, total, "encoding the bundle")
     result = yield from _scaled(pipeline.encode_job(images, settings, shared=shared, shared_ref=shared_ref,
                                                     measure=False), 0, 1, total)
-    write_atomic(outdir / "bundle.wbundle", result.data, protect=protect)
     digest = hashlib.sha256(result.data).hexdigest()
     yield Progress(1, total, "decoding the saved bundle")
     _, decoded = pipeline.decode(result.data, shared=shared, shared_ref=shared_ref)
@@ -239,7 +236,7 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
     yield Progress(2, total, "rate–distortion curves")
     shared_bytes = None if shared is None else pipeline.codecs.get(settings.method).shared_to_bytes(shared)
     # forkserver: workers start clean, which is safe from inside the GUI's threads too.
-    pool = ProcessPoolExecutor(max_workers=WORKERS, mp_context=multiprocessing.get_context("forkserver"))
+    pool = jobs.pool(WORKERS, "forkserver")
     with pool:
         futures = [pool.submit(_curves_in_worker, img.name, img.pixels, settings.to_dict(), list(names),
                                shared_bytes, shared_ref) for img in images]
@@ -282,9 +279,11 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
     sheet["totals"]["saving_vs_raw"] = 1 - sheet["totals"]["bundle_bytes"] / sheet["totals"]["raw_bytes"]
     yield Progress(total - 0.5, total, "writing the PDF")
     crops.sort(key=lambda c: c[0])
-    write_atomic(outdir / "sheet.json", json.dumps(_jsonable(sheet), indent=1).encode(), protect=protect)
-    write_atomic(outdir / "sheet.csv", _csv(rows), protect=protect)
-    write_atomic(outdir / "sheet.pdf", _pdf(sheet, rows, crops[:WORST_CROPS]), protect=protect)
+    # All four files are staged before any is renamed, the JSON (which holds the bundle's
+    # SHA-256) last: a failure or a kill leaves the old set, or a new bundle the old JSON disowns.
+    write_all_atomic([(outdir / "bundle.wbundle", result.data), (outdir / "sheet.csv", _csv(rows)),
+                      (outdir / "sheet.pdf", _pdf(sheet, rows, crops[:WORST_CROPS])),
+                      (outdir / "sheet.json", json.dumps(_jsonable(sheet), indent=1).encode())], protect=protect)
     yield Progress(total, total, "done")
     return sheet
 

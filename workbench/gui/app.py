@@ -34,12 +34,31 @@ def create_window(folder=None, store=None):
     return w
 
 
+def quit_on_termination(app) -> None:
+    """SIGTERM (a logout, ``kill PID``) and Ctrl-C close the window as the close button does,
+    so its helpers are shut down; a timer lets Python's signal handler run inside Qt's loop."""
+    import signal
+
+    from PySide6.QtCore import QTimer
+
+    def close(*_):
+        app.closeAllWindows()
+        app.quit()
+
+    signal.signal(signal.SIGTERM, close)
+    signal.signal(signal.SIGINT, close)
+    tick = QTimer(app)
+    tick.timeout.connect(lambda: None)
+    tick.start(250)
+
+
 def main(folder=None) -> int:
     from PySide6.QtWidgets import QApplication
 
     app = QApplication.instance() or QApplication(sys.argv[:1])
     app.setApplicationName("workbench")
     app.setStyleSheet(STYLE)
+    quit_on_termination(app)
     w = create_window(folder)
     w.show()
     return app.exec()
