@@ -12,6 +12,10 @@ from workbench import baselines
 
 @pytest.mark.parametrize("name", ["jpeg", "jpeg2000", "webp", "avif"])
 def test_point_rate_is_the_size_of_pillows_file(name, chelsea):
+    from PIL import features
+
+    if name == "avif" and not features.check("avif"):
+        pytest.skip("this Pillow build has no AVIF codec")
     b = baselines.get(name)
     knob = b.knobs[len(b.knobs) // 2]
     buf = io.BytesIO()

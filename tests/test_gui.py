@@ -261,5 +261,8 @@ def test_highlighting_the_conv_encoder_starts_its_helper_early(qtbot, window):
     # Its helper process needs seconds to start (it imports torch): begin while the user chooses.
     assert window._remote is None
     window.panel.method.highlighted.emit(window.panel.method.findData("conv"))
-    assert window._remote is not None
-    window.panel.method.highlighted.emit(window.panel.method.findData("klt"))  # no second helper
+    first = window._remote
+    assert first is not None
+    window.panel.method.highlighted.emit(window.panel.method.findData("klt"))
+    window.panel.method.highlighted.emit(window.panel.method.findData("conv"))
+    assert window._remote is first  # highlighting again starts no second helper

@@ -98,7 +98,23 @@ def test_atomic_write_refuses_to_replace_a_source(tmp_path, camera):
     before = p.read_bytes()
     with pytest.raises(InputError, match="source image"):
         imagefiles.write_atomic(p, b"xx", protect={p})
-    assert p.read_bytes() == before and not list(tmp_path.glob(".*part"))
+    assert p.read_bytes() == before
+
+
+def test_a_write_that_fails_after_its_temporary_exists_keeps_the_old_file(tmp_path, monkeypatch):
+    import os
+
+    target = tmp_path / "x.wbundle"
+    target.write_bytes(b"old")
+
+    def no_space(fd):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(os, "fsync", no_space)  # fails once the temporary holds the data
+    with pytest.raises(OSError, match="No space"):
+        imagefiles.write_atomic(target, b"new")
+    assert target.read_bytes() == b"old"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["x.wbundle"]
 
 
 def test_atomic_write_removes_stale_temporaries_of_a_killed_writer(tmp_path):
