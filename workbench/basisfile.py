@@ -48,7 +48,8 @@ def basis_from_bytes(data: bytes) -> Basis:
     need = _HEAD.size + 4 * count + 2 * count * n
     if len(data) != need:
         raise BundleError(f"basis chunk has {len(data)} bytes, expected {need}")
-    ev = np.frombuffer(data, "<f4", count, _HEAD.size).astype(np.float64)
+    with np.errstate(invalid="ignore"):  # a signalling NaN warns when widened; it is refused below
+        ev = np.frombuffer(data, "<f4", count, _HEAD.size).astype(np.float64)
     ints = np.frombuffer(data, "<i2", count * n, _HEAD.size + 4 * count).reshape(count, n)
     if not np.all(np.isfinite(ev)):
         raise BundleError("basis eigenvalues are not finite")
@@ -63,14 +64,44 @@ def basis_hash(data: bytes) -> str:
     return hashlib.sha256(data).hexdigest()
 
 
+def basis_file_bytes(basis: Basis, *, sources: list[str] | None = None) -> bytes:
+    """The bytes of a ``.wbasis`` file: metadata (kind, block, content hash, sources) and the basis."""
+    body = basis_to_bytes(basis)
+    meta = {"kind": "klt-basis", "block": basis.block, "sha256": basis_hash(body), "sources": sources or []}
+    return container.pack(MAGIC, VERSION, [(b"META", container.pack_json(meta)), (b"BASE", body)])
+
+
 def save_basis(path: str | Path, basis: Basis, *, sources: list[str] | None = None) -> str:
     """Write a ``.wbasis`` file atomically; returns its content hash."""
     from .imagefiles import write_atomic
 
-    body = basis_to_bytes(basis)
-    meta = {"kind": "klt-basis", "block": basis.block, "sha256": basis_hash(body), "sources": sources or []}
-    write_atomic(path, container.pack(MAGIC, VERSION, [(b"META", container.pack_json(meta)), (b"BASE", body)]))
-    return meta["sha256"]
+    write_atomic(path, basis_file_bytes(basis, sources=sources))
+    return basis_hash(basis_to_bytes(basis))
+
+
+def parse_basis_file(data: bytes) -> tuple[Basis, str]:
+    """Validate a ``.wbasis`` file's bytes; returns the basis and its content hash.
+
+    The metadata must describe the stored basis: its kind, its block size and the SHA-256
+    of the basis chunk (a file whose content was changed under its label is refused).
+    """
+    chunks = dict(container.unpack(data, MAGIC, (VERSION,), "workbench basis file"))
+    if b"BASE" not in chunks or b"META" not in chunks:
+        raise BundleError("basis file lacks its metadata or basis chunk")
+    meta = container.unpack_json(chunks[b"META"], "basis file")
+    body = chunks[b"BASE"]
+    if not isinstance(meta, dict) or meta.get("kind") != "klt-basis":
+        raise BundleError("basis file metadata is not a KLT basis description")
+    basis = basis_from_bytes(body)
+    digest = basis_hash(body)
+    if meta.get("block") != basis.block or isinstance(meta.get("block"), bool):
+        raise BundleError(f"basis file metadata says block {meta.get('block')!r}, its basis has {basis.block}")
+    if meta.get("sha256") != digest:
+        raise BundleError("basis file content does not match its recorded hash")
+    sources = meta.get("sources", [])
+    if not (isinstance(sources, list) and all(isinstance(x, str) for x in sources)):
+        raise BundleError("basis file metadata has an invalid list of sources")
+    return basis, digest
 
 
 def load_basis(path: str | Path) -> tuple[Basis, str]:
@@ -79,8 +110,4 @@ def load_basis(path: str | Path) -> tuple[Basis, str]:
         data = Path(path).read_bytes()
     except OSError as exc:
         raise InputError(f"{path}: cannot read basis file ({exc.strerror})") from None
-    chunks = dict(container.unpack(data, MAGIC, (VERSION,), "workbench basis file"))
-    if b"BASE" not in chunks:
-        raise BundleError("basis file has no basis chunk")
-    body = chunks[b"BASE"]
-    return basis_from_bytes(body), basis_hash(body)
+    return parse_basis_file(data)

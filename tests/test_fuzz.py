@@ -1,0 +1,47 @@
+"""A short seeded run of the structure-aware fuzzer (``fuzzing.py``); the long run with
+time and memory limits is ``benchmarks/bench_fuzz.py``."""
+
+import numpy as np
+import pytest
+from skimage import data
+
+import workbench
+from workbench import basisfile, bundle, codecs, klt, modelfile, pipeline, tiling
+
+import fuzzing
+
+
+def read_bundle(m: bytes):
+    contents, decoded = pipeline.decode(m)
+    for e, d in zip(contents.entries, decoded):
+        assert d.pixels.shape[:2] == (e.height, e.width), "decoded pixels of the wrong size"
+
+
+def _bugs(report):
+    return [(kind, msg) for kind, msg, _ in report.bugs]
+
+
+@pytest.mark.parametrize("settings", [dict(step=4), dict(step=8, basis_scope="folder"), dict(step=3, chroma="444")])
+def test_klt_bundle_mutants_give_only_our_error(settings):
+    # crops of scikit-image's 'astronaut' and 'camera'; one with alpha
+    rgba = np.dstack([data.astronaut()[:40, :56], np.full((40, 56), 200, np.uint8)])
+    b = workbench.compress({"a.png": rgba, "c.png": data.camera()[:24, :32]}, **settings)
+    report = fuzzing.run(read_bundle, b, bundle.MAGIC, bundle.VERSION, seed=1, count=300)
+    assert report.refused > 50 and not report.bugs, _bugs(report)
+
+
+def test_basis_file_mutants_give_only_our_error():
+    basis = klt.fit_basis([tiling.to_patches(data.camera().astype(float), 8)], 8)
+    b = basisfile.basis_file_bytes(basis, sources=["camera"])
+    report = fuzzing.run(basisfile.parse_basis_file, b, basisfile.MAGIC, basisfile.VERSION, seed=2, count=400)
+    assert report.refused > 50 and not report.bugs, _bugs(report)
+
+
+def test_conv_bundle_and_model_file_mutants_give_only_our_error():
+    pytest.importorskip("torch")
+    b = workbench.compress({"a.png": data.astronaut()[:32, :48]}, method="conv", step=6)
+    report = fuzzing.run(read_bundle, b, bundle.MAGIC, bundle.VERSION, seed=3, count=60)
+    model, _ = codecs.get("conv").default_model()
+    conv = codecs.get("conv")
+    report_m = fuzzing.run(conv.shared_from_bytes, model.data.raw, modelfile.MAGIC, modelfile.VERSION, seed=4, count=40)
+    assert not report.bugs and not report_m.bugs, _bugs(report) + _bugs(report_m)
