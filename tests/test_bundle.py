@@ -179,3 +179,19 @@ def test_package_never_unpickles():
     src = pathlib.Path(workbench.__file__).parent
     text = "".join(p.read_text() for p in src.rglob("*.py"))
     assert "import pickle" not in text and "torch.load(" not in text
+
+
+@pytest.mark.parametrize("method", ["klt", "conv"])
+@pytest.mark.parametrize("kind", ["rgba16", "grey-alpha8"])
+def test_alpha_survives_every_codec_and_depth_exactly(method, kind, astronaut, camera16):
+    if method == "conv":
+        pytest.importorskip("torch")
+    if kind == "rgba16":
+        px = astronaut[:48, :64].astype(np.uint16) * 257
+        alpha = np.linspace(0, 65535, 48 * 64).reshape(48, 64).astype(np.uint16)
+    else:
+        px = astronaut[:48, :64, 1]
+        alpha = (np.arange(48 * 64) % 256).reshape(48, 64).astype(np.uint8)
+    out = workbench.decompress(workbench.compress({"a": np.dstack([px, alpha])}, method=method, step=4))["a"]
+    assert out.dtype == px.dtype and out.shape[:2] == (48, 64)
+    assert np.array_equal(out[..., -1], alpha)

@@ -133,3 +133,112 @@ def test_atomic_write_removes_stale_temporaries_of_a_killed_writer(tmp_path):
     imagefiles.write_atomic(target, b"new")
     assert target.read_bytes() == b"new"
     assert not stale.exists() and fresh.exists()
+
+
+# ----------------------------------------------------- files written by other encoders
+
+
+def _rgb16(astronaut):
+    """scikit-image's 'astronaut' spread to 16 bits with low bits that matter."""
+    rng = np.random.default_rng(5)
+    return (astronaut[:96, :128].astype(np.uint16) * 257 + rng.integers(0, 250, (96, 128, 3))).astype(np.uint16)
+
+
+def _alpha16(shape):
+    return np.linspace(0, 65535, shape[0] * shape[1]).reshape(shape).astype(np.uint16)
+
+
+def _cv2_write(path, rgb, alpha=None):
+    import cv2  # OpenCV stores colour as BGR(A)
+
+    px = rgb[..., ::-1] if alpha is None else np.dstack([rgb[..., ::-1], alpha])
+    assert cv2.imwrite(str(path), np.ascontiguousarray(px))
+
+
+def _tifffile_write(path, rgb, alpha=None, **kw):
+    import tifffile
+
+    px = rgb if alpha is None else np.dstack([rgb, alpha])
+    tifffile.imwrite(path, px, photometric="rgb", extrasamples=[] if alpha is None else ["unassalpha"], **kw)
+
+
+@pytest.mark.parametrize("writer, suffix, with_alpha", [
+    (_cv2_write, ".png", False), (_cv2_write, ".png", True), (_cv2_write, ".tif", False), (_cv2_write, ".tif", True),
+    (_tifffile_write, ".tif", False), (_tifffile_write, ".tif", True),
+    (lambda p, rgb, alpha=None: _tifffile_write(p, rgb, alpha, compression="zlib"), ".tif", False),
+], ids=["cv2-png", "cv2-png-alpha", "cv2-tif-lzw", "cv2-tif-alpha", "tifffile", "tifffile-alpha", "tifffile-zlib"])
+def test_16bit_colour_files_of_other_encoders_keep_every_bit(tmp_path, astronaut, writer, suffix, with_alpha):
+    rgb = _rgb16(astronaut)
+    alpha = _alpha16(rgb.shape[:2]) if with_alpha else None
+    p = tmp_path / f"x{suffix}"
+    writer(p, rgb, alpha)
+    img = imagefiles.read_image(p)
+    assert img.pixels.dtype == np.uint16 and np.array_equal(img.pixels, rgb)
+    assert (img.alpha is None) if alpha is None else np.array_equal(img.alpha, alpha)
+
+
+def test_planar_16bit_tiff_is_read_in_pixel_order(tmp_path, astronaut):
+    import tifffile
+
+    rgb = _rgb16(astronaut)
+    tifffile.imwrite(tmp_path / "p.tif", np.moveaxis(rgb, -1, 0), photometric="rgb", planarconfig="separate")
+    assert np.array_equal(imagefiles.read_image(tmp_path / "p.tif").pixels, rgb)
+
+
+def _png_with_filter(rgb16: np.ndarray, ftype: int) -> bytes:
+    """A 16-bit RGB PNG whose every row uses filter ``ftype``: the five filters as defined in
+    ISO/IEC 15948 (PNG), section 9.2, worked on bytes with bpp = 6."""
+    h, w, _ = rgb16.shape
+    raw = rgb16.astype(">u2").tobytes()
+    stride, bpp = w * 6, 6
+    out, prev = bytearray(), bytes(stride)
+    for y in range(h):
+        line = raw[y * stride:(y + 1) * stride]
+        f = bytearray(stride)
+        for i in range(stride):
+            a = line[i - bpp] if i >= bpp else 0
+            b = prev[i]
+            c = prev[i - bpp] if i >= bpp else 0
+            if ftype == 0:
+                pred = 0
+            elif ftype == 1:
+                pred = a
+            elif ftype == 2:
+                pred = b
+            elif ftype == 3:
+                pred = (a + b) // 2
+            else:
+                p = a + b - c
+                pa, pb, pc = abs(p - a), abs(p - b), abs(p - c)
+                pred = a if pa <= pb and pa <= pc else (b if pb <= pc else c)
+            f[i] = (line[i] - pred) & 0xFF
+        out += bytes([ftype]) + f
+        prev = line
+    import struct
+    import zlib
+
+    def chunk(tag, body):
+        return struct.pack(">I", len(body)) + tag + body + struct.pack(">I", zlib.crc32(tag + body))
+
+    ihdr = struct.pack(">IIBBBBB", w, h, 16, 2, 0, 0, 0)
+    return (imagefiles.PNG_SIGNATURE + chunk(b"IHDR", ihdr) + chunk(b"IDAT", zlib.compress(bytes(out)))
+            + chunk(b"IEND", b""))
+
+
+@pytest.mark.parametrize("ftype", [0, 1, 2, 3, 4], ids=["none", "sub", "up", "average", "paeth"])
+def test_every_png_filter_type_reads_as_opencv_reads_it(tmp_path, astronaut, ftype):
+    import cv2
+
+    rgb = _rgb16(astronaut)[:24, :40]
+    p = tmp_path / "f.png"
+    p.write_bytes(_png_with_filter(rgb, ftype))
+    reference = cv2.imread(str(p), cv2.IMREAD_UNCHANGED)[..., ::-1]  # libpng through OpenCV
+    assert np.array_equal(reference, rgb)
+    assert np.array_equal(imagefiles.read_image(p).pixels, rgb)
+
+
+def test_grey_with_alpha_from_pillow_keeps_both_planes(tmp_path, camera):
+    alpha = (np.arange(camera.size) % 251).reshape(camera.shape).astype(np.uint8)
+    p = _save(tmp_path, "la.png", Image.fromarray(np.dstack([camera, alpha]), "LA"))
+    img = imagefiles.read_image(p)
+    assert np.array_equal(img.pixels, camera) and np.array_equal(img.alpha, alpha)

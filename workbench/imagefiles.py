@@ -3,7 +3,8 @@
 Accepted: 8- and 16-bit grey, RGB and RGBA (and grey + alpha). Palette, 1-bit, CMYK and
 other colour modes are converted to RGB(A) or grey by Pillow; EXIF orientation is applied.
 Alpha is carried losslessly. Pillow's decompression-bomb guard stays on. 16-bit colour PNGs
-(which Pillow cannot hold) are read and written by the small PNG codec below (ISO/IEC 15948).
+(which Pillow cannot hold) are read and written by the small PNG codec below (ISO/IEC 15948);
+16-bit colour TIFFs are read with tifffile.
 """
 
 from __future__ import annotations
@@ -24,6 +25,7 @@ from .errors import InputError
 from .names import IMAGE_SUFFIXES, bundle_names
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
+TIFF_SIGNATURES = {b"II*\x00", b"MM\x00*", b"II+\x00", b"MM\x00+"}  # classic and BigTIFF
 
 
 @dataclass
@@ -155,6 +157,8 @@ def read_image(path: str | os.PathLike, name: str | None = None) -> SourceImage:
             head = f.read(32)
         if head.startswith(PNG_SIGNATURE) and _png_is_16bit_colour(path):
             return _read_png16(path, name)
+        if head[:4] in TIFF_SIGNATURES and _tiff_is_16bit_colour(path):
+            return _read_tiff16(path, name)
         with warnings.catch_warnings():
             # Pillow warns about damaged metadata in files it can still read; those files are
             # fine to use. The bomb warning, though, is an answer: refuse the file.
@@ -343,6 +347,35 @@ def _png_chunks(data: bytes):
             raise InputError("truncated PNG chunk")
         yield tag, body
         pos += 12 + length
+
+
+def _tiff_is_16bit_colour(path: Path) -> bool:
+    import tifffile
+
+    with tifffile.TiffFile(path) as t:
+        page = t.pages[0]
+        return page.bitspersample == 16 and page.samplesperpixel >= 3
+
+
+def _read_tiff16(path: Path, name: str) -> SourceImage:
+    """16-bit colour TIFF (Pillow reads it as 8-bit): tifffile, first image of the file."""
+    import tifffile
+
+    with tifffile.TiffFile(path) as t:
+        page = t.pages[0]
+        h, w, n = page.imagelength, page.imagewidth, page.samplesperpixel
+        if h * w > Image.MAX_IMAGE_PIXELS:
+            raise InputError(f"{name}: refused as a possible decompression bomb ({w}x{h})")
+        if n > 4:
+            raise InputError(f"{name}: {n} samples per pixel; only RGB and RGBA colour TIFFs are supported")
+        a = page.asarray()
+    if a.dtype != np.uint16:
+        raise InputError(f"{name}: {a.dtype} TIFF samples are not supported (unsigned 16-bit expected)")
+    if a.ndim == 3 and a.shape[0] == n and a.shape[-1] != n:  # planar (one plane per sample)
+        a = np.moveaxis(a, 0, -1)
+    if a.shape != (h, w, n):
+        raise InputError(f"{name}: TIFF image data has shape {a.shape}, expected {(h, w, n)}")
+    return SourceImage(name, a[..., :3].copy(), a[..., 3].copy() if n == 4 else None)
 
 
 def _png_is_16bit_colour(path: Path) -> bool:
