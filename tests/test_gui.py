@@ -266,3 +266,49 @@ def test_highlighting_the_conv_encoder_starts_its_helper_early(qtbot, window):
     window.panel.method.highlighted.emit(window.panel.method.findData("klt"))
     window.panel.method.highlighted.emit(window.panel.method.findData("conv"))
     assert window._remote is first  # highlighting again starts no second helper
+
+
+def test_a_real_slider_drag_gives_readouts_that_match_the_saved_file(qtbot, window, tmp_path, chelsea):
+    # Every read-out against an outside reference: PSNR and SSIM by scikit-image on the
+    # pixels decoded from the file the app saves at that setting (SSIM with the settings of
+    # Wang et al. 2004: Gaussian window sigma 1.5, population covariances), bytes and rate
+    # from that file's size.
+    from PySide6.QtCore import QPoint
+    from PySide6.QtTest import QTest
+    from PySide6.QtWidgets import QStyle, QStyleOptionSlider
+    from skimage.metrics import peak_signal_noise_ratio, structural_similarity
+
+    d = tmp_path / "one"
+    d.mkdir()
+    Image.fromarray(chelsea).save(d / "cat.png")
+    _open(qtbot, window, d)
+    qtbot.waitUntil(lambda: window.last_numbers is not None, timeout=30000)
+    slider = window.panel.count
+    opt = QStyleOptionSlider()
+    slider.initStyleOption(opt)
+    handle = slider.style().subControlRect(QStyle.ComplexControl.CC_Slider, opt,
+                                           QStyle.SubControl.SC_SliderHandle, slider).center()
+    QTest.mousePress(slider, Qt.MouseButton.LeftButton, Qt.KeyboardModifier.NoModifier, handle)
+    for frac in (0.8, 0.5, 0.3, 0.15):
+        QTest.mouseMove(slider, QPoint(int(slider.width() * frac), handle.y()))
+        qtbot.wait(30)
+    QTest.mouseRelease(slider, Qt.MouseButton.LeftButton, Qt.KeyboardModifier.NoModifier,
+                       QPoint(int(slider.width() * 0.15), handle.y()))
+    kept = slider.value()
+    assert 1 < kept < slider.maximum() // 2  # the drag moved the setting
+    qtbot.waitUntil(lambda: _settled(window, window.panel.settings()) and window.last_numbers.kept <= kept,
+                    timeout=30000)
+    out = tmp_path / "saved.wbundle"
+    with qtbot.waitSignal(window.jobs.finished, timeout=60000):
+        assert window.save_bundle(out)
+    assert cli.main(["decode", str(out), "-o", str(tmp_path / "dec")]) == 0
+    dec = read_image(tmp_path / "dec" / "cat.png").pixels
+    size, pixels = out.stat().st_size, chelsea.shape[0] * chelsea.shape[1]
+    r = window.panel.readouts
+    assert r["psnr"].text() == f"{peak_signal_noise_ratio(chelsea, dec, data_range=255):.2f} dB"
+    sk = structural_similarity(chelsea, dec, gaussian_weights=True, sigma=1.5, use_sample_covariance=False,
+                               data_range=255, channel_axis=2)
+    assert r["ssim"].text() == f"{sk:.4f}"
+    assert r["bytes"].text() == f"{size:,} bytes"
+    assert r["bpp"].text() == f"{8 * size / pixels:.3f}"
+    assert r["ratio"].text() == f"{chelsea.nbytes / size:.1f} : 1"

@@ -120,3 +120,50 @@ def test_a_sheet_that_fails_late_leaves_the_previous_set_untouched(tmp_path, cam
     monkeypatch.setattr(sheet, "_pdf", disk_full)  # the last output to be made
     assert cli.main(args + ["--step", "12"]) == 2
     assert {p.name: p.read_bytes() for p in out.iterdir()} == before
+
+
+def _group_members(pgid: int) -> list[int]:
+    """Live (not zombie) processes of a process group, from /proc (Linux's proc(5) stat fields)."""
+    import os
+
+    out = []
+    for entry in os.listdir("/proc"):
+        if entry.isdigit():
+            try:
+                with open(f"/proc/{entry}/stat") as f:
+                    fields = f.read().rsplit(")", 1)[1].split()
+            except OSError:
+                continue
+            if fields[0] != "Z" and int(fields[2]) == pgid:
+                out.append(int(entry))
+    return out
+
+
+@pytest.mark.skipif(not __import__("sys").platform.startswith("linux"), reason="reads /proc")
+def test_ctrl_c_ends_a_sheet_with_one_line_no_outputs_and_no_children(tmp_path, astronaut):
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    src = tmp_path / "src"
+    src.mkdir()
+    for i in range(4):
+        Image.fromarray(np.roll(astronaut, 61 * i, axis=0)).save(src / f"f{i}.png")
+    out = tmp_path / "o"
+    proc = subprocess.Popen([sys.executable, "-m", "workbench", "sheet", str(src), "-o", str(out)],
+                            stderr=subprocess.PIPE, text=True, start_new_session=True)
+    time.sleep(6)  # past the start, into encoding or the curves' worker pool
+    os.killpg(proc.pid, signal.SIGINT)  # as a terminal's Ctrl-C does: the whole process group
+    err = proc.communicate(timeout=120)[1]
+    assert proc.returncode == 130, err
+    assert "Traceback" not in err and err.strip().splitlines()[-1] == "error: interrupted"
+    assert not out.exists() or list(out.iterdir()) == []
+    deadline = time.monotonic() + 5.0  # issue 15's target: nothing of ours alive 5 s later
+    while True:
+        left = _group_members(proc.pid)
+        if not left or time.monotonic() > deadline:
+            break
+        time.sleep(0.1)
+    assert left == []
