@@ -1,5 +1,7 @@
 """Image input: modes, bit depths, orientation, the bomb guard, folder mode."""
 
+import os
+
 import numpy as np
 import pytest
 from PIL import Image
@@ -133,6 +135,21 @@ def test_atomic_write_removes_stale_temporaries_of_a_killed_writer(tmp_path):
     imagefiles.write_atomic(target, b"new")
     assert target.read_bytes() == b"new"
     assert not stale.exists() and fresh.exists()
+
+
+def test_atomic_write_removes_at_once_the_temporary_of_a_writer_that_has_ended(tmp_path):
+    import subprocess
+    import sys
+
+    ended = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
+    dead = int(ended.stdout)
+    target = tmp_path / "x.wbundle"
+    orphan = tmp_path / f".x.wbundle.{dead}-k3j2.part"
+    live = tmp_path / f".x.wbundle.{os.getppid()}-q9z1.part"  # a writer still running (our parent)
+    orphan.write_bytes(b"half")
+    live.write_bytes(b"half")
+    imagefiles.write_atomic(target, b"new")
+    assert not orphan.exists() and live.exists()
 
 
 # ----------------------------------------------------- files written by other encoders

@@ -260,7 +260,8 @@ def write_all_atomic(items, *, protect: set[Path] | None = None) -> None:
 def _stage(path: Path, data: bytes) -> str:
     """``data`` in a synced temporary file beside ``path``; returns the temporary's name."""
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+    # The writer's pid in the name tells a later writer whether this temporary's owner is gone.
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.{os.getpid()}-", suffix=".part", dir=path.parent)
     umask = os.umask(0)
     os.umask(umask)
     try:
@@ -300,17 +301,32 @@ def _sync_folder(folder: Path) -> None:
 
 
 def _remove_stale_parts(path: Path) -> None:
-    """Remove temporary files of earlier, killed writes of ``path`` (ours by their name)."""
+    """Remove temporary files of earlier, killed writes of ``path`` (ours by their name):
+    those whose writing process has ended, and any older than ``STALE_PART_SECONDS``."""
     import glob
     import time
 
     now = time.time()
-    for part in path.parent.glob(f".{glob.escape(path.name)}.*.part"):
+    prefix = f".{path.name}."
+    for part in path.parent.glob(f"{glob.escape(prefix)}*.part"):
+        owner = part.name[len(prefix):].split("-", 1)[0]
         try:
-            if now - part.stat().st_mtime > STALE_PART_SECONDS:
+            if (owner.isdigit() and not _process_alive(int(owner))) or now - part.stat().st_mtime > STALE_PART_SECONDS:
                 part.unlink()
         except OSError:
             pass
+
+
+def _process_alive(pid: int) -> bool:
+    if pid == os.getpid():
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except (PermissionError, OSError):
+        return True  # someone else's process, or no way to tell: keep the file
+    return True
 
 
 def encode_png(pixels: np.ndarray) -> bytes:
