@@ -104,7 +104,7 @@ def test_output_into_the_source_folder_is_refused(tmp_path, camera):
 
 
 def test_a_sheet_that_fails_late_leaves_the_previous_set_untouched(tmp_path, camera, monkeypatch, capsys):
-    from workbench import sheet
+    from workbench import sheetpdf
 
     src = tmp_path / "src"
     src.mkdir()
@@ -117,7 +117,7 @@ def test_a_sheet_that_fails_late_leaves_the_previous_set_untouched(tmp_path, cam
     def disk_full(*a, **k):
         raise OSError(28, "No space left on device")
 
-    monkeypatch.setattr(sheet, "_pdf", disk_full)  # the last output to be made
+    monkeypatch.setattr(sheetpdf, "render", disk_full)  # the last output to be made
     assert cli.main(args + ["--step", "12"]) == 2
     assert {p.name: p.read_bytes() for p in out.iterdir()} == before
 

@@ -368,9 +368,12 @@ def _png_chunks(data: bytes):
 def _tiff_is_16bit_colour(path: Path) -> bool:
     import tifffile
 
-    with tifffile.TiffFile(path) as t:
-        page = t.pages[0]
-        return page.bitspersample == 16 and page.samplesperpixel >= 3
+    try:
+        with tifffile.TiffFile(path) as t:
+            page = t.pages[0]
+            return page.bitspersample == 16 and page.samplesperpixel >= 3
+    except Exception:  # noqa: BLE001 - a damaged TIFF: Pillow's reading below says what is wrong
+        return False
 
 
 def _read_tiff16(path: Path, name: str) -> SourceImage:
@@ -384,7 +387,10 @@ def _read_tiff16(path: Path, name: str) -> SourceImage:
             raise InputError(f"{name}: refused as a possible decompression bomb ({w}x{h})")
         if n > 4:
             raise InputError(f"{name}: {n} samples per pixel; only RGB and RGBA colour TIFFs are supported")
-        a = page.asarray()
+        try:
+            a = page.asarray()
+        except Exception as exc:  # noqa: BLE001 - tifffile and its codecs raise many kinds
+            raise InputError(f"{name}: not a readable TIFF ({exc.__class__.__name__}: {exc})") from None
     if a.dtype != np.uint16:
         raise InputError(f"{name}: {a.dtype} TIFF samples are not supported (unsigned 16-bit expected)")
     if a.ndim == 3 and a.shape[0] == n and a.shape[-1] != n:  # planar (one plane per sample)

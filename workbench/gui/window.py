@@ -16,6 +16,7 @@ from PySide6.QtWidgets import (QFileDialog, QHBoxLayout, QLabel, QListWidget, QL
 from .. import __version__, bundle, metrics, pipeline, remote
 from ..errors import Cancelled
 from ..imagefiles import SourceImage, list_inputs, read_many, write_atomic
+from ..notices import CAUTION
 from ..settings import Settings
 from . import imaging
 from .panel import SidePanel
@@ -24,8 +25,6 @@ from .worker import JobRunner, Lane
 
 ICONS = Path(__file__).resolve().parents[2] / "icons"
 SAMPLES = Path(__file__).resolve().parents[2] / "sample_images"
-CAUTION = ("Lossy compression discards information. Where images are evidence, records or used for "
-           "diagnosis, lossy storage may be restricted: follow local regulations and professional guidelines.")
 THUMB = 96
 SKETCH_MIN_PIXELS = 1_000_000  # below this the exact preview follows a slider quickly enough
 PREVIEW_CACHE = 3  # fitted transforms kept (each holds the image's patches: ~100 MB at 4 Mpixel)

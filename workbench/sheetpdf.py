@@ -1,0 +1,160 @@
+"""The quality sheet's PDF pages, drawn with matplotlib from the sheet's own numbers."""
+
+from __future__ import annotations
+
+import io
+
+from . import baselines
+from .notices import CAUTION
+
+COLOURS = {"ours": "#1b7f5e", "jpeg": "#c0392b", "jpeg2000": "#7d5ba6", "webp": "#d68910", "avif": "#2e86c1"}
+A4 = (8.27, 11.69)
+
+
+def _page(fig, sheet, number):
+    fig.text(0.06, 0.975, f"{sheet['title']} — {sheet['date']}", fontsize=8, color="#555555", va="top")
+    fig.text(0.94, 0.975, f"page {number}", fontsize=8, color="#555555", va="top", ha="right")
+    fig.text(0.06, 0.02, "Caution: " + CAUTION, fontsize=6.5, color="#7a4b00", wrap=True)
+
+
+def _fmt(v, spec):
+    if v is None:
+        return "–"
+    if isinstance(v, str):
+        return v
+    if v == float("inf"):
+        return "inf"
+    return format(v, spec)
+
+
+def render(sheet: dict, rows, crops, tile: int) -> bytes:
+    """The sheet's PDF: summary and folder curves, the per-image table, per-image curves and
+    the worst tiles (``crops``: (tile PSNR, source image, decoded pixels, x, y), ``tile`` px)."""
+    from matplotlib.backends.backend_pdf import PdfPages
+    from matplotlib.figure import Figure
+
+    buf = io.BytesIO()
+    pages = 0
+    with PdfPages(buf) as pdf:
+        # 1. summary
+        fig = Figure(figsize=A4)
+        pages += 1
+        _page(fig, sheet, pages)
+        s = sheet["settings"]
+        t = sheet["totals"]
+        lines = [
+            f"workbench {sheet['versions']['workbench']}   bundle {sheet['bundle']['file']}: "
+            f"{sheet['bundle']['bytes']:,} bytes, sha256 {sheet['bundle']['sha256'][:32]}…",
+            f"Method {s['method']}, block {s['block']}, components {s['components'] or 'all'}, chroma {s['chroma']}, "
+            f"basis {s['basis_scope']}, " + (f"target {s['target'][0]} {s['target'][1]}" if s["target"] else f"step {s['step']}"),
+            f"{t['images']} images, {t['pixels'] / 1e6:.2f} Mpixel; raw {t['raw_bytes'] / 1e6:.2f} MB -> bundle "
+            f"{t['bundle_bytes'] / 1e6:.3f} MB (saving {100 * t['saving_vs_raw']:.1f} %)",
+            "Libraries: " + ", ".join(f"{k} {v}" for k, v in sheet["versions"].items() if k != "workbench"),
+        ]
+        if t["passed"] is not None:
+            fl = sheet["floors"]
+            lines.append(f"Floors: PSNR >= {fl['psnr']}  SSIM >= {fl['ssim']}:  {t['passed']} of {t['images']} images pass")
+        ts = sheet["target_search"]
+        if ts and ts["unreachable"]:
+            lines.append(f"Cannot reach {ts['kind']} >= {ts['floor']} at any step: " + ", ".join(ts["unreachable"]))
+        if ts and ts["tuned_bytes"] is not None:
+            lines.append(f"Target {ts['kind']} >= {ts['floor']}: per-image steps {ts['tuned_bytes']:,.0f} bytes; one step "
+                         f"({ts['one_step']:.3g}) for all {ts['one_step_bytes']:,} bytes -> saving "
+                         f"{100 * ts['saving_vs_one_step']:.1f} %" + (
+                             f"; JPEG at the same floor {ts['jpeg_bytes']:,.0f} bytes -> saving {100 * ts['saving_vs_jpeg']:.1f} %"
+                             if ts["jpeg_bytes"] else ""))
+        if sheet["skipped"]:
+            lines.append("Skipped (unreadable): " + ", ".join(x["name"] for x in sheet["skipped"]))
+        fig.text(0.06, 0.94, "Quality sheet", fontsize=18, weight="bold", va="top")
+        y = 0.905
+        for line in lines:
+            fig.text(0.06, y, line, fontsize=7.5, va="top", wrap=True)
+            y -= 0.024
+        folder = sheet["folder"]
+        for j, key in enumerate(("psnr", "ssim")):
+            ax = fig.add_axes([0.1, 0.44, 0.82, 0.27] if j == 0 else [0.1, 0.1, 0.82, 0.27])
+            for name, pts in folder["curves"].items():
+                ax.plot([p["bpp"] for p in pts], [p[key] for p in pts], "o-", ms=3, color=COLOURS.get(name, "k"),
+                        label="ours (" + s["method"] + ")" if name == "ours" else baselines.BASELINES[name].label)
+            ax.set_xlabel("bits per pixel (whole file)")
+            ax.set_ylabel("mean PSNR (dB)" if key == "psnr" else "mean SSIM")
+            ax.grid(alpha=0.3)
+            ax.legend(fontsize=7)
+            bd = ", ".join(f"{n}: {_fmt(v[key], '+.1f')} %" for n, v in folder["bd_rate"].items())
+            ax.set_title(f"Folder ({len(folder['images'])} of {len(rows)} images: those every codec carries), "
+                         f"{key.upper()} vs rate.\nBD-rate of ours ({key.upper()}): {bd}", fontsize=8)
+        pdf.savefig(fig)
+
+        # 2. per-image table
+        cols = ["name", "size", "bytes", "bpp", "ratio", "PSNR", "SSIM", "worst tile", "at", "pass"]
+        per_page = 34
+        for start in range(0, len(rows), per_page):
+            fig = Figure(figsize=A4)
+            pages += 1
+            _page(fig, sheet, pages)
+            fig.text(0.06, 0.94, "Per image (measured on the decoded bundle)", fontsize=13, weight="bold", va="top")
+            ax = fig.add_axes([0.04, 0.06, 0.92, 0.84])
+            ax.axis("off")
+            cell = [[r.name[:28], f"{r.width}x{r.height}", f"{r.bytes:,.0f}", f"{r.bpp:.3f}", f"{r.ratio:.1f}",
+                     _fmt(r.psnr, ".2f"), _fmt(r.ssim, ".4f"), _fmt(r.worst_tile_psnr, ".2f"),
+                     f"{r.worst_tile_x},{r.worst_tile_y}", {None: "–", True: "pass", False: "FAIL"}[r.passed]]
+                    for r in rows[start:start + per_page]]
+            # the name column is wide enough for 28 characters at this size
+            widths = [0.23, 0.09, 0.09, 0.07, 0.07, 0.07, 0.08, 0.09, 0.12, 0.06]
+            tab = ax.table(cellText=cell, colLabels=cols, loc="upper center", cellLoc="right", colWidths=widths)
+            tab.auto_set_font_size(False)
+            tab.set_fontsize(6.5)
+            tab.scale(1, 1.25)
+            pdf.savefig(fig)
+
+        # 3. per-image RD curves
+        per = 6
+        for start in range(0, len(rows), per):
+            fig = Figure(figsize=A4)
+            pages += 1
+            _page(fig, sheet, pages)
+            fig.text(0.06, 0.94, "Rate–distortion per image (PSNR; star = saved setting)", fontsize=13,
+                     weight="bold", va="top")
+            for i, r in enumerate(rows[start:start + per]):
+                ax = fig.add_axes([0.1 + (i % 2) * 0.45, 0.66 - (i // 2) * 0.29, 0.37, 0.22])
+                for name, pts in r.curves.items():
+                    ax.plot([p["bpp"] for p in pts], [min(p["psnr"], 99) for p in pts], "o-", ms=2.5,
+                            color=COLOURS.get(name, "k"), label=name)
+                ax.plot([r.bpp], [min(r.psnr, 99)], "*", ms=10, color=COLOURS["ours"])
+                bd = " ".join(f"{n} {_fmt(v['psnr'], '+.0f')}%" for n, v in r.bd.items())
+                ax.set_title(f"{r.name[:30]}\nBD-rate: {bd}", fontsize=6.5)
+                ax.tick_params(labelsize=6)
+                ax.set_xlabel("bpp", fontsize=6)
+                ax.grid(alpha=0.3)
+                if i == 0:
+                    ax.legend(fontsize=5.5)
+            pdf.savefig(fig)
+
+        # 4. worst tiles
+        fig = Figure(figsize=A4)
+        pages += 1
+        _page(fig, sheet, pages)
+        fig.text(0.06, 0.94, f"Worst {tile}-pixel tiles: original | reconstruction | difference x8", fontsize=13,
+                 weight="bold", va="top")
+        from matplotlib.patches import Rectangle
+
+        from .display import difference, display_rgb
+
+        for i, (tp, img, px, x, y) in enumerate(crops):
+            pad = tile
+            y0, x0 = max(0, y - pad), max(0, x - pad)
+            y1, x1 = min(img.height, y + tile + pad), min(img.width, x + tile + pad)
+            o, rc = img.pixels[y0:y1, x0:x1], px[y0:y1, x0:x1]
+            for j, (arr, label) in enumerate(((display_rgb(o), "original"), (display_rgb(rc), "reconstruction"),
+                                              (difference(o, rc, img.peak, 8.0), "difference"))):
+                ax = fig.add_axes([0.06 + j * 0.3, 0.78 - i * 0.125, 0.27, 0.11])
+                ax.imshow(arr, interpolation="nearest")
+                ax.add_patch(Rectangle((x - x0 - 0.5, y - y0 - 0.5), tile, tile, fill=False, ec="white", lw=0.8))
+                ax.set_xticks([])
+                ax.set_yticks([])
+                if j == 0:
+                    ax.set_ylabel(f"{img.name[:16]}\n({x},{y}) {tp:.1f} dB", fontsize=6)
+                if i == 0:
+                    ax.set_title(label, fontsize=8)
+        pdf.savefig(fig)
+    return buf.getvalue()
