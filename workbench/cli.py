@@ -36,6 +36,26 @@ def _add_codec_options(p: argparse.ArgumentParser) -> None:
     r.add_argument("--target-psnr", type=float, metavar="DB", help="per image, the coarsest step whose PSNR reaches DB")
     r.add_argument("--target-ssim", type=float, metavar="S", help="per image, the coarsest step whose SSIM reaches S")
     r.add_argument("--target-bpp", type=float, metavar="R", help="per image, the finest step whose rate stays within R bits per pixel")
+    r.add_argument("--target-measures", action="store_true",
+                   help="per image, the coarsest step at which every --measure stays within its tolerances")
+    m = p.add_argument_group("measurements on original and reconstruction")
+    m.add_argument("--measure", metavar="LIST", default="",
+                   help="comma-separated: spots, regions, edges and/or FILE.py defining measure(pixels) -> dict "
+                        "(a FILE.py runs as your own code, with your rights)")
+    m.add_argument("--tolerance", action="append", default=[], metavar="NAME.KEY<=V",
+                   help="replace a default tolerance, e.g. spots.shift_px<=0.3 or regions.dice>=0.99 (repeatable)")
+
+
+def measures_from_args(a):
+    """The measurements asked for, or None; --target-measures without --measure is an error."""
+    from . import measures
+
+    chosen = measures.parse(a.measure, a.tolerance) if a.measure else None
+    if a.target_measures and not chosen:
+        raise WorkbenchError("--target-measures needs --measure")
+    if a.tolerance and not chosen:
+        raise WorkbenchError("--tolerance needs --measure")
+    return chosen
 
 
 def _add_budget_option(p: argparse.ArgumentParser) -> None:
@@ -99,19 +119,25 @@ def cmd_encode(a) -> int:
     settings = settings_from_args(a)
     shared, ref = _shared_from_args(a)
     images, _ = _read_inputs(a.inputs)
+    chosen = measures_from_args(a)
     job = pipeline.encode_job(images, settings, shared=shared, shared_ref=ref, embed=a.embed_model,
-                              max_pixels=a.max_pixels)
+                              max_pixels=a.max_pixels, measures=chosen, target_measures=a.target_measures)
     result = run(job, _progress)
     write_atomic(a.output, result.data, protect=set(list_inputs(a.inputs)))
     if a.json:
         print(json.dumps({"bundle": str(a.output), "bytes": result.size,
-                          "images": [{k: r.summary()[k] for k in ("name", "width", "height", "bpp", "psnr", "ssim")}
+                          "images": [{**{k: r.summary()[k] for k in ("name", "width", "height", "bpp", "psnr", "ssim")},
+                                      **({} if r.measured is None else
+                                         {"measures": r.measured.values, "measures_ok": r.measured.ok})}
                                      for r in result.images]}))
     else:
         for r in result.images:
             note = "" if r.target_met in (None, True) else "  (target not reached)"
             print(f"{r.name}: {r.width}x{r.height}  {r.bpp:.3f} bpp  PSNR {r.psnr:.2f} dB  SSIM {r.ssim:.4f}  "
                   f"step {r.step:.3g}{note}")
+            if r.measured is not None:
+                verdict = "within tolerance" if r.measured.ok else "OUT OF TOLERANCE: " + "; ".join(r.measured.failed)
+                print(f"    {r.measured.summary()}  ({verdict})")
         print(f"wrote {a.output} ({result.size} bytes)")
     return 0
 

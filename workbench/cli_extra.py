@@ -5,7 +5,8 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-from .cli import _add_codec_options, _progress, _read_inputs, _shared_from_args, command, settings_from_args
+from .cli import (_add_codec_options, _progress, _read_inputs, _shared_from_args, command, measures_from_args,
+                  settings_from_args)
 from .errors import InputError
 
 
@@ -28,6 +29,7 @@ def cmd_sheet(a) -> int:
     from .sheet import sheet_job
 
     settings = settings_from_args(a)
+    measures_from_args(a)  # checked here, rebuilt from the text in each worker
     names = [n.strip() for n in a.baselines.split(",") if n.strip()]
     shared, ref = _shared_from_args(a)
     images, skipped = _read_inputs(a.inputs)
@@ -37,13 +39,20 @@ def cmd_sheet(a) -> int:
         raise InputError(f"{out}: choose an output folder other than the source folder")
     sheet = run(sheet_job(images, settings, out, baseline_names=names, require_psnr=a.require_psnr,
                           require_ssim=a.require_ssim, shared=shared, shared_ref=ref, protect=sources,
-                          skipped=skipped), _progress)
+                          skipped=skipped, measures=(a.measure, list(a.tolerance)) if a.measure else None,
+                          target_measures=a.target_measures), _progress)
     t = sheet["totals"]
     print(f"wrote {out}/sheet.pdf, sheet.csv, sheet.json and bundle.wbundle "
           f"({t['bundle_bytes']:,} bytes for {t['images']} images, {100 * t['saving_vs_raw']:.1f} % smaller than raw)")
     for n, v in sheet["folder"]["bd_rate"].items():
         bd = v["psnr"]
         print(f"  BD-rate (PSNR) against {n}: {'n/a' if bd is None else f'{bd:+.1f} %'}")
+    safe = sheet.get("safe_point")
+    if safe:
+        print(f"  measurements within tolerance from {safe['folder_bpp']:.3f} bpp for every image "
+              f"({safe['images_safe']} of {t['images']} images have a safe point on the swept curve)"
+              if safe["folder_bpp"] is not None else
+              f"  measurements: {safe['images_safe']} of {t['images']} images have a safe point on the swept curve")
     ts = sheet["target_search"]
     if ts and ts["tuned_bytes"] is not None:
         print(f"  per-image search saves {100 * ts['saving_vs_one_step']:.1f} % against one step for all images"

@@ -13,6 +13,7 @@ import cv2
 import numpy as np
 
 from . import __version__, bundle, codecs, color, metrics
+from . import measures as measures_mod
 from .errors import BundleError, InputError
 from .imagefiles import SourceImage
 from .jobs import Progress, run
@@ -82,6 +83,7 @@ class ImageResult:
     bytes: float = 0.0
     bpp: float = 0.0
     target_met: bool | None = None
+    measured: object | None = None  # measures.Outcome of the saved reconstruction, when measured
 
     @property
     def pixels(self) -> int:
@@ -183,7 +185,8 @@ def _overhead_bytes(img: SourceImage, settings: Settings, shared_ref: str | None
 
 
 def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, shared_ref: str | None = None,
-               embed: bool = False, measure: bool = True, max_pixels: int = bundle.MAX_PIXELS):
+               embed: bool = False, measure: bool = True, max_pixels: int = bundle.MAX_PIXELS,
+               measures=None, target_measures: bool = False):
     """Generator job: encode ``images`` into one bundle.
 
     Parameters
@@ -195,6 +198,11 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
         bundle then refers to it by ``shared_ref`` (its content hash) instead of carrying it.
     max_pixels : int
         The decoder's pixel budget: a bundle it would refuse is refused here, before any work.
+    measures : list of workbench.measures.Measure, optional
+        Run on each original and its reconstruction; the outcome is in each result.
+    target_measures : bool
+        Search each image's step for the coarsest at which every measurement's checks hold
+        (bisection, as for a PSNR target; it assumes the checks fail beyond some step).
 
     Returns
     -------
@@ -221,7 +229,14 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
         analysis = codec.analyse(planes, settings, shared)
         met = None
         step = settings.step
-        if settings.target is not None:
+        mref = None if not measures else measures_mod.Reference(measures, img.pixels, img.peak)
+        if target_measures and mref is not None:
+            def passes(s):
+                rec = planes_to_pixels(codec.quantise(analysis, s).planes, img.pixels.shape[:2], settings.chroma,
+                                       img.bits)
+                return 1.0 if mref.judge(rec).ok else 0.0
+            step, met = search_step(passes, "psnr", 0.5)
+        elif settings.target is not None:
             kind, value = settings.target
             overhead = 8 * _overhead_bytes(img, settings, shared_ref)
             if kind == "bpp":
@@ -234,15 +249,16 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
         coded = codec.quantise(analysis, step)
         payload = codec.serialise(coded)
         p = s = float("nan")
-        full = None
-        if measure:
+        full = outcome = None
+        if measure or mref is not None:
             rec = planes_to_pixels(coded.planes, img.pixels.shape[:2], settings.chroma, img.bits)
+            outcome = None if mref is None else mref.judge(rec)
             full = rec if img.alpha is None else SourceImage(img.name, rec, img.alpha).full()
             p = metrics.psnr(img.pixels, rec, data_range=img.peak)
             if min(img.height, img.width) > 11:
                 s = metrics.ssim(img.pixels, rec, data_range=img.peak)
         results.append(ImageResult(img.name, img.width, img.height, img.bits, img.channels, len(payload),
-                                   coded.step, coded.kept, p, s, full, target_met=met))
+                                   coded.step, coded.kept, p, s, full, target_met=met, measured=outcome))
         payloads.append(payload)
         alphas.append(None if img.alpha is None else encode_alpha(img.alpha))
     data = bundle.assemble(_meta(settings, images, shared_ref), shared_bytes, payloads, alphas)
@@ -316,17 +332,20 @@ class RDPoint:
     bpp: float
     psnr: float
     ssim: float
+    measured: object | None = None  # measures.Outcome, when rd_points was given a reference
 
 
 DEFAULT_STEPS = (2.0, 3.0, 4.5, 6.5, 9.5, 14.0, 20.0, 30.0, 44.0, 64.0)
 
 
 def rd_points(img: SourceImage, settings: Settings, steps=None, *, shared=None, shared_ref=None,
-              with_ssim: bool = True, ssim_ref=None) -> list[RDPoint]:
+              with_ssim: bool = True, ssim_ref=None, measure_ref=None) -> list[RDPoint]:
     """Rate–distortion points of one image, each the size of a real one-image bundle.
 
     The transform is fitted once; each step is quantised, entropy-coded and laid out as a
-    complete bundle whose length is the rate.
+    complete bundle whose length is the rate. With ``measure_ref`` (a
+    :class:`workbench.measures.Reference` of this image) each point also says what the
+    measurements found in its reconstruction.
     """
     codec = codecs.get(settings.method)
     steps = steps or getattr(codec, "default_steps", DEFAULT_STEPS)
@@ -342,7 +361,8 @@ def rd_points(img: SourceImage, settings: Settings, steps=None, *, shared=None, 
         out.append(RDPoint(coded.step, size, 8 * size / (img.width * img.height),
                            metrics.psnr(img.pixels, rec, data_range=img.peak),
                            float("nan") if not with_ssim else ssim_ref.ssim(rec) if ssim_ref is not None
-                           else metrics.ssim(img.pixels, rec, data_range=img.peak)))
+                           else metrics.ssim(img.pixels, rec, data_range=img.peak),
+                           None if measure_ref is None else measure_ref.judge(rec)))
     return sorted(out, key=lambda p: p.bpp)
 
 

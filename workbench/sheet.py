@@ -21,6 +21,7 @@ from pathlib import Path
 import numpy as np
 
 from . import __version__, baselines, bdrate, jobs, metrics, pipeline, sheetpdf
+from . import measures as _measures
 from .errors import InputError
 from .imagefiles import SourceImage, write_all_atomic
 from .jobs import Progress
@@ -54,12 +55,21 @@ class ImageRow:
     bd: dict = field(default_factory=dict)
     jpeg_bytes_at_floor: float | None = None
     target_met: bool | None = None
+    measured: object | None = None  # measures.Outcome of the saved reconstruction
+    safe: dict | None = None  # the lowest-rate point of our curve from which every check holds
 
     def table(self) -> dict:
-        return {"name": self.name, "width": self.width, "height": self.height, "bits": self.bits,
-                "bytes": round(self.bytes, 1), "bpp": self.bpp, "ratio": self.ratio, "psnr": self.psnr,
-                "ssim": self.ssim, "worst_tile_psnr": self.worst_tile_psnr, "worst_tile_x": self.worst_tile_x,
-                "worst_tile_y": self.worst_tile_y, "step": self.step, "pass": self.passed}
+        t = {"name": self.name, "width": self.width, "height": self.height, "bits": self.bits,
+             "bytes": round(self.bytes, 1), "bpp": self.bpp, "ratio": self.ratio, "psnr": self.psnr,
+             "ssim": self.ssim, "worst_tile_psnr": self.worst_tile_psnr, "worst_tile_x": self.worst_tile_x,
+             "worst_tile_y": self.worst_tile_y, "step": self.step, "pass": self.passed}
+        if self.measured is not None:
+            t["measures_ok"] = self.measured.ok
+            t["safe_bpp"] = None if self.safe is None else self.safe["bpp"]
+            t["safe_step"] = None if self.safe is None else self.safe["knob"]
+            for name, values in self.measured.values.items():
+                t.update({f"{name}.{k}": v for k, v in values.items()})
+        return t
 
 
 def _versions() -> dict:
@@ -166,7 +176,7 @@ def _jpeg_bytes_meeting(img: SourceImage, kind: str, floor: float) -> float | No
     return best
 
 
-def _curves_in_worker(name, pixels, settings_dict, names, shared_bytes, shared_ref) -> dict:
+def _curves_in_worker(name, pixels, settings_dict, names, shared_bytes, shared_ref, measure_spec=None) -> dict:
     """Process-pool entry: rebuild what cannot travel cheaply (the shared side) and run
     :func:`_curves`. Pillow's encoders and our coder hold the GIL, so threads would not help."""
     import cv2
@@ -179,15 +189,19 @@ def _curves_in_worker(name, pixels, settings_dict, names, shared_bytes, shared_r
     tune_allocator()
     settings = Settings.from_dict(settings_dict)
     shared = None if shared_bytes is None else codecs.get(settings.method).shared_from_bytes(shared_bytes)
-    return _curves(SourceImage(name, pixels), settings, names, shared, shared_ref)
+    return _curves(SourceImage(name, pixels), settings, names, shared, shared_ref, measure_spec)
 
 
-def _curves(img: SourceImage, settings: Settings, names, shared, shared_ref) -> dict:
+def _curves(img: SourceImage, settings: Settings, names, shared, shared_ref, measure_spec=None) -> dict:
     ours_settings = settings.replace(target=None)
     steps = SHEET_STEPS if settings.method == "klt" else None
     ref = metrics.SSIMReference(img.pixels, data_range=img.peak) if min(img.height, img.width) > 11 else None
-    pts = pipeline.rd_points(img, ours_settings, steps, shared=shared, shared_ref=shared_ref, ssim_ref=ref)
-    curves = {"ours": [{"bpp": p.bpp, "psnr": p.psnr, "ssim": p.ssim, "bytes": p.bytes, "knob": p.step} for p in pts]}
+    mref = None if measure_spec is None else _measures.Reference(_measures.parse(*measure_spec), img.pixels, img.peak)
+    pts = pipeline.rd_points(img, ours_settings, steps, shared=shared, shared_ref=shared_ref, ssim_ref=ref,
+                             measure_ref=mref)
+    curves = {"ours": [{"bpp": p.bpp, "psnr": p.psnr, "ssim": p.ssim, "bytes": p.bytes, "knob": p.step,
+                        **({} if p.measured is None else {"ok": p.measured.ok, "measures": p.measured.values})}
+                       for p in pts]}
     lo, hi = pts[0].bpp, pts[-1].bpp
     for n in names:
         b = baselines.get(n)
@@ -204,16 +218,23 @@ def _finite(v):
 
 def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline_names=("jpeg", "jpeg2000", "webp", "avif"),
               require_psnr: float | None = None, require_ssim: float | None = None, shared=None, shared_ref=None,
-              protect=None, skipped=()):
-    """Generator job writing the bundle and the sheet into ``outdir``; returns the sheet dict."""
+              protect=None, skipped=(), measures: tuple[str, list[str]] | None = None, target_measures: bool = False):
+    """Generator job writing the bundle and the sheet into ``outdir``; returns the sheet dict.
+
+    ``measures`` is the text of the measurements and tolerances (:func:`workbench.measures.parse`):
+    run on every original and reconstruction of the curves, giving each image's safe point;
+    with ``target_measures`` each image's step is searched for it.
+    """
     if not images:
         raise InputError("no readable images to report on")
+    chosen = None if measures is None else _measures.parse(*measures)
     names = [baselines.get(n).name for n in baseline_names]
     outdir = Path(outdir)
     total = 4 + len(images)
     yield Progress(0, total, "encoding the bundle")
     result = yield from _scaled(pipeline.encode_job(images, settings, shared=shared, shared_ref=shared_ref,
-                                                    measure=False), 0, 1, total)
+                                                    measure=False, measures=chosen if target_measures else None,
+                                                    target_measures=target_measures), 0, 1, total)
     digest = hashlib.sha256(result.data).hexdigest()
     yield Progress(1, total, "decoding the saved bundle")
     _, decoded = pipeline.decode(result.data, shared=shared, shared_ref=shared_ref)
@@ -229,8 +250,9 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
         ok = None
         if require_psnr is not None or require_ssim is not None:
             ok = (require_psnr is None or p >= require_psnr) and (require_ssim is None or s >= require_ssim)
+        outcome = None if chosen is None else _measures.Reference(chosen, img.pixels, img.peak).judge(px)
         rows.append(ImageRow(img.name, img.width, img.height, img.bits, enc.bytes, enc.bpp, enc.ratio, p, s,
-                             wp, wx, wy, enc.step, ok, target_met=enc.target_met))
+                             wp, wx, wy, enc.step, ok, target_met=enc.target_met, measured=outcome))
         crops.append((wp, img, px, wx, wy))
     yield Progress(2, total, "rate–distortion curves")
     shared_bytes = None if shared is None else pipeline.codecs.get(settings.method).shared_to_bytes(shared)
@@ -238,10 +260,12 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
     pool = jobs.pool(WORKERS, "forkserver")
     with pool:
         futures = [pool.submit(_curves_in_worker, img.name, img.pixels, settings.to_dict(), list(names),
-                               shared_bytes, shared_ref) for img in images]
+                               shared_bytes, shared_ref, measures) for img in images]
         try:
             for i, (row, fut) in enumerate(zip(rows, futures)):
                 row.curves = fut.result()
+                if chosen is not None:
+                    row.safe = _measures.safe_point(row.curves["ours"])
                 for n in names:
                     if n in row.curves:
                         row.bd[n] = {"psnr": _bd(row.curves[n], row.curves["ours"], "psnr"),
@@ -272,6 +296,7 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
         "curves": {r.name: r.curves for r in rows},
         "folder": folder,
         "target_search": search,
+        "safe_point": None if chosen is None else _safe_summary(chosen, rows),
         "skipped": [{"name": n, "reason": why} for n, why in skipped],
         "caution": CAUTION,
     }
@@ -285,6 +310,17 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
                       (outdir / "sheet.json", json.dumps(_jsonable(sheet), indent=1).encode())], protect=protect)
     yield Progress(total, total, "done")
     return sheet
+
+
+def _safe_summary(chosen, rows) -> dict:
+    """Per image and for the folder: the lowest swept rate from which every check holds."""
+    per = {r.name: None if r.safe is None else {"bpp": r.safe["bpp"], "step": r.safe["knob"], "psnr": r.safe["psnr"]}
+           for r in rows}
+    safe = [v for v in per.values() if v is not None]
+    return {"checks": [f"{m.name}: {c.text()}" for m in chosen for c in m.checks], "per_image": per,
+            "images_safe": len(safe), "folder_bpp": max(v["bpp"] for v in safe) if len(safe) == len(rows) else None,
+            "limits": [{"measure": m.name, "key": c.key, "limit": c.limit, "kind": c.kind, "ideal": c.ideal}
+                       for m in chosen for c in m.checks]}
 
 
 def _scaled(job, a, b, total):

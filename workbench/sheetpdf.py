@@ -130,7 +130,11 @@ def render(sheet: dict, rows, crops, tile: int) -> bytes:
                     ax.legend(fontsize=5.5)
             pdf.savefig(fig)
 
-        # 4. worst tiles
+        # 4. measurements against rate
+        if sheet.get("safe_point"):
+            pages = _measure_pages(pdf, sheet, rows, pages)
+
+        # 5. worst tiles
         fig = Figure(figsize=A4)
         pages += 1
         _page(fig, sheet, pages)
@@ -158,3 +162,46 @@ def render(sheet: dict, rows, crops, tile: int) -> bytes:
                     ax.set_title(label, fontsize=8)
         pdf.savefig(fig)
     return buf.getvalue()
+
+
+def _measure_pages(pdf, sheet, rows, pages) -> int:
+    from matplotlib.figure import Figure
+
+    from .measures import Check
+
+    safe = sheet["safe_point"]
+    checks = [(d["measure"], Check(d["key"], d["limit"], d["kind"], d["ideal"])) for d in safe["limits"]]
+    per = 6
+    for start in range(0, len(rows), per):
+        fig = Figure(figsize=A4)
+        pages += 1
+        _page(fig, sheet, pages)
+        fig.text(0.06, 0.94, "Measurements against rate (dashed: the safe operating point)", fontsize=13,
+                 weight="bold", va="top")
+        fig.text(0.06, 0.895, "Each tolerance's share used by the reconstruction: 0 = as in the original, "
+                 "1 = at the limit (above the red line the check fails).", fontsize=7, va="top")
+        fig.text(0.06, 0.915, "Tolerances: " + "; ".join(safe["checks"]), fontsize=7, va="top", wrap=True)
+        for i, r in enumerate(rows[start:start + per]):
+            ax = fig.add_axes([0.1 + (i % 2) * 0.45, 0.64 - (i // 2) * 0.29, 0.37, 0.22])
+            pts = [p for p in r.curves.get("ours", []) if "measures" in p]
+            for j, (name, check) in enumerate(checks):
+                ax.plot([p["bpp"] for p in pts], [min(check.fraction(p["measures"][name]), 3.0) for p in pts], "o-",
+                        ms=2.5, label=f"{name}: {check.text()}", color=MEASURE_COLOURS[j % len(MEASURE_COLOURS)])
+            ax.axhline(1.0, color="#c0392b", lw=0.8)
+            ax.set_ylim(-0.05, 3.05)
+            point = safe["per_image"].get(r.name)
+            if point is not None:
+                ax.axvline(point["bpp"], ls="--", color="#444444", lw=0.8)
+            verdict = "no safe point on the swept curve" if point is None else f"safe from {point['bpp']:.3f} bpp"
+            ax.set_title(f"{r.name[:30]}\n{verdict}", fontsize=6.5)
+            ax.tick_params(labelsize=6)
+            ax.set_xlabel("bpp", fontsize=6)
+            ax.set_ylabel("share of tolerance (capped at 3)", fontsize=6)
+            ax.grid(alpha=0.3)
+            if i == 0:
+                ax.legend(fontsize=5.5)
+        pdf.savefig(fig)
+    return pages
+
+
+MEASURE_COLOURS = ("#1b7f5e", "#2e86c1", "#7d5ba6", "#d68910", "#6b6b6b", "#a04000")
