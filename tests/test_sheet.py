@@ -167,3 +167,28 @@ def test_ctrl_c_ends_a_sheet_with_one_line_no_outputs_and_no_children(tmp_path, 
             break
         time.sleep(0.1)
     assert left == []
+
+
+def test_measurements_give_csv_columns_and_a_safe_point_that_really_passes(tmp_path):
+    from skimage import data
+
+    from workbench import measures
+
+    src = tmp_path / "src"
+    src.mkdir()
+    blobs = (data.binary_blobs(128, blob_size_fraction=0.1, rng=5) * 180 + 30).astype(np.uint8)  # scikit-image
+    Image.fromarray(blobs).save(src / "blobs.png")
+    out = tmp_path / "o"
+    assert cli.main(["sheet", str(src), "-o", str(out), "--baselines", "jpeg", "--measure", "regions,edges",
+                     "--tolerance", "regions.dice>=0.99"]) == 0
+    sheet = json.loads((out / "sheet.json").read_text())
+    point = sheet["safe_point"]["per_image"]["blobs.png"]
+    assert point is not None and "regions: dice >= 0.99" in sheet["safe_point"]["checks"]
+    with open(out / "sheet.csv") as f:
+        row = next(csv.DictReader(f))
+    assert {"measures_ok", "safe_bpp", "regions.dice", "edges.f_score"} <= set(row)
+    # the safe point's step, encoded and decoded for real, keeps every measurement in tolerance
+    ms = measures.parse("regions,edges", ["regions.dice>=0.99"])
+    bundle = pipeline.encode([read_image(src / "blobs.png")], pipeline.Settings(step=point["step"])).data
+    (dec,) = pipeline.decode(bundle)[1]
+    assert measures.Reference(ms, blobs, 255).judge(dec.pixels).ok
