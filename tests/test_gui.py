@@ -312,3 +312,25 @@ def test_a_real_slider_drag_gives_readouts_that_match_the_saved_file(qtbot, wind
     assert r["bytes"].text() == f"{size:,} bytes"
     assert r["bpp"].text() == f"{8 * size / pixels:.3f}"
     assert r["ratio"].text() == f"{chelsea.nbytes / size:.1f} : 1"
+
+
+def test_measurements_follow_the_shown_reconstruction_and_mark_the_spots(qtbot, window, tmp_path):
+    from skimage import data
+
+    from workbench import measures
+
+    d = tmp_path / "frames"
+    d.mkdir()
+    sky = data.hubble_deep_field()[:200, :240]  # scikit-image's bundled 'hubble_deep_field'
+    Image.fromarray(sky).save(d / "sky.png")
+    _open(qtbot, window, d)
+    qtbot.waitUntil(lambda: window._shown is not None and window._shown[1] is not None, timeout=30000)
+    window.panel.measure_boxes["spots"].setChecked(True)
+    window.panel.measure_boxes["regions"].setChecked(True)
+    qtbot.waitUntil(lambda: window.last_measured is not None, timeout=30000)
+    rec = window._shown[1]
+    ref = measures.Reference(measures.parse("spots,regions"), sky, 255)
+    expected = ref.judge(rec)
+    assert window.last_measured.values == expected.values
+    assert window.panel.measure_result.text().startswith(expected.summary())
+    assert len(window.views.views[0].items_shown) == len(ref.marks(rec)) > 0

@@ -118,6 +118,15 @@ class Spots(Measure):
     def find(self, pixels, peak):
         return self.spots(pixels, peak)
 
+    def marks(self, found, pixels, peak) -> list[tuple[float, float, str]]:
+        """``(y, x, kind)`` per spot, kind ``matched``, ``missed`` (original only) or ``spurious``."""
+        test = self.spots(pixels, peak)
+        ia, ib, _ = match_points(found, test, self.radius)
+        out = [(float(y), float(x), "matched") for y, x in np.asarray(found)[ia]]
+        out += [(float(y), float(x), "missed") for i, (y, x) in enumerate(found) if i not in set(ia)]
+        out += [(float(y), float(x), "spurious") for i, (y, x) in enumerate(test) if i not in set(ib)]
+        return out
+
     def compare(self, found, pixels, peak):
         test = self.spots(pixels, peak)
         ia, _, dist = match_points(found, test, self.radius)
@@ -331,6 +340,14 @@ class Reference:
     def __init__(self, measures: list[Measure], pixels: np.ndarray, peak: float):
         self.measures, self.peak = list(measures), float(peak)
         self.found = [m.find(pixels, self.peak) for m in self.measures]
+
+    def marks(self, pixels: np.ndarray) -> list[tuple[float, float, str]]:
+        """Positions to draw over the views (the spots' matched, missed and spurious items)."""
+        out = []
+        for m, f in zip(self.measures, self.found):
+            if hasattr(m, "marks"):
+                out += m.marks(f, pixels, self.peak)
+        return out
 
     def judge(self, pixels: np.ndarray) -> Outcome:
         values, failed = {}, []

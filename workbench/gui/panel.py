@@ -2,9 +2,11 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 from PySide6.QtCore import Qt, Signal
 from PySide6.QtWidgets import (QCheckBox, QComboBox, QDoubleSpinBox, QFormLayout, QGroupBox, QHBoxLayout, QLabel,
-                               QSlider, QSpinBox, QVBoxLayout, QWidget)
+                               QLineEdit, QPushButton, QSlider, QSpinBox, QVBoxLayout, QWidget)
 
 from .. import codecs
 from ..settings import BLOCK_SIZES, Settings
@@ -17,9 +19,14 @@ RATE_RANGES = {"step": (0.05, 1024.0, 2, 0.5), "psnr": (10.0, 99.0, 1, 0.5), "ss
                "bpp": (0.01, 24.0, 3, 0.05)}
 
 
+MEASURE_NOTE = ("A measurement file is Python code: it runs with your own rights, like any script you run. "
+                "Choose only files you trust; bundles never carry one.")
+
+
 class SidePanel(QWidget):
     changed = Signal()
     diff_changed = Signal()
+    measures_changed = Signal()
 
     def __init__(self, parent=None):
         super().__init__(parent)
@@ -79,6 +86,29 @@ class SidePanel(QWidget):
             h.addRow(text, lab)
         outer.addWidget(out_box)
 
+        m_box = QGroupBox("Measurements (original vs reconstruction)")
+        mf = QFormLayout(m_box)
+        self.measure_boxes = {}
+        row = QHBoxLayout()
+        for key, text in (("spots", "Spots"), ("regions", "Regions"), ("edges", "Edges")):
+            box = QCheckBox(text)
+            self.measure_boxes[key] = box
+            row.addWidget(box)
+        self.measure_file_button = QPushButton("Own file…")
+        self.measure_file_button.setToolTip(MEASURE_NOTE)
+        row.addWidget(self.measure_file_button)
+        mf.addRow(row)
+        self.measure_file = None
+        self.tolerances = QLineEdit()
+        self.tolerances.setPlaceholderText("defaults; e.g. spots.shift_px<=0.3, regions.dice>=0.99")
+        mf.addRow("Tolerances", self.tolerances)
+        self.measure_result = QLabel("–")
+        self.measure_result.setObjectName("readout")
+        self.measure_result.setWordWrap(True)
+        self.measure_result.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
+        mf.addRow(self.measure_result)
+        outer.addWidget(m_box)
+
         diff_box = QGroupBox("Difference view")
         d = QFormLayout(diff_box)
         self.diff_mode = QComboBox()
@@ -109,6 +139,10 @@ class SidePanel(QWidget):
             w.currentIndexChanged.connect(self.diff_changed)
         self.gain.valueChanged.connect(self.diff_changed)
         self.worst.toggled.connect(self.diff_changed)
+        for box in self.measure_boxes.values():
+            box.toggled.connect(self.measures_changed)
+        self.tolerances.editingFinished.connect(self.measures_changed)
+        self.measure_file_button.clicked.connect(self._choose_measure_file)
 
     # -------------------------------------------------------------- settings
     def _set_block(self, b: int) -> None:
@@ -206,6 +240,42 @@ class SidePanel(QWidget):
         conv = s.method == "conv"
         self.block.setEnabled(not conv)
         self.scope.setEnabled(not conv)
+
+    # -------------------------------------------------------------- measurements
+    def measure_spec(self) -> tuple[str, list[str]] | None:
+        """The chosen measurements and tolerances as text (see :func:`workbench.measures.parse`)."""
+        names = [k for k, box in self.measure_boxes.items() if box.isChecked()]
+        if self.measure_file:
+            names.append(str(self.measure_file))
+        if not names:
+            return None
+        tol = [t.strip() for t in self.tolerances.text().split(",") if t.strip()]
+        return ",".join(names), tol
+
+    def _choose_measure_file(self) -> None:
+        from PySide6.QtWidgets import QFileDialog, QMessageBox
+
+        if self.measure_file:
+            self.set_measure_file(None)
+            return
+        path, _ = QFileDialog.getOpenFileName(self, "Measurement file", "", "Python files (*.py)")
+        if path and QMessageBox.question(self, "Run your own code?", MEASURE_NOTE + "\n\nUse " + path + "?") \
+                == QMessageBox.StandardButton.Yes:
+            self.set_measure_file(path)
+
+    def set_measure_file(self, path) -> None:
+        self.measure_file = path
+        self.measure_file_button.setText("Own file: " + Path(path).name + " (remove)" if path else "Own file…")
+        self.measures_changed.emit()
+
+    def show_measured(self, outcome, error: str | None = None) -> None:
+        if error:
+            self.measure_result.setText(error)
+        elif outcome is None:
+            self.measure_result.setText("–" if self.measure_spec() is None else "measuring…")
+        else:
+            verdict = "within tolerance" if outcome.ok else "out of tolerance: " + "; ".join(outcome.failed)
+            self.measure_result.setText(f"{outcome.summary()}\n{verdict}")
 
     # -------------------------------------------------------------- read-outs
     def show_numbers(self, n) -> None:

@@ -83,6 +83,26 @@ class ImageView(QGraphicsView):
             self.scene().addItem(r)
             self.marks.append(r)
 
+    # matched / missed / spurious items of a measurement: ring colours of our own
+    ITEM_COLOURS = {"matched": QColor(80, 220, 160), "missed": QColor(255, 170, 40), "spurious": QColor(220, 90, 255)}
+
+    def set_items(self, items) -> None:
+        """Rings at ``(y, x, kind)`` image positions (see :meth:`workbench.measures.Reference.marks`)."""
+        from PySide6.QtWidgets import QGraphicsEllipseItem
+
+        for m in getattr(self, "items_shown", []):
+            self.scene().removeItem(m)
+        self.items_shown = []
+        for y, x, kind in items:
+            pen = QPen(self.ITEM_COLOURS[kind], 0)
+            pen.setCosmetic(True)
+            pen.setWidth(2)
+            ring = QGraphicsEllipseItem(x - 4, y - 4, 8, 8)
+            ring.setPen(pen)
+            ring.setZValue(3)
+            self.scene().addItem(ring)
+            self.items_shown.append(ring)
+
     def wheelEvent(self, event):
         factor = 1.25 if event.angleDelta().y() > 0 else 0.8
         self.zoomed.emit(factor, self.mapToScene(event.position().toPoint()))

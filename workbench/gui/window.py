@@ -13,7 +13,7 @@ from PySide6.QtGui import QAction, QIcon, QKeySequence, QPixmap
 from PySide6.QtWidgets import (QFileDialog, QHBoxLayout, QLabel, QListWidget, QListWidgetItem, QMainWindow,
                                QMessageBox, QProgressBar, QPushButton, QSplitter, QToolBar, QVBoxLayout, QWidget)
 
-from .. import __version__, bundle, metrics, pipeline, remote
+from .. import __version__, bundle, measures, metrics, pipeline, remote
 from ..errors import Cancelled
 from ..imagefiles import SourceImage, list_inputs, read_many, write_atomic
 from ..notices import CAUTION
@@ -77,6 +77,7 @@ class MainWindow(QMainWindow):
         self._numbers: dict = {}
         self._shown = None  # (orig, rec) arrays on screen
         self.last_numbers = None
+        self.last_measured = None
         self.last_error = ""
         self.conv_model_file = None  # a model trained here; None for the shipped one
         self._remote = None  # the helper process of the conv encoder (remote.py), on first use
@@ -103,6 +104,10 @@ class MainWindow(QMainWindow):
         self._exact_tag = None  # (image name, settings) of the exact view on screen
         self._coder = None  # helper process for the read-outs' entropy coding, started on first use
         self._after_sketch = None  # the exact preview waiting for the sketch to be shown
+        self.measure_lane = Lane()
+        self.measure_lane.result.connect(self._on_measured)
+        self.measure_lane.error.connect(lambda _tag, msg: self.panel.show_measured(None, msg))
+        self._measure_refs: OrderedDict = OrderedDict()  # (image, spec) -> measures.Reference, lane thread only
         self.folder_lane, self.model_lane = Lane(), Lane()
         self.folder_lane.result.connect(self._on_folder)
         self.folder_lane.error.connect(self._on_folder_error)
@@ -136,6 +141,7 @@ class MainWindow(QMainWindow):
         self.panel = SidePanel()
         self.panel.changed.connect(self._on_settings_changed)
         self.panel.diff_changed.connect(self._redraw_difference)
+        self.panel.measures_changed.connect(self._measure_shown)
         self.panel.method.highlighted.connect(self._on_method_highlighted)
 
         centre = QWidget()
@@ -226,7 +232,7 @@ class MainWindow(QMainWindow):
         self.store.sync()
         self.jobs.cancel()
         for lane in (self.fit_lane, self.preview_lane, self.target_lane, self.sketch_lane,
-                     self.folder_lane, self.model_lane, self.render_lane):
+                     self.folder_lane, self.model_lane, self.render_lane, self.measure_lane):
             lane.invalidate()
         if self._remote is not None:  # stops a conv computation at once; its waiter gives up
             self._remote.close()
@@ -557,12 +563,46 @@ class MainWindow(QMainWindow):
             self.views.views[0].set_array(imaging.display_rgb(img.pixels))
             self.views.fit()
         self.views.views[1].set_qimage(rendered["rec"])
+        self._measure_shown()
         if rendered["look"] == self._diff_look():
             self.views.views[2].set_qimage(rendered["diff"])
             self.views.views[2].set_marks(rendered["marks"])
             self._update_legend()
         else:
             self._redraw_difference()
+
+    # ------------------------------------------------------------------ measurements
+    def _measure_shown(self):
+        """Run the chosen measurements on the shown original and reconstruction (off the GUI thread)."""
+        spec = self.panel.measure_spec()
+        if spec is None or self._shown is None or self._shown[1] is None or self.current is None:
+            self.panel.show_measured(None)
+            for v in self.views.views:
+                v.set_items([])
+            return
+        img, rec = self.current, self._shown[1]
+        self.panel.show_measured(None)
+
+        def work():
+            key = (img.name, id(img.pixels), repr(spec))
+            ref = self._measure_refs.get(key)
+            if ref is None:
+                ref = measures.Reference(measures.parse(*spec), img.pixels, img.peak)
+                self._measure_refs[key] = ref
+                while len(self._measure_refs) > 4:
+                    self._measure_refs.popitem(last=False)
+            return img, ref.judge(rec), ref.marks(rec)
+
+        self.measure_lane.submit(work, tag=img.name)
+
+    def _on_measured(self, _tag, value):
+        img, outcome, marks = value
+        if img is not self.current:
+            return
+        self.last_measured = outcome
+        self.panel.show_measured(outcome)
+        for v in self.views.views:
+            v.set_items(marks)
 
     def _redraw_difference(self):
         if self._shown is None or self._shown[1] is None:
