@@ -334,3 +334,36 @@ def test_measurements_follow_the_shown_reconstruction_and_mark_the_spots(qtbot, 
     assert window.last_measured.values == expected.values
     assert window.panel.measure_result.text().startswith(expected.summary())
     assert len(window.views.views[0].items_shown) == len(ref.marks(rec)) > 0
+
+
+def test_the_last_folder_is_stored_as_an_absolute_path(qtbot, window, folder, monkeypatch):
+    from pathlib import Path
+
+    monkeypatch.chdir(folder.parent)
+    _open(qtbot, window, Path(folder.name))
+    window.close()
+    assert Path(window.store.value("last_folder")) == folder.resolve()
+
+
+def test_without_samples_beside_it_the_app_makes_the_demo_images_once(tmp_path, monkeypatch):
+    from workbench.demo import samples
+    from workbench.gui import app, window as window_module
+
+    monkeypatch.setattr(window_module, "SAMPLES", tmp_path / "not-here")
+    made = app.demo_folder(tmp_path / "data")
+    assert sorted(p.name for p in made.glob("*.png")) == sorted(samples())
+    stamp = {p.name: p.stat().st_mtime_ns for p in made.glob("*.png")}
+    assert app.demo_folder(tmp_path / "data") == made
+    assert {p.name: p.stat().st_mtime_ns for p in made.glob("*.png")} == stamp  # not made twice
+
+
+def test_z_switches_between_the_whole_image_and_pixel_for_pixel(qtbot, window, folder):
+    _open(qtbot, window, folder)
+    qtbot.waitUntil(lambda: window._shown is not None, timeout=30000)
+    window.views.fit()
+    fitted = window.views.scale
+    assert fitted != 1.0  # the 451-pixel cat fits the offscreen window only when scaled
+    qtbot.keyClick(window, Qt.Key.Key_Z)
+    assert window.views.scale == 1.0 and window.views.views[1].transform().m11() == 1.0
+    qtbot.keyClick(window, Qt.Key.Key_Z)
+    assert window.views.scale == pytest.approx(fitted)

@@ -21,15 +21,39 @@ QToolBar { border: none; spacing: 6px; }
 """
 
 
+def demo_folder(data_dir=None) -> Path:
+    """The demo images: the repository's ``sample_images``, or a copy generated once into the
+    user's application-data folder (an installed package carries no image files)."""
+    from PySide6.QtCore import QStandardPaths
+
+    from .window import SAMPLES
+
+    if SAMPLES.is_dir() and any(SAMPLES.glob("*.png")):
+        return SAMPLES
+    base = data_dir or QStandardPaths.writableLocation(QStandardPaths.StandardLocation.AppDataLocation)
+    target = Path(base or Path.home() / ".workbench") / "demo images"
+    if not any(target.glob("*.png")):
+        from ..demo import write_samples
+
+        write_samples(target)
+    return target
+
+
 def create_window(folder=None, store=None):
-    """Build the window (the QApplication must exist) and open ``folder``, the last folder or the samples."""
-    from .window import SAMPLES, MainWindow
+    """Build the window (the QApplication must exist) and open ``folder``, the last folder or the demo images."""
+    from .window import MainWindow
 
     w = MainWindow(store)
-    target = folder or w.store.value("last_folder") or (SAMPLES if SAMPLES.is_dir() else None)
-    if target and Path(target).is_dir():
+    last = w.store.value("last_folder")
+    if folder:
+        target = folder
+    elif last and Path(last).is_dir():
+        target = last
+    else:
+        target = demo_folder()
+    if Path(target).is_dir():
         w.open_folder(target)
-    elif folder:
+    else:
         w.notice.show_text(f"{folder}: not a folder")
     return w
 

@@ -185,6 +185,13 @@ class Triptych(QWidget):
             v.resetTransform()
         self.scale = 1.0
 
+    def toggle_zoom(self) -> None:
+        """Pixel for pixel when the whole image is shown (or any other zoom), else the whole image."""
+        if self.scale == 1.0:
+            self.fit()
+        else:
+            self.one_to_one()
+
     def set_legend(self, rgb, text: str) -> None:
         self.legend.setPixmap(QPixmap.fromImage(to_qimage(rgb)))
         self.legend_text.setText(text)

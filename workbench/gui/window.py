@@ -180,8 +180,8 @@ class MainWindow(QMainWindow):
         self.act_open_bundle = act("Open bundle…", "open-bundle", self._ask_bundle, "Ctrl+Shift+O")
         self.act_save = act("Save bundle…", "save-bundle", self._ask_save_bundle, "Ctrl+S")
         self.act_sheet = act("Save quality sheet…", "save-sheet", self._ask_save_sheet, "Ctrl+Shift+S")
-        self.act_fit = act("Fit to window", "zoom-fit", self.views.fit, "Ctrl+0")
-        self.act_one = act("Actual pixels (1:1)", "zoom-one", self.views.one_to_one, "Ctrl+1")
+        # One toggle between the whole image and one screen pixel per image pixel.
+        self.act_zoom = act("Whole image ⇄ pixel for pixel", "zoom-toggle", self.views.toggle_zoom, "Z")
         self.act_train = act("Train encoder on this folder…", "train", self._ask_train)
         act_quit = act("Quit", "", self.close, "Ctrl+Q")
         act_about = act("About workbench", "app", self.show_about)
@@ -190,8 +190,7 @@ class MainWindow(QMainWindow):
         for a in (self.act_open, self.act_open_bundle, None, self.act_save, self.act_sheet, None, act_quit):
             m.addSeparator() if a is None else m.addAction(a)
         v = self.menuBar().addMenu("&View")
-        v.addAction(self.act_fit)
-        v.addAction(self.act_one)
+        v.addAction(self.act_zoom)
         t = self.menuBar().addMenu("&Tools")
         t.addAction(self.act_train)
         h = self.menuBar().addMenu("&Help")
@@ -199,7 +198,7 @@ class MainWindow(QMainWindow):
         tb = QToolBar("Main")
         tb.setObjectName("mainToolbar")
         tb.setIconSize(QSize(22, 22))
-        for a in (self.act_open, self.act_open_bundle, self.act_save, self.act_sheet, None, self.act_fit, self.act_one):
+        for a in (self.act_open, self.act_open_bundle, self.act_save, self.act_sheet, None, self.act_zoom):
             tb.addSeparator() if a is None else tb.addAction(a)
         self.addToolBar(tb)
 
@@ -228,7 +227,7 @@ class MainWindow(QMainWindow):
         except ValueError:
             pass
         if self.folder is not None:
-            self.store.setValue("last_folder", str(self.folder))
+            self.store.setValue("last_folder", str(Path(self.folder).resolve()))
         self.store.sync()
         self.jobs.cancel()
         for lane in (self.fit_lane, self.preview_lane, self.target_lane, self.sketch_lane,
@@ -265,7 +264,7 @@ class MainWindow(QMainWindow):
         folder, images, skipped, thumbs = value
         self.loading = False
         self.folder, self.bundle_path = folder, None
-        self.store.setValue("last_folder", str(folder))
+        self.store.setValue("last_folder", str(Path(folder).resolve()))
         self._set_images(images, thumbs)
         if skipped:
             names = ", ".join(n for n, _ in skipped)
