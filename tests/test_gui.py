@@ -367,3 +367,27 @@ def test_z_switches_between_the_whole_image_and_pixel_for_pixel(qtbot, window, f
     assert window.views.scale == 1.0 and window.views.views[1].transform().m11() == 1.0
     qtbot.keyClick(window, Qt.Key.Key_Z)
     assert window.views.scale == pytest.approx(fitted)
+
+
+def test_each_method_keeps_its_own_count_and_conv_shows_the_chroma_it_uses(qtbot, window):
+    p = window.panel
+    p.count.setValue(1)
+    p.chroma.setCurrentIndex(p.chroma.findData("420"))
+    p.method.setCurrentIndex(p.method.findData("conv"))
+    assert p.count.value() == p.count.maximum()  # not the KLT's 1 (a grey picture)
+    assert p.chroma.currentData() == "444" and not p.chroma.isEnabled() and not p.block.isEnabled()
+    assert p.settings().latent == p.count.maximum()
+    p.method.setCurrentIndex(p.method.findData("klt"))
+    assert p.count.value() == 1 and p.chroma.currentData() == "420" and p.chroma.isEnabled()
+
+
+def test_the_energy_curve_separates_counts_near_full_energy():
+    from PySide6.QtCore import QRectF
+
+    from workbench.gui.views import EnergyCurve
+
+    c = EnergyCurve()
+    c.set_data([0.9, 0.99, 0.999, 1.0], 2)
+    ys = [p.y() for p in c.points(QRectF(0, 0, 100, 60))]
+    # left out 1e-1, 1e-2, 1e-3 and (capped) 1e-6: one decade is a tenth of the six shown
+    assert ys == pytest.approx([10.0, 20.0, 30.0, 60.0])

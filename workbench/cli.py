@@ -175,8 +175,9 @@ def cmd_info(a) -> int:
     from . import bundle
 
     c = bundle.parse(_read_bundle(a.bundle), max_pixels=a.max_pixels)
-    info = {"bundle": str(a.bundle), "bytes": c.size, "tool": c.meta.get("tool"), "settings": c.settings.to_dict(),
+    info = {"bundle": str(a.bundle), "bytes": c.size, "tool": c.meta.get("tool"), "settings": c.settings.own(),
             "basis": "external " + c.basis_ref if c.basis_ref else ("shared in bundle" if c.shared else "per image"),
+            "summary": c.settings.describe(),
             "images": [{"name": e.name, "width": e.width, "height": e.height, "bits": e.bits, "channels": e.channels,
                         "alpha": e.alpha is not None, "payload_bytes": len(e.payload), "sha256": e.checksum}
                        for e in c.entries]}
@@ -184,8 +185,10 @@ def cmd_info(a) -> int:
         print(json.dumps(info))
         return 0
     s = c.settings
-    print(f"{a.bundle}: {c.size} bytes, {len(c.entries)} image(s), made by {info['tool']}")
-    print(f"method {s.method}, block {s.block}, components {s.kept}, chroma {s.chroma}, basis {info['basis']}")
+    n = len(c.entries)
+    print(f"{a.bundle}: {c.size} bytes, {n} image{'' if n == 1 else 's'}, made by {info['tool']}")
+    side = "model" if s.method == "conv" else "basis"
+    print(f"{s.describe()}; {side} {info['basis']}")
     for e in info["images"]:
         print(f"  {e['name']}: {e['width']}x{e['height']} {e['bits']}-bit {e['channels']} ch"
               f"{' +alpha' if e['alpha'] else ''}, {e['payload_bytes']} bytes")

@@ -84,6 +84,7 @@ class ImageResult:
     bpp: float = 0.0
     target_met: bool | None = None
     measured: object | None = None  # measures.Outcome of the saved reconstruction, when measured
+    own_bytes: int = 0  # this image's payload and alpha; ``bytes`` adds its share of the shared ones
 
     @property
     def pixels(self) -> int:
@@ -267,6 +268,7 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
     overhead = len(data) - sum(own)
     pixels = sum(r.pixels for r in results)
     for r, b in zip(results, own):
+        r.own_bytes = b
         r.bytes = b + overhead * r.pixels / pixels
         r.bpp = 8 * r.bytes / r.pixels
     yield Progress(total, total, "done")

@@ -92,6 +92,25 @@ class Settings:
         """Number of KLT components kept."""
         return self.block**2 if self.components is None else int(self.components)
 
+    def own(self) -> dict:
+        """The fields that mean something for this method (a conv bundle has no block size)."""
+        d = self.to_dict()
+        keep = set(METHOD_FIELDS.get(self.method, d))
+        if self.target is not None:
+            keep.discard("step")  # each image's step comes from the search, not from here
+        return {k: v for k, v in d.items() if k in keep}
+
+    def describe(self) -> str:
+        """One line of this method's own settings, for people (banners, ``info``, the sheet)."""
+        rate = (f"target {self.target[0]} {self.target[1]:g}" if self.target else f"step {self.step:g}")
+        if self.method == "klt":
+            count = "all" if self.components is None else str(self.components)
+            return (f"Block KLT, block {self.block}, components kept {count} of {self.block ** 2}, chroma "
+                    f"{self.chroma[0]}:{self.chroma[1]}:{self.chroma[2]}, basis per {self.basis_scope}, {rate}")
+        if self.method == "conv":
+            return f"Conv encoder, latent channels kept {self.latent or 'all'}, chroma 4:4:4, {rate}"
+        return f"{self.method}, {rate}"
+
     def replace(self, **changes) -> "Settings":
         """Return a copy with ``changes`` applied (validated again)."""
         return dataclasses.replace(self, **changes)
@@ -130,6 +149,10 @@ class Settings:
     def cache_key(self) -> str:
         return json.dumps(self.to_dict(), sort_keys=True)
 
+
+# The fields each built-in method reads (the rest keep their defaults and are not shown).
+METHOD_FIELDS = {"klt": {"method", "block", "components", "step", "chroma", "basis_scope", "target", "deadzone"},
+                 "conv": {"method", "step", "chroma", "target", "latent"}}
 
 # JSON types each stored field may have (bool is not a number here, though Python says it is).
 _FIELD_TYPES = {"method": (str,), "block": (int,), "components": (int, type(None)), "step": (int, float),

@@ -56,11 +56,12 @@ class ImageRow:
     jpeg_bytes_at_floor: float | None = None
     target_met: bool | None = None
     measured: object | None = None  # measures.Outcome of the saved reconstruction
+    own_bytes: int = 0  # payload + alpha; ``bytes`` = own_bytes + a pixel share of headers and shared side
     safe: dict | None = None  # the lowest-rate point of our curve from which every check holds
 
     def table(self) -> dict:
         t = {"name": self.name, "width": self.width, "height": self.height, "bits": self.bits,
-             "bytes": round(self.bytes, 1), "bpp": self.bpp, "ratio": self.ratio, "psnr": self.psnr,
+             "bytes": self.own_bytes, "shared_bytes": round(self.bytes - self.own_bytes, 1), "bpp": self.bpp, "ratio": self.ratio, "psnr": self.psnr,
              "ssim": self.ssim, "worst_tile_psnr": self.worst_tile_psnr, "worst_tile_x": self.worst_tile_x,
              "worst_tile_y": self.worst_tile_y, "step": self.step, "pass": self.passed}
         if self.measured is not None:
@@ -252,7 +253,8 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
             ok = (require_psnr is None or p >= require_psnr) and (require_ssim is None or s >= require_ssim)
         outcome = None if chosen is None else _measures.Reference(chosen, img.pixels, img.peak).judge(px)
         rows.append(ImageRow(img.name, img.width, img.height, img.bits, enc.bytes, enc.bpp, enc.ratio, p, s,
-                             wp, wx, wy, enc.step, ok, target_met=enc.target_met, measured=outcome))
+                             wp, wx, wy, enc.step, ok, target_met=enc.target_met, measured=outcome,
+                             own_bytes=enc.own_bytes))
         crops.append((wp, img, px, wx, wy))
     yield Progress(2, total, "rate–distortion curves")
     shared_bytes = None if shared is None else pipeline.codecs.get(settings.method).shared_to_bytes(shared)
@@ -284,7 +286,8 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
         "title": "workbench quality sheet",
         "date": _dt.datetime.now().astimezone().isoformat(timespec="seconds"),
         "versions": _versions(),
-        "settings": settings.to_dict(),
+        "settings": settings.own(),
+        "settings_text": settings.describe(),
         "bundle": {"file": "bundle.wbundle", "bytes": len(result.data), "sha256": digest},
         "floors": {"psnr": require_psnr, "ssim": require_ssim},
         "totals": {"images": len(rows), "pixels": int(sum(r.width * r.height for r in rows)),

@@ -45,8 +45,7 @@ def render(sheet: dict, rows, crops, tile: int) -> bytes:
         lines = [
             f"workbench {sheet['versions']['workbench']}   bundle {sheet['bundle']['file']}: "
             f"{sheet['bundle']['bytes']:,} bytes, sha256 {sheet['bundle']['sha256'][:32]}…",
-            f"Method {s['method']}, block {s['block']}, components {s['components'] or 'all'}, chroma {s['chroma']}, "
-            f"basis {s['basis_scope']}, " + (f"target {s['target'][0]} {s['target'][1]}" if s["target"] else f"step {s['step']}"),
+            sheet["settings_text"],
             f"{t['images']} images, {t['pixels'] / 1e6:.2f} Mpixel; raw {t['raw_bytes'] / 1e6:.2f} MB -> bundle "
             f"{t['bundle_bytes'] / 1e6:.3f} MB (saving {100 * t['saving_vs_raw']:.1f} %)",
             "Libraries: " + ", ".join(f"{k} {v}" for k, v in sheet["versions"].items() if k != "workbench"),

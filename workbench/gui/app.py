@@ -18,6 +18,7 @@ QListWidget::item:selected { background: #2f5a48; }
 QPushButton { background: #33363f; border: 1px solid #4a4e59; padding: 3px 10px; border-radius: 4px; }
 QComboBox, QSpinBox, QDoubleSpinBox { background: #2c2f36; border: 1px solid #4a4e59; padding: 2px 4px; }
 QToolBar { border: none; spacing: 6px; }
+QComboBox:disabled, QSpinBox:disabled, QLabel:disabled, QCheckBox:disabled { color: #6b6e78; background: #26282e; }
 """
 
 

@@ -78,7 +78,7 @@ class SidePanel(QWidget):
         h = QFormLayout(out_box)
         self.readouts = {}
         for key, text in (("psnr", "PSNR"), ("ssim", "SSIM"), ("bpp", "Bits per pixel"), ("ratio", "Compression ratio"),
-                          ("bytes", "Bundle size"), ("step", "Step used")):
+                          ("bytes", "Bundle size"), ("step", "Step, count")):
             lab = QLabel("–")
             lab.setObjectName("readoutValue")
             lab.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
@@ -127,6 +127,8 @@ class SidePanel(QWidget):
         outer.addStretch(1)
 
         self._quiet = False
+        self._method, self._klt_chroma = "klt", "420"
+        self._saved_count: dict[str, int | None] = {}
         self.block.setCurrentIndex(self.block.findData(8))
         self._set_rate_mode("step")
         self._set_block(8)
@@ -171,11 +173,35 @@ class SidePanel(QWidget):
             self._set_block(self.block.currentData())
         if sender is self.rate_mode:
             self._set_rate_mode(self.rate_mode.currentData())
-        conv = self.method.currentData() == "conv"
-        self.block.setEnabled(not conv)
-        self.scope.setEnabled(not conv)
-        self.count_label.setText("Latent channels kept" if conv else "Components kept")
+        if sender is self.method:
+            self._switch_method(self.method.currentData())
+        self._show_method_fields()
         self.changed.emit()
+
+    def _switch_method(self, new: str) -> None:
+        """Each method keeps its own count (a KLT count of 1 is no latent count) and the KLT its chroma."""
+        old = self._method
+        self._saved_count[old] = None if self.count.value() == self.count.maximum() else self.count.value()
+        self._method = new
+        self._quiet = True
+        if new == "conv":
+            self._klt_chroma = self.chroma.currentData()
+            self.chroma.setCurrentIndex(self.chroma.findData("444"))  # what the conv encoder really uses
+        else:
+            self.chroma.setCurrentIndex(self.chroma.findData(self._klt_chroma))
+            n = self.block.currentData() ** 2
+            self.count.setRange(1, n)
+            self.count_spin.setRange(1, n)
+        saved = self._saved_count.get(new)
+        self.count.setValue(self.count.maximum() if saved is None else min(saved, self.count.maximum()))
+        self.count_spin.setValue(self.count.value())
+        self._quiet = False
+
+    def _show_method_fields(self) -> None:
+        conv = self.method.currentData() == "conv"
+        for w in (self.block, self.scope, self.chroma):
+            w.setEnabled(not conv)
+        self.count_label.setText("Latent channels kept" if conv else "Components kept")
 
     def _on_count(self, v):
         if self._quiet:
@@ -192,11 +218,12 @@ class SidePanel(QWidget):
 
     def set_count_range(self, n: int) -> None:
         """For the conv encoder: the model's latent channel count."""
+        all_kept = self.count.value() == self.count.maximum() and self._saved_count.get("conv") is None
         cur = self.count.value()
         self._quiet = True
         self.count.setRange(1, n)
         self.count_spin.setRange(1, n)
-        self.count.setValue(min(cur, n) if cur else n)
+        self.count.setValue(n if all_kept else min(cur, n))
         self.count_spin.setValue(self.count.value())
         self._quiet = False
 
@@ -237,9 +264,10 @@ class SidePanel(QWidget):
             self.rate_mode.setCurrentIndex(self.rate_mode.findData(s.target[0]))
             self._quiet = False
             self._set_rate_mode(s.target[0], s.target[1])
-        conv = s.method == "conv"
-        self.block.setEnabled(not conv)
-        self.scope.setEnabled(not conv)
+        self._method = s.method
+        if s.method != "conv":
+            self._klt_chroma = s.chroma
+        self._show_method_fields()
 
     # -------------------------------------------------------------- measurements
     def measure_spec(self) -> tuple[str, list[str]] | None:
@@ -288,7 +316,8 @@ class SidePanel(QWidget):
         self.readouts["bpp"].setText(f"{n.bpp:.3f}")
         self.readouts["ratio"].setText(f"{n.ratio:.1f} : 1")
         self.readouts["bytes"].setText(f"{n.bytes:,} bytes")
-        self.readouts["step"].setText(f"{n.step:.3g} ({n.kept} used)")
+        what = "latent channels" if self.method.currentData() == "conv" else "components"
+        self.readouts["step"].setText(f"{n.step:.3g}, {n.kept} {what} coded")
 
     def show_energy(self, energy, k) -> None:
         if energy is None:

@@ -198,7 +198,11 @@ class Triptych(QWidget):
 
 
 class EnergyCurve(QWidget):
-    """Small plot of the fraction of energy kept against the component count."""
+    """Small plot of the energy *left out* against the component count, on a log scale
+    (10^0 at the top down to 10^-DECADES): the kept fraction sits near 100 % after a few
+    components, where a linear plot says nothing."""
+
+    DECADES = 6
 
     def __init__(self, parent=None):
         super().__init__(parent)
@@ -210,21 +214,39 @@ class EnergyCurve(QWidget):
         self.energy, self.k = energy, k
         self.update()
 
+    def points(self, rect) -> list:
+        """Where each count's left-out energy is drawn inside ``rect`` (for tests, too)."""
+        import math
+
+        n = len(self.energy)
+        out = []
+        for i in range(n):
+            left = max(1.0 - float(self.energy[i]), 10.0 ** -self.DECADES)
+            frac = min(1.0, -math.log10(left) / self.DECADES)
+            out.append(QPointF(rect.left() + rect.width() * i / (n - 1), rect.top() + rect.height() * frac))
+        return out
+
     def paintEvent(self, _event):
         p = QPainter(self)
         p.setRenderHint(QPainter.RenderHint.Antialiasing)
-        r = self.rect().adjusted(4, 4, -4, -4)
+        r = self.rect().adjusted(4, 4, -4, -14)
         p.fillRect(self.rect(), QColor(36, 38, 44))
         if self.energy is None or len(self.energy) < 2:
             p.setPen(QColor(150, 150, 150))
             p.drawText(r, Qt.AlignmentFlag.AlignCenter, "energy curve: KLT only")
             return
-        e = self.energy
-        n = len(e)
-        pts = [QPointF(r.left() + r.width() * i / (n - 1), r.bottom() - r.height() * float(e[i])) for i in range(n)]
+        p.setPen(QPen(QColor(70, 74, 84), 1))
+        for d in range(0, self.DECADES + 1, 2):
+            y = r.top() + r.height() * d / self.DECADES
+            p.drawLine(QPointF(r.left(), y), QPointF(r.right(), y))
+        pts = self.points(r)
         p.setPen(QPen(QColor(120, 200, 160), 1.5))
         for a, b in zip(pts[:-1], pts[1:]):
             p.drawLine(a, b)
+        n = len(self.energy)
         x = r.left() + r.width() * (self.k - 1) / (n - 1)
         p.setPen(QPen(QColor(250, 170, 40), 1))
         p.drawLine(QPointF(x, r.top()), QPointF(x, r.bottom()))
+        p.setPen(QColor(150, 150, 150))
+        p.drawText(QRectF(r.left(), r.bottom(), r.width(), 14), Qt.AlignmentFlag.AlignLeft,
+                   "energy left out, log scale (grid: 1, 1e-2, 1e-4, 1e-6)")

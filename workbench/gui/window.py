@@ -736,8 +736,8 @@ class MainWindow(QMainWindow):
         self.panel.apply(contents.settings)
         self._set_images(images)
         s = contents.settings
-        self.notice.show_text(f"Showing the decoded images of {path.name} ({contents.size:,} bytes; {s.method}, "
-                              f"block {s.block}, {s.kept} components, chroma {s.chroma}). They are the originals here now.")
+        self.notice.show_text(f"Showing the decoded images of {path.name} ({contents.size:,} bytes; {s.describe()}). "
+                              "Read-outs now compare with these decoded images, not with the sources.")
 
     def _ask_bundle(self):
         path, _ = QFileDialog.getOpenFileName(self, "Open bundle", str(Path.home()), "Bundles (*.wbundle)")
