@@ -121,3 +121,19 @@ def test_a_reader_that_stops_early_is_not_an_error(folder, tmp_path):
         err = p.stderr.read().decode()
     p.wait(timeout=60)
     assert "error" not in err and "Traceback" not in err
+
+
+def test_a_terminal_gets_a_progress_bar_and_a_pipe_does_not(folder, tmp_path, monkeypatch, capsys):
+    import io
+
+    class Terminal(io.StringIO):
+        def isatty(self):
+            return True
+
+    term = Terminal()
+    monkeypatch.setattr(sys, "stderr", term)
+    assert cli.main(["encode", str(folder), "-o", str(tmp_path / "t.wbundle")]) == 0
+    assert "%|" in term.getvalue()  # tqdm's bar
+    monkeypatch.undo()
+    assert cli.main(["encode", str(folder), "-o", str(tmp_path / "p.wbundle")]) == 0
+    assert "%|" not in capsys.readouterr().err

@@ -101,14 +101,30 @@ def _read_inputs(inputs):
     return images, skipped
 
 
-def _progress(p):
-    if sys.stderr.isatty():
-        width = 30
-        n = int(width * p.fraction)
-        sys.stderr.write(f"\r[{'#' * n}{'.' * (width - n)}] {100 * p.fraction:5.1f}% {p.text[:40]:<40}")
+class _Bar:
+    """A terminal progress bar (tqdm) fed with a job's Progress; silent when stderr is not a
+    terminal, so scripts and logs get the result lines only."""
+
+    def __init__(self):
+        self.bar = None
+
+    def __call__(self, p) -> None:
+        if not sys.stderr.isatty():
+            return
+        if self.bar is None:
+            from tqdm import tqdm
+
+            self.bar = tqdm(total=1000, file=sys.stderr, leave=False, dynamic_ncols=True,
+                            bar_format="{l_bar}{bar}| {elapsed}<{remaining} {postfix}")
+        self.bar.n = int(1000 * p.fraction)
+        self.bar.set_postfix_str(p.text[:40], refresh=False)
+        self.bar.refresh()
         if p.fraction >= 1:
-            sys.stderr.write("\n")
-        sys.stderr.flush()
+            self.bar.close()
+
+
+def _progress():
+    return _Bar()
 
 
 def cmd_encode(a) -> int:
@@ -122,7 +138,7 @@ def cmd_encode(a) -> int:
     chosen = measures_from_args(a)
     job = pipeline.encode_job(images, settings, shared=shared, shared_ref=ref, embed=a.embed_model,
                               max_pixels=a.max_pixels, measures=chosen, target_measures=a.target_measures)
-    result = run(job, _progress)
+    result = run(job, _progress())
     write_atomic(a.output, result.data, protect=set(list_inputs(a.inputs)))
     if a.json:
         print(json.dumps({"bundle": str(a.output), "bytes": result.size,

@@ -40,7 +40,7 @@ def cmd_sheet(a) -> int:
     sheet = run(sheet_job(images, settings, out, baseline_names=names, require_psnr=a.require_psnr,
                           require_ssim=a.require_ssim, shared=shared, shared_ref=ref, protect=sources,
                           skipped=skipped, measures=(a.measure, list(a.tolerance)) if a.measure else None,
-                          target_measures=a.target_measures), _progress)
+                          target_measures=a.target_measures), _progress())
     t = sheet["totals"]
     print(f"wrote {out}/sheet.pdf, sheet.csv, sheet.json and bundle.wbundle "
           f"({t['bundle_bytes']:,} bytes for {t['images']} images, {100 * t['saving_vs_raw']:.1f} % smaller than raw)")
@@ -97,7 +97,7 @@ def cmd_train(a) -> int:
     start = None if a.start_from == "none" else a.start_from
     cfg = TrainConfig(latent=a.latent, hidden=a.hidden, lam=a.lam, minutes=a.minutes, seed=a.seed,
                       max_steps=a.steps, start_from=start)
-    r = run(train_job(images, out, cfg, resume=a.resume), _progress)
+    r = run(train_job(images, out, cfg, resume=a.resume), _progress())
     last = r["history"][-1]
     print(f"wrote {out} after {r['steps']} steps (validation {last['val_psnr']:.2f} dB at {last['val_bpp']:.3f} bpp), "
           f"sha256 {r['sha256'][:16]}…", file=sys.stdout)
