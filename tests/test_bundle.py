@@ -119,7 +119,7 @@ def _rebuild(data, edit_meta=None, edit_payload=None):
     for tag, body in chunks:
         if tag == b"META" and edit_meta:
             body = container.pack_json(edit_meta(container.unpack_json(body, "b")))
-        if tag == b"IMGD" and edit_payload:
+        if tag == bundle.TAGS[bundle.VERSION][0] and edit_payload:
             body = edit_payload(body)
         out.append((tag, body))
     return container.pack(bundle.MAGIC, bundle.VERSION, out)
@@ -195,3 +195,10 @@ def test_alpha_survives_every_codec_and_depth_exactly(method, kind, astronaut, c
     out = workbench.decompress(workbench.compress({"a": np.dstack([px, alpha])}, method=method, step=4))["a"]
     assert out.dtype == px.dtype and out.shape[:2] == (48, 64)
     assert np.array_equal(out[..., -1], alpha)
+
+
+def test_version_3_bundles_with_the_old_chunk_tags_still_decode(small_bundle):
+    chunks = container.unpack(small_bundle, bundle.MAGIC, (bundle.VERSION,), "b")
+    rename = dict(zip(bundle.TAGS[bundle.VERSION], bundle.TAGS[3]))
+    old = container.pack(bundle.MAGIC, 3, [(rename.get(t, t), b) for t, b in chunks])
+    assert np.array_equal(workbench.decompress(old)["s"], workbench.decompress(small_bundle)["s"])

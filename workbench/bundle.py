@@ -6,8 +6,10 @@ A :mod:`workbench.container` with magic ``WKBUNDLE`` and chunks
   entry per image (name, size, bit depth, channels, alpha, SHA-256 of the source pixels,
   chunk indices);
 * ``BASE`` optional shared basis (folder scope);
-* ``IMGD`` one per image: the codec payload;
-* ``ALFA`` optional, one per image with alpha: the alpha plane, lossless.
+* ``CODE`` one per image: the codec payload;
+* ``OPAQ`` optional, one per image with alpha: the alpha (opacity) plane, lossless.
+
+(Version 3 files, which named these chunks differently, are still read.)
 
 Reading happens in two stages: :func:`parse` validates the container and the metadata
 (every field bounded) without decoding pixels; decoding an image is a separate step.
@@ -24,7 +26,9 @@ from .names import name_problem
 from .settings import Settings
 
 MAGIC = b"WKBUNDLE"
-VERSION = 3  # 2: coefficient streams coded in lockstep (coefcode); 3: first pass as a row hierarchy
+VERSION = 4  # 2: coefficient streams coded in lockstep (coefcode); 3: first pass as a row hierarchy; 4: chunk tags
+# (image payload, alpha) chunk tags by version
+TAGS = {3: (b"IMGD", b"ALFA"), 4: (b"CODE", b"OPAQ")}
 MAX_SIDE = 65536
 MAX_IMAGE_PIXELS = 1 << 27  # one image
 MAX_PIXELS = 1 << 28  # default budget for all images of one bundle together (raise it per call)
@@ -69,10 +73,10 @@ def assemble(meta: dict, shared: bytes | None, payloads: list[bytes], alphas: li
         chunks.append((b"BASE", shared))
     for entry, payload, alpha in zip(meta["images"], payloads, alphas):
         entry["chunk"] = len(chunks)
-        chunks.append((b"IMGD", payload))
+        chunks.append((TAGS[VERSION][0], payload))
         if alpha is not None:
             entry["alpha_chunk"] = len(chunks)
-            chunks.append((b"ALFA", alpha))
+            chunks.append((TAGS[VERSION][1], alpha))
     chunks[0] = (b"META", container.pack_json(meta))
     return container.pack(MAGIC, VERSION, chunks)
 
@@ -124,7 +128,8 @@ def parse(data: bytes, *, max_pixels: int = MAX_PIXELS) -> Contents:
     Every metadata field is checked for type, range and known keys before anything is built
     from it, and the declared pixels are held to ``max_pixels`` (see :func:`check_images`).
     """
-    chunks = container.unpack(data, MAGIC, (VERSION,), "workbench bundle")
+    chunks = container.unpack(data, MAGIC, tuple(TAGS), "workbench bundle")
+    image_tag, alpha_tag = TAGS[int.from_bytes(bytes(data[8:10]), "little")]
     if not chunks or chunks[0][0] != b"META":
         raise BundleError("bundle has no metadata chunk")
     meta = container.unpack_json(chunks[0][1], "bundle")
@@ -162,12 +167,12 @@ def parse(data: bytes, *, max_pixels: int = MAX_PIXELS) -> Contents:
     for i, (d, (name, w, h, bits, ch)) in enumerate(zip(images, specs)):
         what = f"image {i}"
         idx = _field(d, "chunk", int, what)
-        if not (0 < idx < len(chunks)) or chunks[idx][0] != b"IMGD":
+        if not (0 < idx < len(chunks)) or chunks[idx][0] != image_tag:
             raise BundleError(f"bundle metadata: {what} points at a missing image chunk")
         alpha = None
         if "alpha_chunk" in d:
             j = _field(d, "alpha_chunk", int, what)
-            if not (0 < j < len(chunks)) or chunks[j][0] != b"ALFA":
+            if not (0 < j < len(chunks)) or chunks[j][0] != alpha_tag:
                 raise BundleError(f"bundle metadata: {what} points at a missing alpha chunk")
             alpha = chunks[j][1]
         entries.append(Entry(name, w, h, bits, ch, d["sha256"], chunks[idx][1], alpha))

@@ -69,7 +69,7 @@ def _train(sub):
     p.add_argument("-o", "--output", required=True, metavar="MODEL.wmodel")
     p.add_argument("--latent", type=int, default=96, metavar="C", help="latent channels (default 96)")
     p.add_argument("--hidden", type=int, default=64, help="channels inside the network (default 64)")
-    p.add_argument("--lambda", dest="lam", type=float, default=0.08, metavar="L",
+    p.add_argument("--distortion-weight", dest="lam", type=float, default=0.08, metavar="W",
                    help="weight of distortion against rate: larger = higher quality (default 0.08)")
     p.add_argument("--minutes", type=float, default=10.0, metavar="M", help="training time budget (default 10)")
     p.add_argument("--steps", type=int, help="stop after this many steps instead (for quick checks)")
@@ -89,7 +89,7 @@ def cmd_train(a) -> int:
     if not (1 <= a.latent <= 1024 and 1 <= a.hidden <= 1024):
         raise InputError("--latent and --hidden must be between 1 and 1024")
     if not (a.lam > 0 and a.minutes > 0):
-        raise InputError("--lambda and --minutes must be positive")
+        raise InputError("--distortion-weight and --minutes must be positive")
     out = Path(a.output)
     if out.resolve() in {p.resolve() for p in list_inputs(a.inputs)}:
         raise InputError(f"{out}: refusing to overwrite a source image")

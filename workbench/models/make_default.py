@@ -53,7 +53,7 @@ def main(argv=None):
 
     ap = argparse.ArgumentParser()
     ap.add_argument("--minutes", type=float, default=15.0)
-    ap.add_argument("--lambda", dest="lam", type=float, default=0.08)
+    ap.add_argument("--distortion-weight", dest="lam", type=float, default=0.08)
     ap.add_argument("-o", "--output", default=str(HERE / "default.wmodel"))
     a = ap.parse_args(argv)
     images = training_images()
