@@ -3,7 +3,8 @@
 Accepted: 8- and 16-bit grey, RGB and RGBA (and grey + alpha). Palette, 1-bit, CMYK and
 other colour modes are converted to RGB(A) or grey by Pillow; EXIF orientation is applied.
 Alpha is carried losslessly. Pillow's decompression-bomb guard stays on. 16-bit colour PNGs
-(which Pillow cannot hold) are read and written by the small PNG codec below (ISO/IEC 15948);
+(which Pillow cannot hold) are read by libpng through OpenCV and written by the small PNG
+writer below (ISO/IEC 15948; neither library writes 16-bit grey + alpha);
 16-bit colour TIFFs are read with tifffile.
 """
 
@@ -353,18 +354,6 @@ def encode_png(pixels: np.ndarray) -> bytes:
     return PNG_SIGNATURE + chunk(b"IHDR", ihdr) + chunk(b"IDAT", zlib.compress(rows.tobytes(), 6)) + chunk(b"IEND", b"")
 
 
-def _png_chunks(data: bytes):
-    pos = 8
-    while pos + 8 <= len(data):
-        (length,) = struct.unpack(">I", data[pos : pos + 4])
-        tag = data[pos + 4 : pos + 8]
-        body = data[pos + 8 : pos + 8 + length]
-        if len(body) != length:
-            raise InputError("truncated PNG chunk")
-        yield tag, body
-        pos += 12 + length
-
-
 def _tiff_is_16bit_colour(path: Path) -> bool:
     import tifffile
 
@@ -410,57 +399,20 @@ def _png_is_16bit_colour(path: Path) -> bool:
 
 
 def _read_png16(path: Path, name: str) -> SourceImage:
-    data = path.read_bytes()
-    ihdr, idat = None, []
-    for tag, body in _png_chunks(data):
-        if tag == b"IHDR":
-            ihdr = struct.unpack(">IIBBBBB", body[:13])
-        elif tag == b"IDAT":
-            idat.append(body)
-    if ihdr is None:
-        raise InputError(f"{name}: PNG without IHDR")
-    w, h, depth, colour_type, _, _, interlace = ihdr
-    if interlace:
-        raise InputError(f"{name}: interlaced 16-bit colour PNG is not supported")
+    """16-bit colour PNG (Pillow cannot hold it): decoded by libpng through OpenCV."""
+    import cv2
+
+    with open(path, "rb") as f:
+        head = f.read(33)
+    w, h = struct.unpack(">II", head[16:24])
+    colour_type = head[25]
     if w * h > 2 * Image.MAX_IMAGE_PIXELS:
         raise InputError(f"{name}: refused as a possible decompression bomb ({w}x{h})")
-    c = {2: 3, 4: 2, 6: 4}[colour_type]
-    bpp = 2 * c
-    stride = w * bpp
-    raw = np.frombuffer(zlib.decompress(b"".join(idat)), np.uint8)
-    if raw.size != h * (stride + 1):
-        raise InputError(f"{name}: PNG image data has the wrong size")
-    rows = raw.reshape(h, stride + 1)
-    out = np.zeros((h, stride), np.uint8)
-    prev = np.zeros(stride, np.int32)
-    for y in range(h):
-        ftype, line = rows[y, 0], rows[y, 1:].astype(np.int32)
-        if ftype == 1:
-            line = np.cumsum(line.reshape(w, bpp), axis=0).reshape(-1) & 255
-        elif ftype == 2:
-            line = (line + prev) & 255
-        elif ftype in (3, 4):
-            line = _unfilter_slow(line, prev, bpp, ftype)
-        elif ftype != 0:
-            raise InputError(f"{name}: bad PNG filter type {ftype}")
-        out[y] = line
-        prev = line.astype(np.int32)
-    a = out.view(">u2").reshape(h, w, c).astype(np.uint16)
-    return SourceImage(name, a)
-
-
-def _unfilter_slow(line, prev, bpp, ftype):
-    # Average and Paeth depend on the pixel just decoded, so they run sample by sample.
-    out = line.copy()
-    for i in range(len(out)):
-        left = out[i - bpp] if i >= bpp else 0
-        up = prev[i]
-        if ftype == 3:
-            out[i] = (out[i] + ((left + up) >> 1)) & 255
-        else:
-            ul = prev[i - bpp] if i >= bpp else 0
-            p = left + up - ul
-            pa, pb, pc = abs(p - left), abs(p - up), abs(p - ul)
-            pred = left if (pa <= pb and pa <= pc) else (up if pb <= pc else ul)
-            out[i] = (out[i] + pred) & 255
-    return out
+    a = cv2.imdecode(np.fromfile(path, np.uint8), cv2.IMREAD_UNCHANGED)
+    if a is None or a.dtype != np.uint16 or a.shape[:2] != (h, w):
+        raise InputError(f"{name}: not a readable 16-bit PNG")
+    if colour_type == 4:  # grey + alpha arrives as BGRA with the grey repeated
+        return SourceImage(name, a[..., 0].copy(), a[..., 3].copy())
+    if a.ndim == 3 and a.shape[2] == 4:
+        return SourceImage(name, np.ascontiguousarray(a[..., 2::-1]), a[..., 3].copy())
+    return SourceImage(name, np.ascontiguousarray(a[..., ::-1]))
