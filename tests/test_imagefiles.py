@@ -259,3 +259,25 @@ def test_grey_with_alpha_from_pillow_keeps_both_planes(tmp_path, camera):
     p = _save(tmp_path, "la.png", Image.fromarray(np.dstack([camera, alpha]), "LA"))
     img = imagefiles.read_image(p)
     assert np.array_equal(img.pixels, camera) and np.array_equal(img.alpha, alpha)
+
+
+def test_every_page_of_a_tiff_stack_is_an_image_of_its_own(tmp_path, camera16):
+    import tifffile
+
+    stack = np.stack([camera16[:64, :80] + i for i in range(3)])
+    tifffile.imwrite(tmp_path / "stack.tif", stack, photometric="minisblack")  # three pages
+    images, skipped = imagefiles.read_many([tmp_path / "stack.tif"])
+    assert [i.name for i in images] == ["stack.tif[0]", "stack.tif[1]", "stack.tif[2]"] and not skipped
+    for i, img in enumerate(images):
+        assert img.pixels.dtype == np.uint16 and np.array_equal(img.pixels, stack[i])
+
+
+def test_a_stack_decodes_to_one_png_per_page(tmp_path, camera16, capsys):
+    import tifffile
+
+    from workbench import cli
+
+    tifffile.imwrite(tmp_path / "s.tif", np.stack([camera16[:48, :48]] * 2), photometric="minisblack")
+    assert cli.main(["encode", str(tmp_path / "s.tif"), "-o", str(tmp_path / "s.wbundle")]) == 0
+    assert cli.main(["decode", str(tmp_path / "s.wbundle"), "-o", str(tmp_path / "out")]) == 0
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["s[0].png", "s[1].png"]

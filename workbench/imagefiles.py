@@ -143,8 +143,8 @@ def _from_pillow(im: Image.Image, name: str) -> SourceImage:
     return SourceImage(name, np.asarray(im.convert("RGB")))
 
 
-def read_image(path: str | os.PathLike, name: str | None = None) -> SourceImage:
-    """Read one image file.
+def read_image(path: str | os.PathLike, name: str | None = None, page: int | None = None) -> SourceImage:
+    """Read one image file (``page``: one image of a multi-page TIFF).
 
     Raises
     ------
@@ -158,8 +158,8 @@ def read_image(path: str | os.PathLike, name: str | None = None) -> SourceImage:
             head = f.read(32)
         if head.startswith(PNG_SIGNATURE) and _png_is_16bit_colour(path):
             return _read_png16(path, name)
-        if head[:4] in TIFF_SIGNATURES and _tiff_is_16bit_colour(path):
-            return _read_tiff16(path, name)
+        if head[:4] in TIFF_SIGNATURES and (page is not None or _tiff_is_16bit_colour(path)):
+            return _read_tiff16(path, name, page or 0)
         with warnings.catch_warnings():
             # Pillow warns about damaged metadata in files it can still read; those files are
             # fine to use. The bomb warning, though, is an answer: refuse the file.
@@ -205,10 +205,14 @@ def read_many(inputs) -> tuple[list[SourceImage], list[tuple[str, str]]]:
     images, skipped = [], []
     paths = list_inputs(inputs)
     for path, name in zip(paths, bundle_names(paths)):
-        try:
-            images.append(read_image(path, name))
-        except InputError as exc:
-            skipped.append((name, str(exc)))
+        # every page of a TIFF stack is an image of its own: ``stack.tif[0]``, ``stack.tif[1]``…
+        pages = tiff_pages(path) if path.suffix.lower() in (".tif", ".tiff") else 1
+        for page in range(pages) if pages > 1 else [None]:
+            label = name if page is None else f"{name}[{page}]"
+            try:
+                images.append(read_image(path, label, page))
+            except InputError as exc:
+                skipped.append((label, str(exc)))
     return images, skipped
 
 
@@ -365,28 +369,42 @@ def _tiff_is_16bit_colour(path: Path) -> bool:
         return False
 
 
-def _read_tiff16(path: Path, name: str) -> SourceImage:
-    """16-bit colour TIFF (Pillow reads it as 8-bit): tifffile, first image of the file."""
+def tiff_pages(path: Path) -> int:
+    """How many images a TIFF file holds (0 if tifffile cannot read it)."""
+    import tifffile
+
+    try:
+        with tifffile.TiffFile(path) as t:
+            return len(t.pages)
+    except Exception:  # noqa: BLE001 - a damaged TIFF: Pillow's reading says what is wrong
+        return 0
+
+
+def _read_tiff16(path: Path, name: str, index: int = 0) -> SourceImage:
+    """One image of a TIFF through tifffile: 16-bit colour (Pillow reads it as 8-bit) and
+    every page of a stack. Grey, grey + alpha, RGB and RGBA; 8- or 16-bit."""
     import tifffile
 
     with tifffile.TiffFile(path) as t:
-        page = t.pages[0]
+        page = t.pages[index]
         h, w, n = page.imagelength, page.imagewidth, page.samplesperpixel
         if h * w > Image.MAX_IMAGE_PIXELS:
             raise InputError(f"{name}: refused as a possible decompression bomb ({w}x{h})")
         if n > 4:
-            raise InputError(f"{name}: {n} samples per pixel; only RGB and RGBA colour TIFFs are supported")
+            raise InputError(f"{name}: {n} samples per pixel; only grey, RGB and RGBA TIFFs are supported")
         try:
             a = page.asarray()
         except Exception as exc:  # noqa: BLE001 - tifffile and its codecs raise many kinds
             raise InputError(f"{name}: not a readable TIFF ({exc.__class__.__name__}: {exc})") from None
-    if a.dtype != np.uint16:
-        raise InputError(f"{name}: {a.dtype} TIFF samples are not supported (unsigned 16-bit expected)")
-    if a.ndim == 3 and a.shape[0] == n and a.shape[-1] != n:  # planar (one plane per sample)
+    if a.dtype not in (np.uint8, np.uint16):
+        raise InputError(f"{name}: {a.dtype} TIFF samples are not supported (unsigned 8- or 16-bit expected)")
+    if n > 1 and a.ndim == 3 and a.shape[0] == n and a.shape[-1] != n:  # planar (one plane per sample)
         a = np.moveaxis(a, 0, -1)
-    if a.shape != (h, w, n):
+    if a.shape != ((h, w) if n == 1 else (h, w, n)):
         raise InputError(f"{name}: TIFF image data has shape {a.shape}, expected {(h, w, n)}")
-    return SourceImage(name, a[..., :3].copy(), a[..., 3].copy() if n == 4 else None)
+    if n in (2, 4):
+        return SourceImage(name, a[..., : n - 1].copy() if n == 4 else a[..., 0].copy(), a[..., -1].copy())
+    return SourceImage(name, a)
 
 
 def _png_is_16bit_colour(path: Path) -> bool:

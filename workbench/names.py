@@ -17,6 +17,7 @@ IMAGE_SUFFIXES = {".png", ".jpg", ".jpeg", ".tif", ".tiff", ".bmp", ".webp", ".g
 # Characters no common file system takes in a name (Windows' reserved set, the C0 controls,
 # DEL); replaced, so that a bundle made anywhere decodes anywhere.
 _UNSAFE = re.compile(r'[\x00-\x1f\x7f<>:"|?*]')
+_PAGE = re.compile(r"^(.*)\.tiff?\[(\d+)\]$", re.IGNORECASE)  # one page of a TIFF stack: "stack.tif[3]"
 _RESERVED = {"con", "prn", "aux", "nul", *(f"com{i}" for i in range(10)), *(f"lpt{i}" for i in range(10))}
 
 
@@ -85,8 +86,9 @@ def output_paths(names: list[str], suffix: str = ".png") -> list[PurePosixPath]:
     for name in names:
         parts = [_safe_part(p) for p in re.split(r"[/\\]", clean_text(str(name)))]
         parts = [p for p in parts if p not in ("", ".", "..")] or ["image"]
+        page = _PAGE.match(parts[-1])
         leaf = PurePosixPath(parts[-1])
-        stem = leaf.stem if leaf.suffix.lower() in IMAGE_SUFFIXES else leaf.name
+        stem = f"{page[1]}[{page[2]}]" if page else leaf.stem if leaf.suffix.lower() in IMAGE_SUFFIXES else leaf.name
         parts[-1] = (stem or "image") + suffix
         out.append("/".join(parts))
     # A folder and a file of the same name cannot both exist: treat folder prefixes as taken.
