@@ -391,3 +391,16 @@ def test_the_energy_curve_separates_counts_near_full_energy():
     ys = [p.y() for p in c.points(QRectF(0, 0, 100, 60))]
     # left out 1e-1, 1e-2, 1e-3 and (capped) 1e-6: one decade is a tenth of the six shown
     assert ys == pytest.approx([10.0, 20.0, 30.0, 60.0])
+
+
+def test_cancelling_training_says_what_it_kept(qtbot, window, folder, tmp_path):
+    from workbench.gui import training
+
+    _open(qtbot, window, folder)
+    out = tmp_path / "m.wmodel"
+    training.start_training(window, out, minutes=5, lam=0.01, latent=4, max_steps=100000)
+    qtbot.waitUntil(lambda: "step" in window.status_text.text(), timeout=120000)  # training is under way
+    with qtbot.waitSignal(window.jobs.failed, timeout=120000):
+        qtbot.mouseClick(window.cancel_button, Qt.MouseButton.LeftButton)
+    assert out.exists()  # a cancelled training keeps its last checkpoint…
+    assert str(out) in window.status_text.text() and "resume" in window.status_text.text()  # …and says so

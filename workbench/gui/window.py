@@ -682,9 +682,19 @@ class MainWindow(QMainWindow):
         self._end_job()
         self.last_error = msg
         if msg == "cancelled":
-            self.status_text.setText("Cancelled; nothing was written.")
+            self.status_text.setText(self.cancelled_text(tag))
         else:
             self.notice.show_text(f"{tag[0].capitalize()} failed: {msg}")
+
+    @staticmethod
+    def cancelled_text(tag) -> str:
+        """What a cancelled job left behind: a training keeps its last checkpoint (resumable)."""
+        if tag[0] == "train":
+            path = Path(tag[1])
+            if path.exists():
+                return (f"Training cancelled; its last checkpoint is kept as {path} "
+                        f"(with {path.name}.state to resume from).")
+        return "Cancelled; nothing was written."
 
     def _protected(self):
         return set(list_inputs([self.folder])) if self.folder else set()
