@@ -404,3 +404,11 @@ def test_cancelling_training_says_what_it_kept(qtbot, window, folder, tmp_path):
         qtbot.mouseClick(window.cancel_button, Qt.MouseButton.LeftButton)
     assert out.exists()  # a cancelled training keeps its last checkpoint…
     assert str(out) in window.status_text.text() and "resume" in window.status_text.text()  # …and says so
+
+
+def test_the_sheet_is_offered_a_new_folder_beside_the_images(qtbot, window, folder):
+    _open(qtbot, window, folder)
+    assert window.sheet_folder_suggestion() == folder.parent / "frames-quality-sheet"
+    (folder.parent / "frames-quality-sheet").mkdir()
+    (folder.parent / "frames-quality-sheet" / "sheet.json").write_text("{}")
+    assert window.sheet_folder_suggestion() == folder.parent / "frames-quality-sheet-2"  # never over an old sheet

@@ -781,9 +781,23 @@ class MainWindow(QMainWindow):
 
         return self._start_job(job, ("sheet", outdir), text)
 
+    def sheet_folder_suggestion(self) -> Path:
+        """A new folder beside the images (``NAME-quality-sheet``, numbered if taken)."""
+        base = Path(self.folder) if self.folder else (Path(self.bundle_path).parent if self.bundle_path else Path.home())
+        stem = base.parent / f"{base.name}-quality-sheet"
+        target, n = stem, 1
+        while target.exists() and any(target.iterdir()):
+            n += 1
+            target = stem.with_name(f"{stem.name}-{n}")
+        return target
+
     def _ask_save_sheet(self):
-        path = QFileDialog.getExistingDirectory(self, "Folder for the quality sheet", str(Path.home()))
+        # A file dialog that names a folder still to be made: the suggestion is created on accept.
+        suggestion = self.sheet_folder_suggestion()
+        path, _ = QFileDialog.getSaveFileName(self, "New folder for the quality sheet", str(suggestion),
+                                              "Folders (*)", options=QFileDialog.Option.DontConfirmOverwrite)
         if path:
+            Path(path).mkdir(parents=True, exist_ok=True)
             self.save_sheet(path)
 
     def _ask_train(self):
