@@ -412,3 +412,17 @@ def test_the_sheet_is_offered_a_new_folder_beside_the_images(qtbot, window, fold
     (folder.parent / "frames-quality-sheet").mkdir()
     (folder.parent / "frames-quality-sheet" / "sheet.json").write_text("{}")
     assert window.sheet_folder_suggestion() == folder.parent / "frames-quality-sheet-2"  # never over an old sheet
+
+
+def test_an_unreachable_target_says_why_and_what_would_meet_it(qtbot, window, tmp_path):
+    from workbench.demo import fabric
+
+    d = tmp_path / "loom"
+    d.mkdir()
+    Image.fromarray(fabric(np.random.default_rng(1))).save(d / "f.png")  # fine colour weave (demo data)
+    _open(qtbot, window, d)
+    qtbot.waitUntil(lambda: window.last_numbers is not None, timeout=30000)
+    window.panel.rate_mode.setCurrentIndex(window.panel.rate_mode.findData("psnr"))
+    window.panel.rate_value.setValue(40.0)
+    qtbot.waitUntil(lambda: "out of reach" in window.notice.label.text(), timeout=60000)
+    assert "4:4:4" in window.notice.label.text()

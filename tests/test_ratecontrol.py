@@ -1,5 +1,6 @@
 """Rate control: the step search meets its target at the lowest cost."""
 
+import numpy as np
 import pytest
 
 from workbench import pipeline
@@ -43,3 +44,21 @@ def test_search_step_on_a_monotone_function_finds_the_threshold():
     step, ok = pipeline.search_step(lambda s: 100 - s, "psnr", 60.0)
     assert ok and step == pytest.approx(40.0, rel=0.02) and 100 - step >= 60.0
 
+
+
+def test_a_missed_target_is_explained_with_what_would_meet_it():
+    from workbench.demo import fabric
+
+    img = SourceImage("f", fabric(np.random.default_rng(1)))  # demo data: a fine colour weave
+    r = pipeline.encode([img], Settings(target=("psnr", 40.0))).images[0]
+    assert r.target_met is False and "out of reach" in r.advice
+    reached = float(r.advice.split("With 4:4:4 chroma it reaches ")[1].split(" dB")[0])
+    assert reached >= 40.0  # and the claim holds when tried:
+    ok = pipeline.encode([img], Settings(chroma="444", target=("psnr", 40.0))).images[0]
+    assert ok.target_met and ok.psnr >= 40.0
+
+
+def test_a_rate_past_the_lossless_png_is_said():
+    noise = np.random.default_rng(0).integers(0, 256, (64, 64), dtype=np.uint8)
+    r = pipeline.encode([SourceImage("n", noise)], Settings(step=0.05)).images[0]
+    assert r.advice and "lossless PNG" in r.advice

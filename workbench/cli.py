@@ -151,6 +151,8 @@ def cmd_encode(a) -> int:
             note = "" if r.target_met in (None, True) else "  (target not reached)"
             print(f"{r.name}: {r.width}x{r.height}  {r.bpp:.3f} bpp  PSNR {r.psnr:.2f} dB  SSIM {r.ssim:.4f}  "
                   f"step {r.step:.3g}{note}")
+            if r.advice:
+                print(f"    {r.advice}")
             if r.measured is not None:
                 verdict = "within tolerance" if r.measured.ok else "OUT OF TOLERANCE: " + "; ".join(r.measured.failed)
                 print(f"    {r.measured.summary()}  ({verdict})")

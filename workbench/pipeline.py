@@ -85,6 +85,7 @@ class ImageResult:
     target_met: bool | None = None
     measured: object | None = None  # measures.Outcome of the saved reconstruction, when measured
     own_bytes: int = 0  # this image's payload and alpha; ``bytes`` adds its share of the shared ones
+    advice: str | None = None  # why a target was missed and what would meet it; a rate past lossless
 
     @property
     def pixels(self) -> int:
@@ -248,6 +249,7 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
                     return _measure(kind, img, codec.quantise(analysis, s).planes, settings.chroma)
             step, met = search_step(evaluate, kind, value)
         coded = codec.quantise(analysis, step)
+        advice = None if met in (None, True) else target_advice(img, settings, evaluate(step), shared)
         payload = codec.serialise(coded)
         p = s = float("nan")
         full = outcome = None
@@ -258,8 +260,17 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
             p = metrics.psnr(img.pixels, rec, data_range=img.peak)
             if min(img.height, img.width) > 11:
                 s = metrics.ssim(img.pixels, rec, data_range=img.peak)
+        if 8 * len(payload) >= LOSSLESS_CHECK_BPP * img.width * img.height:
+            from .imagefiles import encode_png
+
+            png = len(encode_png(img.full()))
+            if len(payload) >= png:
+                advice = ((advice + " ") if advice else "") + (
+                    f"At {len(payload):,} bytes it is larger than the source's lossless PNG ({png:,} bytes): "
+                    "keep the original file instead.")
         results.append(ImageResult(img.name, img.width, img.height, img.bits, img.channels, len(payload),
-                                   coded.step, coded.kept, p, s, full, target_met=met, measured=outcome))
+                                   coded.step, coded.kept, p, s, full, target_met=met, measured=outcome,
+                                   advice=advice))
         payloads.append(payload)
         alphas.append(None if img.alpha is None else encode_alpha(img.alpha))
     data = bundle.assemble(_meta(settings, images, shared_ref), shared_bytes, payloads, alphas)
@@ -273,6 +284,37 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
         r.bpp = 8 * r.bytes / r.pixels
     yield Progress(total, total, "done")
     return EncodeResult(data, settings, results)
+
+
+LOSSLESS_CHECK_BPP = 4.0  # from this rate on, compare the payload with the source's lossless PNG
+
+
+def target_advice(img: SourceImage, settings: Settings, reached: float, shared=None) -> str:
+    """Why a quality or rate target was missed, and what would meet it (one sentence or two).
+
+    For a colour KLT image at 4:2:0 it tries 4:4:4, which keeps the chroma detail that a
+    PSNR or SSIM over R, G and B counts.
+    """
+    kind, value = settings.target
+    unit = {"psnr": " dB", "ssim": "", "bpp": " bpp"}[kind]
+    text = (f"The {kind.upper()} target {value:g}{unit} is out of reach: the finest step gives {reached:.4g}{unit}."
+            if kind != "bpp" else
+            f"The rate target {value:g} bpp is out of reach: the coarsest step needs {reached:.4g} bpp.")
+    if kind != "bpp" and settings.method == "klt" and settings.chroma == "420" and img.channels == 3:
+        full = settings.replace(chroma="444", target=None)
+        codec = codecs.get("klt")
+        a = codec.analyse(image_planes(img, "444"), full, shared if settings.basis_scope == "folder" else None)
+
+        def quality(step):
+            return _measure(kind, img, codec.quantise(a, step).planes, "444")
+
+        step, met = search_step(quality, kind, value)
+        if met:
+            bpp = 8 * len(codec.serialise(codec.quantise(a, step))) / (img.width * img.height)
+            text += f" With 4:4:4 chroma it reaches {quality(step):.4g}{unit} at {bpp:.2f} bpp (step {step:.3g})."
+        else:
+            text += f" Even 4:4:4 chroma reaches only {quality(STEP_RANGE[0]):.4g}{unit}."
+    return text
 
 
 def encode(images, settings: Settings, **kw) -> EncodeResult:

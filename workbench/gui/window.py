@@ -518,19 +518,21 @@ class MainWindow(QMainWindow):
         def work():
             if remote.handles(s.method):
                 n, rec = self._helper().encode_one(img, s, self.conv_model_file)
-                return img, s, n, rec
+                return img, s, n, rec, None
             shared, ref = self._shared_for(s)
             r = pipeline.encode([img], s, shared=shared, shared_ref=ref).images[0]
             n = pipeline.Numbers.of(r)
-            return img, s, n, r.reconstruction
+            return img, s, n, r.reconstruction, r.advice
 
         self.preview_lane.invalidate()
         self.target_lane.submit(work, tag=(img.name, s))
 
     def _on_target(self, tag, value):
-        img, s, n, rec = value
+        img, s, n, rec, advice = value
         if img is not self.current:
             return
+        if advice:
+            self.notice.show_text(f"{img.name}: {advice}")
         if rec.ndim == 3 and rec.shape[2] in (2, 4):
             rec = rec[..., :-1] if rec.shape[2] == 4 else rec[..., 0]
         self._display(img, rec, self._render(img, rec, self._diff_look()))
