@@ -194,3 +194,19 @@ def test_measurements_give_csv_columns_and_a_safe_point_that_really_passes(tmp_p
     bundle = pipeline.encode([read_image(src / "blobs.png")], pipeline.Settings(step=point["step"])).data
     (dec,) = pipeline.decode(bundle)[1]
     assert measures.Reference(ms, blobs, 255).judge(dec.pixels).ok
+
+
+def test_sheet_progress_rises_steadily_and_is_mostly_the_curves(tmp_path, camera, astronaut):
+    from workbench import jobs
+    from workbench.imagefiles import SourceImage
+    from workbench.settings import Settings
+    from workbench.sheet import sheet_job
+
+    images = [SourceImage("c", camera[:128, :128]), SourceImage("a", astronaut[:128, :128])]
+    seen = []
+    jobs.run(sheet_job(images, Settings(), tmp_path / "o", baseline_names=("jpeg",)), seen.append)
+    fractions = [p.fraction for p in seen]
+    assert fractions == sorted(fractions) and fractions[-1] == 1.0
+    start_curves = next(p.fraction for p in seen if p.text.startswith("rate"))
+    assert start_curves < 0.2  # encoding the bundle is a small share of a sheet's work
+    assert sum(p.text.startswith("curves for") for p in seen) == 2

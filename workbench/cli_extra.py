@@ -47,6 +47,8 @@ def cmd_sheet(a) -> int:
     for n, v in sheet["folder"]["bd_rate"].items():
         bd = v["psnr"]
         print(f"  BD-rate (PSNR) against {n}: {'n/a' if bd is None else f'{bd:+.1f} %'}")
+    for name, text in sheet["advice"].items():
+        print(f"  {name}: {text}")
     safe = sheet.get("safe_point")
     if safe:
         print(f"  measurements within tolerance from {safe['folder_bpp']:.3f} bpp for every image "

@@ -15,6 +15,7 @@ import hashlib
 import importlib.metadata as md
 import io
 import json
+from concurrent.futures import as_completed
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -32,6 +33,8 @@ TILE = 32
 WORST_CROPS = 6
 SWEEP_POINTS = 4  # Bjøntegaard's method fits a cubic through four points per curve (VCEG-M33)
 WORKERS = 2
+CURVE_WEIGHT = 12.0  # one image's curves cost about twelve of its encodes (ours and the baselines')
+TARGET_WEIGHT = 2.0
 LIBRARIES = ("numpy", "scipy", "Pillow", "scikit-image", "opencv-python-headless", "constriction", "matplotlib")
 
 
@@ -231,13 +234,19 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
     chosen = None if measures is None else _measures.parse(*measures)
     names = [baselines.get(n).name for n in baseline_names]
     outdir = Path(outdir)
-    total = 4 + len(images)
+    # Progress in units of one image's encode, so the bar moves as the work does: the curves
+    # (our steps and every baseline's files) are most of a sheet's time (measured, bench_sheet).
+    count = len(images)
+    searched = settings.target is not None and settings.target[0] in ("psnr", "ssim")
+    at_decode, at_curves = 1.0 * count, 1.3 * count
+    at_target = at_curves + CURVE_WEIGHT * count
+    total = at_target + (TARGET_WEIGHT * count if searched else 0) + 0.5 * count
     yield Progress(0, total, "encoding the bundle")
     result = yield from _scaled(pipeline.encode_job(images, settings, shared=shared, shared_ref=shared_ref,
                                                     measure=False, measures=chosen if target_measures else None,
-                                                    target_measures=target_measures), 0, 1, total)
+                                                    target_measures=target_measures), 0, at_decode, total)
     digest = hashlib.sha256(result.data).hexdigest()
-    yield Progress(1, total, "decoding the saved bundle")
+    yield Progress(at_decode, total, "decoding the saved bundle")
     _, decoded = pipeline.decode(result.data, shared=shared, shared_ref=shared_ref)
     rows: list[ImageRow] = []
     crops = []
@@ -256,15 +265,16 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
                              wp, wx, wy, enc.step, ok, target_met=enc.target_met, measured=outcome,
                              own_bytes=enc.own_bytes))
         crops.append((wp, img, px, wx, wy))
-    yield Progress(2, total, "rate–distortion curves")
+    yield Progress(at_curves, total, "rate–distortion curves")
     shared_bytes = None if shared is None else pipeline.codecs.get(settings.method).shared_to_bytes(shared)
     # forkserver: workers start clean, which is safe from inside the GUI's threads too.
     pool = jobs.pool(WORKERS, "forkserver")
     with pool:
-        futures = [pool.submit(_curves_in_worker, img.name, img.pixels, settings.to_dict(), list(names),
-                               shared_bytes, shared_ref, measures) for img in images]
+        futures = {pool.submit(_curves_in_worker, img.name, img.pixels, settings.to_dict(), list(names),
+                               shared_bytes, shared_ref, measures): row for img, row in zip(images, rows)}
         try:
-            for i, (row, fut) in enumerate(zip(rows, futures)):
+            for i, fut in enumerate(as_completed(futures)):
+                row = futures[fut]
                 row.curves = fut.result()
                 if chosen is not None:
                     row.safe = _measures.safe_point(row.curves["ours"])
@@ -272,14 +282,13 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
                     if n in row.curves:
                         row.bd[n] = {"psnr": _bd(row.curves[n], row.curves["ours"], "psnr"),
                                      "ssim": _bd(row.curves[n], row.curves["ours"], "ssim")}
-                yield Progress(3 + i, total, f"curves for {row.name}")
+                yield Progress(at_curves + CURVE_WEIGHT * (i + 1), total, f"curves for {row.name}")
         except GeneratorExit:
             pool.shutdown(wait=False, cancel_futures=True)
             raise
-    target = settings.target
     search = None
-    if target is not None and target[0] in ("psnr", "ssim"):
-        yield Progress(total - 1, total, "comparing with one step for all images")
+    if searched:
+        yield Progress(at_target, total, "comparing with one step for all images")
         search = _target_summary(images, settings, rows, shared, shared_ref)
     folder = _folder_curves(rows, names)
     sheet = {
@@ -299,12 +308,13 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
         "curves": {r.name: r.curves for r in rows},
         "folder": folder,
         "target_search": search,
+        "advice": {r.name: r.advice for r in result.images if r.advice},
         "safe_point": None if chosen is None else _safe_summary(chosen, rows),
         "skipped": [{"name": n, "reason": why} for n, why in skipped],
         "caution": CAUTION,
     }
     sheet["totals"]["saving_vs_raw"] = 1 - sheet["totals"]["bundle_bytes"] / sheet["totals"]["raw_bytes"]
-    yield Progress(total - 0.5, total, "writing the PDF")
+    yield Progress(total - 0.5 * count, total, "writing the PDF")
     crops.sort(key=lambda c: c[0])
     # All four files are staged before any is renamed, the JSON (which holds the bundle's
     # SHA-256) last: a failure or a kill leaves the old set, or a new bundle the old JSON disowns.

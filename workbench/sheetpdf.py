@@ -68,6 +68,8 @@ def render(sheet: dict, rows, crops, tile: int) -> bytes:
                          f"{100 * ts['saving_vs_one_step']:.1f} %" + (
                              f"; JPEG at the same floor {ts['jpeg_bytes']:,.0f} bytes -> saving {100 * ts['saving_vs_jpeg']:.1f} %"
                              if ts["jpeg_bytes"] else ""))
+        for name, text in sheet.get("advice", {}).items():
+            lines.append(f"{name}: {text}")
         if sheet["skipped"]:
             lines.append("Skipped (unreadable): " + ", ".join(x["name"] for x in sheet["skipped"]))
         fig.text(0.06, 0.94, "Quality sheet", fontsize=18, weight="bold", va="top")
