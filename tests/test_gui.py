@@ -426,3 +426,13 @@ def test_an_unreachable_target_says_why_and_what_would_meet_it(qtbot, window, tm
     window.panel.rate_value.setValue(40.0)
     qtbot.waitUntil(lambda: "out of reach" in window.notice.label.text(), timeout=60000)
     assert "4:4:4" in window.notice.label.text()
+
+
+def test_after_opening_a_bundle_the_readouts_say_what_they_compare(qtbot, window, folder, tmp_path):
+    out = tmp_path / "b.wbundle"
+    assert cli.main(["encode", str(folder / "a_cat.png"), "-o", str(out)]) == 0
+    assert "the source" in window.panel.readout_box.title()
+    with qtbot.waitSignal(window.jobs.finished, timeout=60000):
+        window.open_bundle(out)
+    assert "decoded images of b.wbundle" in window.panel.readout_box.title()
+    assert "not with the sources" in window.notice.label.text()

@@ -74,7 +74,7 @@ class SidePanel(QWidget):
         g.addRow("Value", self.rate_value)
         outer.addWidget(rate_box)
 
-        out_box = QGroupBox("Read-outs (real bundle)")
+        out_box = self.readout_box = QGroupBox("Read-outs (real bundle) against the source")
         h = QFormLayout(out_box)
         self.readouts = {}
         for key, text in (("psnr", "PSNR"), ("ssim", "SSIM"), ("bpp", "Bits per pixel"), ("ratio", "Compression ratio"),
@@ -268,6 +268,10 @@ class SidePanel(QWidget):
         if s.method != "conv":
             self._klt_chroma = s.chroma
         self._show_method_fields()
+
+    def compare_with(self, what: str) -> None:
+        """Say what the read-outs compare the reconstruction with (the sources, or decoded images)."""
+        self.readout_box.setTitle(f"Read-outs (real bundle) against {what}")
 
     # -------------------------------------------------------------- measurements
     def measure_spec(self) -> tuple[str, list[str]] | None:

@@ -264,6 +264,7 @@ class MainWindow(QMainWindow):
         folder, images, skipped, thumbs = value
         self.loading = False
         self.folder, self.bundle_path = folder, None
+        self.panel.compare_with("the source")
         self.store.setValue("last_folder", str(Path(folder).resolve()))
         self._set_images(images, thumbs)
         if skipped:
@@ -745,6 +746,7 @@ class MainWindow(QMainWindow):
     def _show_bundle(self, path, contents, decoded):
         images = [SourceImage(d.name, d.pixels) for d in decoded]
         self.folder, self.bundle_path = None, path
+        self.panel.compare_with(f"the decoded images of {Path(path).name}")
         self.panel.apply(contents.settings)
         self._set_images(images)
         s = contents.settings
