@@ -1,0 +1,63 @@
+"""The import contract, read from the source with Python's own parser (ast): the core never
+imports Qt, only the conv codec's modules import torch, the file formats import no codec,
+and nothing outside the app imports the app."""
+
+import ast
+from pathlib import Path
+
+import pytest
+
+PKG = Path(__file__).resolve().parents[1] / "workbench"
+TORCH_ALLOWED = {"codecs/conv.py", "conv_model.py", "training.py", "models/make_default.py"}
+FORMATS = {"container.py", "bundle.py", "basisfile.py", "modelfile.py"}
+FRONT_ENDS = {"cli.py"}  # the command line starts the app (``workbench gui``); it is not the core
+
+
+def _imports(path: Path) -> set[str]:
+    """Every module a file imports, relative imports made absolute (``workbench.x.y``)."""
+    tree = ast.parse(path.read_text(), str(path))
+    here = ["workbench", *path.relative_to(PKG).parent.parts]
+    out = set()
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Import):
+            out.update(a.name for a in node.names)
+        elif isinstance(node, ast.ImportFrom):
+            base = here[: len(here) - node.level + 1] if node.level else []
+            mod = ".".join(base + ([node.module] if node.module else []))
+            out.add(mod)
+            out.update(f"{mod}.{a.name}" for a in node.names)
+    return out
+
+
+def _modules():
+    return sorted(p for p in PKG.rglob("*.py"))
+
+
+@pytest.mark.parametrize("path", [p for p in _modules() if "gui" not in p.relative_to(PKG).parts
+                                  and p.relative_to(PKG).as_posix() not in FRONT_ENDS],
+                         ids=lambda p: str(p.relative_to(PKG)))
+def test_the_core_never_imports_qt_or_the_app(path):
+    bad = {m for m in _imports(path) if m.split(".")[0] in ("PySide6", "PyQt5", "PyQt6") or
+           m.startswith("workbench.gui")}
+    assert not bad, f"{path.name} imports {sorted(bad)}"
+
+
+@pytest.mark.parametrize("path", _modules(), ids=lambda p: str(p.relative_to(PKG)))
+def test_only_the_conv_codec_imports_torch(path):
+    rel = path.relative_to(PKG).as_posix()
+    if rel in TORCH_ALLOWED:
+        return
+    assert not {m for m in _imports(path) if m.split(".")[0] == "torch"}, f"{rel} imports torch"
+
+
+@pytest.mark.parametrize("name", sorted(FORMATS))
+def test_file_formats_import_no_codec(name):
+    bad = {m for m in _imports(PKG / name) if m.startswith("workbench.codecs")}
+    assert not bad, f"{name} imports {sorted(bad)}"
+
+
+def test_the_front_end_imports_the_app_only_to_start_it():
+    tree = ast.parse((PKG / "cli.py").read_text())
+    gui_imports = [n for n in ast.walk(tree) if isinstance(n, ast.ImportFrom) and (n.module or "").startswith("gui")]
+    top_level = [n for n in tree.body if isinstance(n, ast.ImportFrom) and (n.module or "").startswith("gui")]
+    assert len(gui_imports) == 1 and not top_level  # one lazy import, inside the gui command
