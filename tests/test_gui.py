@@ -436,3 +436,18 @@ def test_after_opening_a_bundle_the_readouts_say_what_they_compare(qtbot, window
         window.open_bundle(out)
     assert "decoded images of b.wbundle" in window.panel.readout_box.title()
     assert "not with the sources" in window.notice.label.text()
+
+
+def test_the_current_setting_can_be_applied_to_an_archive_from_the_app(qtbot, window, folder, tmp_path):
+    from workbench import archive
+
+    _open(qtbot, window, folder)
+    window.panel.count.setValue(10)
+    dst = tmp_path / "archive"
+    with qtbot.waitSignal(window.jobs.finished, timeout=120000):
+        assert window.apply_to_archive(folder, dst)
+    assert window.last_batch["done"] == 2 and "2 of 2 done" in window.status_text.text()
+    made = {r["path"] for r in archive.rows(dst)}
+    assert made == {"a_cat.png", "b_camera.png"}
+    s = window.panel.settings()
+    assert (dst / "a_cat.png.wbundle").read_bytes() == pipeline.encode([read_image(folder / "a_cat.png")], s).data

@@ -27,11 +27,12 @@ def sheet_dir(tmp_path_factory):
     return src, out, code
 
 
-def test_all_four_outputs_are_written(sheet_dir):
+def test_all_five_outputs_are_written(sheet_dir):
     _, out, code = sheet_dir
     assert code == 0  # exit 1 would mean an image missed the 30 dB floor
     assert json.loads((out / "sheet.json").read_text())["totals"]["passed"] == 2
-    assert sorted(p.name for p in out.iterdir()) == ["bundle.wbundle", "sheet.csv", "sheet.json", "sheet.pdf"]
+    assert sorted(p.name for p in out.iterdir()) == ["bundle.wbundle", "recipe.wrecipe", "sheet.csv", "sheet.json",
+                                                     "sheet.pdf"]
 
 
 def test_csv_quality_equals_scikit_image_on_the_decoded_bundle(sheet_dir):

@@ -294,7 +294,7 @@ def command(register):
 
 
 def main(argv=None) -> int:
-    from . import cli_extra  # noqa: F401  (registers sheet and train)
+    from . import cli_archive, cli_extra  # noqa: F401  (register batch, restore, sheet and train)
     from .runtime import tune_allocator
 
     tune_allocator()

@@ -42,7 +42,7 @@ def cmd_sheet(a) -> int:
                           skipped=skipped, measures=(a.measure, list(a.tolerance)) if a.measure else None,
                           target_measures=a.target_measures), _progress())
     t = sheet["totals"]
-    print(f"wrote {out}/sheet.pdf, sheet.csv, sheet.json and bundle.wbundle "
+    print(f"wrote {out}/sheet.pdf, sheet.csv, sheet.json, bundle.wbundle and recipe.wrecipe "
           f"({t['bundle_bytes']:,} bytes for {t['images']} images, {100 * t['saving_vs_raw']:.1f} % smaller than raw)")
     for n, v in sheet["folder"]["bd_rate"].items():
         bd = v["psnr"]

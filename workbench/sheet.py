@@ -21,7 +21,7 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__, baselines, bdrate, jobs, metrics, pipeline, sheetpdf
+from . import __version__, archive, baselines, bdrate, jobs, metrics, pipeline, sheetpdf
 from . import measures as _measures
 from .errors import InputError
 from .imagefiles import SourceImage, write_all_atomic
@@ -318,7 +318,10 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
     crops.sort(key=lambda c: c[0])
     # All four files are staged before any is renamed, the JSON (which holds the bundle's
     # SHA-256) last: a failure or a kill leaves the old set, or a new bundle the old JSON disowns.
+    kind = None if shared_ref is None else ("model" if settings.method == "conv" else "basis")
+    recipe = archive.make_recipe(settings, kind, shared_ref)
     write_all_atomic([(outdir / "bundle.wbundle", result.data), (outdir / "sheet.csv", _csv(rows)),
+                      (outdir / "recipe.wrecipe", archive.recipe_bytes(recipe)),
                       (outdir / "sheet.pdf", sheetpdf.render(sheet, rows, crops[:WORST_CROPS], TILE)),
                       (outdir / "sheet.json", json.dumps(_jsonable(sheet), indent=1).encode())], protect=protect)
     yield Progress(total, total, "done")

@@ -78,6 +78,7 @@ class MainWindow(QMainWindow):
         self._shown = None  # (orig, rec) arrays on screen
         self.last_numbers = None
         self.last_measured = None
+        self.last_batch = None
         self.last_error = ""
         self.conv_model_file = None  # a model trained here; None for the shipped one
         self._remote = None  # the helper process of the conv encoder (remote.py), on first use
@@ -193,6 +194,8 @@ class MainWindow(QMainWindow):
         v.addAction(self.act_zoom)
         t = self.menuBar().addMenu("&Tools")
         t.addAction(self.act_train)
+        self.act_archive = act("Apply to an archive…", "save-bundle", self._ask_archive)
+        t.addAction(self.act_archive)
         h = self.menuBar().addMenu("&Help")
         h.addAction(act_about)
         tb = QToolBar("Main")
@@ -680,6 +683,12 @@ class MainWindow(QMainWindow):
             self.status_text.setText(f"Quality sheet written to {tag[1]}")
         elif kind == "train":
             self._on_trained(tag[1], result)
+        elif kind == "batch":
+            self.last_batch = result
+            self.status_text.setText(
+                f"Archive {tag[1]}: {result['done']} of {result['items']} done, {result['failed']} failed, "
+                f"{result['bundle_bytes']:,} bytes" + (f", PSNR mean {result['mean_psnr']:.2f} dB"
+                                                       if result["mean_psnr"] is not None else ""))
 
     def _on_job_failed(self, tag, msg):
         self._end_job()
@@ -803,6 +812,30 @@ class MainWindow(QMainWindow):
         if path:
             Path(path).mkdir(parents=True, exist_ok=True)
             self.save_sheet(path)
+
+    def apply_to_archive(self, src, dst) -> bool:
+        """Start a batch of ``src`` into ``dst`` with the current setting, in a child process."""
+        from .. import archive
+
+        s = self.panel.settings()
+        ref = None
+        if s.method == "conv" and self.conv_model_file is not None:  # a model trained here travels along
+            from ..modelfile import read_model
+
+            ref = read_model(self.conv_model_file).sha256
+            archive.store_shared(Path(dst), "model", Path(self.conv_model_file).read_bytes(), ref)
+        recipe = archive.make_recipe(s, "model" if ref else None, ref)
+        return self._start_job(archive.batch_job, ("batch", Path(dst)), f"compressing {Path(src).name}…",
+                               child_args=(str(src), str(dst), recipe))
+
+    def _ask_archive(self):
+        src = QFileDialog.getExistingDirectory(self, "Archive to compress (searched recursively)",
+                                               str(self.folder or Path.home()))
+        if not src:
+            return
+        dst = QFileDialog.getExistingDirectory(self, "Folder for the bundles and the manifest", str(Path(src).parent))
+        if dst:
+            self.apply_to_archive(src, dst)
 
     def _ask_train(self):
         from . import training

@@ -1,0 +1,163 @@
+"""Archives: a decision applied to a tree, on a process pool or a real Dask cluster, killed
+and resumed, and restored. Real components throughout (no mocks): sqlite3, dask.distributed
+on loopback, subprocesses killed with SIGKILL."""
+
+import hashlib
+import os
+import shutil
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from workbench import archive, cli, pipeline
+from workbench.imagefiles import read_image
+
+
+@pytest.fixture(scope="module")
+def tree(tmp_path_factory):
+    """A nested folder of crops of scikit-image's bundled images, a 16-bit TIFF and a corrupt file."""
+    import tifffile
+    from skimage import data
+
+    src = tmp_path_factory.mktemp("src")
+    (src / "day1" / "cam2").mkdir(parents=True)
+    Image.fromarray(data.astronaut()[:96, :128]).save(src / "day1" / "a.png")
+    Image.fromarray(data.camera()[:80, :96]).save(src / "day1" / "cam2" / "c.png")
+    Image.fromarray(data.chelsea()[:64, :64]).save(src / "k.png")
+    tifffile.imwrite(src / "deep.tif", (data.coffee()[:64, :80].astype(np.uint16) * 257), photometric="rgb")
+    (src / "day1" / "broken.png").write_bytes(b"\x89PNG\r\n\x1a\n not really")
+    return src
+
+
+def _bundles(dst):
+    return {p.relative_to(dst).as_posix(): p.read_bytes() for p in sorted(dst.rglob("*.wbundle"))}
+
+
+def test_a_batch_records_every_source_and_handles_bad_and_16bit_inputs(tree, tmp_path, capsys):
+    dst = tmp_path / "dst"
+    assert cli.main(["batch", str(tree), "-o", str(dst), "--workers", "2", "--step", "5"]) == 1  # one failed
+    rs = {r["path"]: r for r in archive.rows(dst)}
+    assert set(rs) == {"day1/a.png", "day1/cam2/c.png", "day1/broken.png", "k.png", "deep.tif"}
+    assert rs["day1/broken.png"]["status"] == "failed" and "not a readable image" in rs["day1/broken.png"]["error"]
+    assert all(r["status"] == "done" for p, r in rs.items() if p != "day1/broken.png")
+    assert (dst / "day1" / "cam2" / "c.png.wbundle").exists()
+    deep = pipeline.decode((dst / "deep.tif.wbundle").read_bytes())[1][0].pixels
+    assert deep.dtype == np.uint16  # all 16 bits kept
+    for p, r in rs.items():
+        if r["status"] == "done":
+            assert r["source_sha256"] == hashlib.sha256((tree / p).read_bytes()).hexdigest()
+            assert r["bundle_sha256"] == hashlib.sha256((dst / r["bundle"]).read_bytes()).hexdigest()
+
+
+def test_a_process_pool_and_a_dask_cluster_give_byte_identical_bundles(tree, tmp_path):
+    from dask.distributed import LocalCluster
+
+    pool = tmp_path / "pool"
+    cli.main(["batch", str(tree), "-o", str(pool), "--workers", "2"])
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                      dashboard_address=None) as cluster:
+        dask_dst = tmp_path / "dask"
+        cli.main(["batch", str(tree), "-o", str(dask_dst), "--scheduler", cluster.scheduler_address])
+    assert _bundles(pool) == _bundles(dask_dst) and len(_bundles(pool)) == 4
+    workers = {r["worker"] for r in archive.rows(dask_dst) if r["status"] == "done"}
+    assert len(workers) >= 1 and all(":" in w for w in workers)
+
+
+def test_a_rerun_skips_what_is_done_and_redoes_a_changed_source(tree, tmp_path, capsys):
+    src = tmp_path / "src"
+    shutil.copytree(tree, src)
+    dst = tmp_path / "dst"
+    cli.main(["batch", str(src), "-o", str(dst), "--workers", "1"])
+    before = {r["path"]: r for r in archive.rows(dst)}
+    time.sleep(0.01)
+    Image.fromarray(np.zeros((32, 32), np.uint8)).save(src / "k.png")  # changed since
+    cli.main(["batch", str(src), "-o", str(dst), "--workers", "1"])
+    after = {r["path"]: r for r in archive.rows(dst)}
+    assert after["day1/a.png"] == before["day1/a.png"]  # untouched, not redone
+    assert after["k.png"]["source_sha256"] != before["k.png"]["source_sha256"]
+
+
+def _done(dst):
+    try:
+        db = sqlite3.connect(dst / archive.MANIFEST, timeout=1)
+        try:
+            return db.execute("SELECT COUNT(*) FROM items WHERE status='done'").fetchone()[0]
+        finally:
+            db.close()
+    except sqlite3.Error:
+        return 0
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="process groups and SIGKILL")
+def test_a_batch_killed_midway_resumes_with_every_item_done_once_and_verified(tmp_path):
+    from skimage import data
+
+    src = tmp_path / "src"
+    src.mkdir()
+    base = data.astronaut()  # scikit-image's bundled 'astronaut', rolled into 12 distinct frames
+    for i in range(12):
+        Image.fromarray(np.roll(base, 41 * i, axis=1)).save(src / f"f{i:02d}.png")
+    dst = tmp_path / "dst"
+    cmd = [sys.executable, "-m", "workbench", "batch", str(src), "-o", str(dst), "--workers", "1"]
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True)
+    deadline = time.monotonic() + 120
+    while _done(dst) < 3 and time.monotonic() < deadline and proc.poll() is None:
+        time.sleep(0.05)
+    os.killpg(proc.pid, signal.SIGKILL)
+    proc.wait()
+    assert 3 <= _done(dst) < 12  # killed mid-way
+    assert subprocess.run(cmd + ["--verify"], capture_output=True, text=True).returncode == 0
+    rs = archive.rows(dst)
+    assert sorted(r["path"] for r in rs) == [f"f{i:02d}.png" for i in range(12)]  # each once
+    assert all(r["status"] == "done" for r in rs)
+    assert not list(dst.rglob("*.part"))
+    for r in rs:  # every bundle whole and the one the manifest names
+        assert hashlib.sha256((dst / r["bundle"]).read_bytes()).hexdigest() == r["bundle_sha256"]
+
+
+def test_restore_reproduces_the_decoders_pixels_at_the_same_paths(tree, tmp_path, capsys):
+    dst, out = tmp_path / "dst", tmp_path / "out"
+    cli.main(["batch", str(tree), "-o", str(dst), "--workers", "2"])
+    assert cli.main(["restore", str(dst), "-o", str(out), "--verify"]) == 0
+    assert "verified 4" in capsys.readouterr().out
+    for rel in ("day1/a.png", "day1/cam2/c.png", "k.png"):
+        _, decoded = pipeline.decode((dst / (rel + ".wbundle")).read_bytes())
+        assert np.array_equal(read_image(out / rel).pixels, decoded[0].pixels)
+    assert read_image(out / "deep.png").pixels.dtype == np.uint16
+    assert cli.main(["restore", str(dst), "-o", str(out)]) == 0  # a rerun keeps what is there
+    assert "kept 4" in capsys.readouterr().out
+
+
+def test_the_manifest_is_readable_by_sqlite3_on_the_command_line(tree, tmp_path):
+    dst = tmp_path / "dst"
+    cli.main(["batch", str(tree), "-o", str(dst), "--workers", "1"])
+    tool = shutil.which("sqlite3")
+    query = "SELECT path, status FROM items ORDER BY path;"
+    if tool:
+        out = subprocess.run([tool, str(dst / archive.MANIFEST), query], capture_output=True, text=True, check=True)
+        lines = out.stdout.split()
+    else:  # the same file through another process's sqlite3 library
+        code = f"import sqlite3; print(*('|'.join(r) for r in sqlite3.connect({str(dst / archive.MANIFEST)!r}).execute({query!r})))"
+        lines = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.split()
+    assert "day1/a.png|done" in lines and "day1/broken.png|failed" in lines
+
+
+def test_a_sheet_writes_a_recipe_that_a_batch_applies(tmp_path, capsys):
+    from skimage import data
+
+    src = tmp_path / "src"
+    src.mkdir()
+    Image.fromarray(data.camera()[:96, :96]).save(src / "c.png")
+    assert cli.main(["sheet", str(src), "-o", str(tmp_path / "sheet"), "--baselines", "jpeg", "--step", "7",
+                     "--block", "16"]) == 0
+    recipe = archive.read_recipe(tmp_path / "sheet" / "recipe.wrecipe")
+    assert recipe["settings"]["block"] == 16 and recipe["settings"]["step"] == 7
+    cli.main(["batch", str(src), "-o", str(tmp_path / "dst"), "--recipe", str(tmp_path / "sheet" / "recipe.wrecipe")])
+    made = (tmp_path / "dst" / "c.png.wbundle").read_bytes()
+    assert made == (tmp_path / "sheet" / "bundle.wbundle").read_bytes()  # the same decision, the same bytes

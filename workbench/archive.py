@@ -1,0 +1,363 @@
+"""Apply one decision to a whole tree of images, resumably, locally or on a Dask cluster; and back.
+
+* A **recipe** (``.wrecipe``, JSON) is a decision: the settings, the basis or model by
+  SHA-256, the tool's version. The quality sheet writes one; :func:`read_recipe` checks it.
+* :func:`batch_job` turns every image under SRC (recursively) into a bundle under DST at the
+  same relative path plus ``.wbundle`` (one bundle per source file: any one can be restored,
+  moved or deleted alone; a shared basis or model is referred to by hash and stored once in
+  ``DST/shared``). Sources are only read.
+* The **manifest** ``DST/manifest.sqlite`` (sqlite3, WAL) has one row per source: path,
+  size, mtime, SHA-256, status, bundle, bytes, bpp, PSNR, SSIM, seconds, worker, error. A row
+  is committed after its bundle is durably renamed into place, so a kill at any moment loses
+  at most the items in flight; a rerun skips items whose bundle and row agree and redoes the
+  rest, and redoes a source that changed since.
+* Tasks are plain functions of (source, recipe) returning a row (:func:`encode_one`); a local
+  process pool or a ``dask.distributed`` cluster runs them, the driver alone writes the
+  manifest. On a cluster, workers must see SRC and DST at the same paths (a shared file system).
+* :func:`restore_job` decodes a DST tree back to PNG files at the same relative paths.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import socket
+import sqlite3
+import time
+from pathlib import Path
+
+from . import __version__
+from .errors import BundleError, InputError, WorkbenchError
+from .jobs import Progress
+from .names import IMAGE_SUFFIXES
+from .settings import Settings
+
+RECIPE_KIND = "workbench-recipe"
+MANIFEST = "manifest.sqlite"
+SHARED = "shared"
+COLUMNS = ("path", "size", "mtime_ns", "source_sha256", "status", "bundle", "bundle_sha256", "bytes", "bpp", "psnr",
+           "ssim", "seconds", "worker", "error", "images")
+
+
+# ------------------------------------------------------------------ recipes
+
+
+def make_recipe(settings: Settings, shared_kind: str | None = None, shared_ref: str | None = None) -> dict:
+    """A recipe: the settings and, when one is used, the basis or model by content hash."""
+    return {"kind": RECIPE_KIND, "version": 1, "tool": f"workbench {__version__}", "settings": settings.to_dict(),
+            "shared": None if shared_ref is None else {"kind": shared_kind, "sha256": shared_ref}}
+
+
+def recipe_bytes(recipe: dict) -> bytes:
+    return json.dumps(recipe, indent=1, sort_keys=True).encode()
+
+
+def read_recipe(path) -> dict:
+    """Read and check a ``.wrecipe`` file; raises InputError naming what is wrong."""
+    try:
+        d = json.loads(Path(path).read_text())
+    except (OSError, ValueError) as exc:
+        raise InputError(f"{path}: not a readable recipe ({exc})") from None
+    if not isinstance(d, dict) or d.get("kind") != RECIPE_KIND:
+        raise InputError(f"{path}: not a workbench recipe")
+    Settings.from_dict(d.get("settings"))
+    shared = d.get("shared")
+    if shared is not None and not (isinstance(shared, dict) and shared.get("kind") in ("basis", "model")
+                                   and isinstance(shared.get("sha256"), str) and len(shared["sha256"]) == 64):
+        raise InputError(f"{path}: the recipe's basis/model reference is invalid")
+    return d
+
+
+# ------------------------------------------------------------------ the manifest
+
+
+def open_manifest(dst: Path) -> sqlite3.Connection:
+    dst.mkdir(parents=True, exist_ok=True)
+    db = sqlite3.connect(dst / MANIFEST, timeout=30)
+    db.execute("PRAGMA journal_mode=WAL")
+    db.execute("PRAGMA synchronous=FULL")  # a committed row survives a power cut
+    db.execute("CREATE TABLE IF NOT EXISTS items (path TEXT PRIMARY KEY, size INTEGER, mtime_ns INTEGER, "
+               "source_sha256 TEXT, status TEXT, bundle TEXT, bundle_sha256 TEXT, bytes INTEGER, bpp REAL, "
+               "psnr REAL, ssim REAL, seconds REAL, worker TEXT, error TEXT, images INTEGER)")
+    db.execute("CREATE TABLE IF NOT EXISTS run (key TEXT PRIMARY KEY, value TEXT)")
+    return db
+
+
+def _put(db: sqlite3.Connection, row: dict) -> None:
+    db.execute(f"INSERT OR REPLACE INTO items ({', '.join(COLUMNS)}) VALUES ({', '.join('?' * len(COLUMNS))})",
+               [row.get(c) for c in COLUMNS])
+    db.commit()
+
+
+def rows(dst) -> list[dict]:
+    """Every manifest row of a batch output tree, by path."""
+    db = sqlite3.connect(Path(dst) / MANIFEST)
+    try:
+        cur = db.execute(f"SELECT {', '.join(COLUMNS)} FROM items ORDER BY path")
+        return [dict(zip(COLUMNS, r)) for r in cur.fetchall()]
+    finally:
+        db.close()
+
+
+# ------------------------------------------------------------------ one item (runs anywhere)
+
+
+def file_sha256(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for block in iter(lambda: f.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def encode_one(src_root: str, rel: str, dst_root: str, recipe: dict) -> dict:
+    """Encode one source file into its bundle; returns its manifest row (never raises for bad input)."""
+    from . import pipeline
+    from .imagefiles import read_many, write_atomic
+
+    t0 = time.perf_counter()
+    src, dst = Path(src_root) / rel, Path(dst_root) / (rel + ".wbundle")
+    st = src.stat()
+    row = {"path": rel, "size": st.st_size, "mtime_ns": st.st_mtime_ns, "source_sha256": file_sha256(src),
+           "bundle": rel + ".wbundle", "worker": f"{socket.gethostname()}:{os.getpid()}"}
+    try:
+        images, skipped = read_many([src])
+        if skipped:
+            raise InputError(skipped[0][1])
+        settings = Settings.from_dict(recipe["settings"])
+        shared, ref = load_shared(Path(dst_root), recipe)
+        result = pipeline.encode(images, settings, shared=shared, shared_ref=ref)
+        write_atomic(dst, result.data, protect={src})
+        px = sum(r.pixels for r in result.images)
+        row.update(status="done", bundle_sha256=hashlib.sha256(result.data).hexdigest(), bytes=result.size,
+                   bpp=8 * result.size / px, psnr=_mean(r.psnr for r in result.images),
+                   ssim=_mean(r.ssim for r in result.images), images=len(result.images), error=None)
+    except (WorkbenchError, OSError, MemoryError) as exc:
+        row.update(status="failed", error=str(exc).splitlines()[0] if str(exc) else type(exc).__name__)
+    row["seconds"] = time.perf_counter() - t0
+    return row
+
+
+def _mean(values) -> float:
+    v = [x for x in values if x == x and x != float("inf")]
+    return sum(v) / len(v) if v else float("nan")
+
+
+def load_shared(dst: Path, recipe: dict):
+    """The recipe's basis or model from ``DST/shared`` (checked by hash), or (None, None)."""
+    ref = recipe.get("shared")
+    if not ref:
+        return None, None
+    from . import codecs
+
+    path = dst / SHARED / f"{ref['sha256']}.{'wbasis' if ref['kind'] == 'basis' else 'wmodel'}"
+    if ref["kind"] == "model" and not path.exists():
+        builtin = codecs.get("conv").builtin(ref["sha256"])  # the shipped model needs no copy
+        if builtin is not None:
+            return builtin, ref["sha256"]
+    if not path.exists():
+        raise InputError(f"{path}: the recipe's {ref['kind']} is not in {dst / SHARED}; pass it with "
+                         f"--{ref['kind']}")
+    if ref["kind"] == "basis":
+        from .basisfile import load_basis
+
+        shared, sha = load_basis(path)
+    else:
+        shared, sha = codecs.get("conv").load_model(path)
+    if sha != ref["sha256"]:
+        raise BundleError(f"{path}: content does not match the recipe's SHA-256")
+    return shared, sha
+
+
+# ------------------------------------------------------------------ the driver
+
+
+def sources(src: Path) -> list[str]:
+    """Relative POSIX paths of every image file under ``src``, recursively, sorted."""
+    return sorted(p.relative_to(src).as_posix() for p in src.rglob("*")
+                  if p.is_file() and p.suffix.lower() in IMAGE_SUFFIXES)
+
+
+def _up_to_date(dst: Path, src: Path, rel: str, row: dict | None) -> bool:
+    if row is None or row["status"] != "done":
+        return False
+    p, b = src / rel, dst / row["bundle"]
+    try:
+        st = p.stat()
+        if (st.st_size, st.st_mtime_ns) != (row["size"], row["mtime_ns"]) or not b.exists():
+            return False
+        return file_sha256(b) == row["bundle_sha256"] and file_sha256(p) == row["source_sha256"]
+    except OSError:
+        return False
+
+
+def store_shared(dst: Path, kind: str, data: bytes, sha: str) -> None:
+    """Copy a basis or model into ``DST/shared`` once, under its hash."""
+    from .imagefiles import write_atomic
+
+    path = dst / SHARED / f"{sha}.{'wbasis' if kind == 'basis' else 'wmodel'}"
+    if not path.exists():
+        write_atomic(path, data)
+
+
+def batch_job(src, dst, recipe: dict, *, workers: int | None = None, scheduler: str | None = None):
+    """Generator job: bring DST up to date with SRC under ``recipe``; returns the summary dict.
+
+    ``scheduler``: None for a local process pool of ``workers`` processes, ``"local"`` for a
+    Dask ``LocalCluster``, or a Dask scheduler address (``tcp://host:port``).
+    """
+    src, dst = Path(src).resolve(), Path(dst).resolve()
+    if not src.is_dir():
+        raise InputError(f"{src}: not a folder")
+    if dst == src or src in dst.parents:
+        raise InputError(f"{dst}: choose an output folder outside the source tree")
+    db = open_manifest(dst)
+    try:
+        db.execute("INSERT OR REPLACE INTO run VALUES ('source', ?)", (str(src),))
+        db.execute("INSERT OR REPLACE INTO run VALUES ('recipe', ?)", (json.dumps(recipe, sort_keys=True),))
+        db.commit()
+        known = {r["path"]: r for r in rows(dst)}
+        todo = [rel for rel in sources(src) if not _up_to_date(dst, src, rel, known.get(rel))]
+        total, done = len(todo), 0
+        yield Progress(0, max(total, 1), f"{total} to do, {len(known) - len(set(known) & set(todo))} up to date")
+        with _runner(workers, scheduler) as run:
+            for row in run(encode_one, [(str(src), rel, str(dst), recipe) for rel in todo]):
+                _put(db, row)
+                done += 1
+                yield Progress(done, max(total, 1), f"{row['path']}: {row['status']}")
+        return summary(dst)
+    finally:
+        db.close()
+
+
+class _runner:
+    """Context manager giving ``run(fn, arg_tuples)`` that yields results as they complete."""
+
+    def __init__(self, workers, scheduler):
+        self.workers = workers or os.cpu_count() or 1
+        self.scheduler = scheduler
+        self._close = []
+
+    def __enter__(self):
+        if self.scheduler is None:
+            from . import jobs
+
+            pool = jobs.pool(self.workers)
+            self._close.append(lambda: pool.shutdown(wait=False, cancel_futures=True))
+
+            def run(fn, args):
+                from concurrent.futures import as_completed
+
+                futures = [pool.submit(fn, *a) for a in args]
+                for f in as_completed(futures):
+                    yield f.result()
+            return run
+        try:
+            from dask.distributed import Client, LocalCluster, as_completed
+        except ImportError:
+            raise InputError("--scheduler needs dask.distributed: pip install -e \".[cluster]\"") from None
+        if self.scheduler == "local":
+            cluster = LocalCluster(n_workers=self.workers, threads_per_worker=1, host="127.0.0.1",
+                                   dashboard_address=None)
+            client = Client(cluster)
+            self._close += [client.close, cluster.close]
+        else:
+            client = Client(self.scheduler, timeout=30)
+            self._close.append(client.close)
+
+        def run(fn, args):
+            futures = [client.submit(fn, *a, pure=False) for a in args]
+            for f in as_completed(futures):
+                yield f.result()
+        return run
+
+    def __exit__(self, *exc):
+        for close in self._close:
+            try:
+                close()
+            except Exception:  # noqa: BLE001 - shutting down after an interrupt or an error
+                pass
+        return False
+
+
+def summary(dst) -> dict:
+    """Counts, bytes in and out, mean and lowest PSNR/SSIM, failures with reasons."""
+    rs = rows(dst)
+    ok = [r for r in rs if r["status"] == "done"]
+    src_bytes, out_bytes = sum(r["size"] for r in ok), sum(r["bytes"] for r in ok)
+    fin = [r["psnr"] for r in ok if r["psnr"] is not None and r["psnr"] == r["psnr"]]
+    ss = [r["ssim"] for r in ok if r["ssim"] is not None and r["ssim"] == r["ssim"]]
+    return {"items": len(rs), "done": len(ok), "failed": sum(r["status"] == "failed" for r in rs),
+            "source_bytes": src_bytes, "bundle_bytes": out_bytes,
+            "ratio": src_bytes / out_bytes if out_bytes else None,
+            "mean_psnr": sum(fin) / len(fin) if fin else None, "min_psnr": min(fin) if fin else None,
+            "mean_ssim": sum(ss) / len(ss) if ss else None, "min_ssim": min(ss) if ss else None,
+            "failures": [{"path": r["path"], "error": r["error"]} for r in rs if r["status"] == "failed"]}
+
+
+def report_csv(dst) -> bytes:
+    import csv
+    import io
+
+    buf = io.StringIO()
+    w = csv.writer(buf)
+    w.writerow(COLUMNS)
+    for r in rows(dst):
+        w.writerow(["" if r[c] is None else r[c] for c in COLUMNS])
+    return buf.getvalue().encode()
+
+
+# ------------------------------------------------------------------ back again
+
+
+def restore_job(dst, out, *, verify: bool = False, force: bool = False):
+    """Generator job: decode every bundle of a batch tree into PNGs at the same relative paths
+    (``a/b.tif`` -> ``OUT/a/b.png``; pages of a stack -> ``OUT/a/b[0].png``…). Outputs that
+    exist are kept (a rerun completes what is missing) unless ``force``. With ``verify``, each
+    bundle's decoded pixels are re-measured against its source where it still exists, and
+    compared with the manifest. Returns ``{"restored", "kept", "verified", "mismatches"}``."""
+    from . import metrics, pipeline
+    from .imagefiles import encode_png, read_many, write_all_atomic
+    from .names import output_paths
+
+    dst, out = Path(dst), (None if out is None else Path(out))
+    if not (dst / MANIFEST).exists():
+        raise InputError(f"{dst}: no {MANIFEST} here; not a batch output folder")
+    db = sqlite3.connect(dst / MANIFEST)
+    try:
+        src = Path((db.execute("SELECT value FROM run WHERE key='source'").fetchone() or [""])[0])
+        recipe = json.loads((db.execute("SELECT value FROM run WHERE key='recipe'").fetchone() or ["{}"])[0])
+    finally:
+        db.close()
+    done = [r for r in rows(dst) if r["status"] == "done"]
+    stats = {"restored": 0, "kept": 0, "verified": 0, "mismatches": []}
+    shared, ref = load_shared(dst, recipe) if recipe else (None, None)
+    for n, r in enumerate(done):
+        yield Progress(n, len(done), r["path"])
+        data = (dst / r["bundle"]).read_bytes()
+        if hashlib.sha256(data).hexdigest() != r["bundle_sha256"]:
+            stats["mismatches"].append(f"{r['bundle']}: bundle bytes differ from the manifest's SHA-256")
+            continue
+        _, decoded = pipeline.decode(data, shared=shared, shared_ref=ref)
+        rel = Path(r["path"])
+        names = [d.name for d in decoded]
+        targets = [] if out is None else [out / rel.parent / p for p in output_paths(names)]
+        if out is None:
+            pass  # checking only
+        elif all(t.exists() for t in targets) and not force:
+            stats["kept"] += 1
+        else:
+            write_all_atomic((t, encode_png(d.pixels)) for t, d in zip(targets, decoded))
+            stats["restored"] += 1
+        if verify and (src / rel).exists():
+            images, _ = read_many([src / rel])
+            psnrs = [metrics.psnr(i.pixels, d.pixels[..., : i.pixels.shape[2]] if i.pixels.ndim == 3 else
+                                  d.pixels if d.pixels.ndim == 2 else d.pixels[..., 0], data_range=i.peak)
+                     for i, d in zip(images, decoded)]
+            got = _mean(psnrs)
+            if not (abs(got - r["psnr"]) <= 1e-6 or (got == float("inf") and r["psnr"] in (None, float("inf")))):
+                stats["mismatches"].append(f"{r['path']}: PSNR {got:.6f} dB now, {r['psnr']:.6f} dB in the manifest")
+            stats["verified"] += 1
+    yield Progress(len(done), len(done), "done")
+    return stats
