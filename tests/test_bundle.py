@@ -54,8 +54,8 @@ def test_folder_basis_is_stored_once_and_round_trips(astronaut, chelsea):
 
 
 def test_components_limit_what_is_kept(camera):
-    few = _encode({"c": camera}, step=2, components=3)
-    many = _encode({"c": camera}, step=2, components=40)
+    few = _encode({"c": camera}, step=2, count=3)
+    many = _encode({"c": camera}, step=2, count=40)
     assert few.images[0].kept <= 3 < many.images[0].kept
     assert few.size < many.size and few.images[0].psnr < many.images[0].psnr
 

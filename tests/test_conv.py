@@ -78,7 +78,7 @@ def test_embedded_model_travels_with_the_bundle(tiny_model, small_images):
 
 def test_fewer_latent_channels_cost_fewer_bytes(tiny_model, small_images):
     _, model, sha, _ = tiny_model
-    sizes = [pipeline.encode(small_images[:1], Settings(method="conv", latent=c, step=2.0), shared=model, shared_ref=sha).size
+    sizes = [pipeline.encode(small_images[:1], Settings(method="conv", count=c, step=2.0), shared=model, shared_ref=sha).size
              for c in (2, 8)]
     assert sizes[0] < sizes[1]
 

@@ -45,3 +45,21 @@ def test_conv_bundle_and_model_file_mutants_give_only_our_error():
     conv = codecs.get("conv")
     report_m = fuzzing.run(conv.shared_from_bytes, model.data.raw, modelfile.MAGIC, modelfile.VERSION, seed=4, count=40)
     assert not report.bugs and not report_m.bugs, _bugs(report) + _bugs(report_m)
+
+
+@pytest.mark.parametrize("arch", [{"hidden": 16, "latent": 8, "zz": 1}, {"hidden": True, "latent": 8},
+                                  {"hidden": 16.0, "latent": 8}, {"hidden": 16}],
+                         ids=["extra key", "bool", "float", "missing"])
+def test_a_model_file_with_a_malformed_architecture_is_refused(arch):
+    # found by the long fuzzer run (bench_fuzz.py): these reached torch's constructors
+    pytest.importorskip("torch")
+    from workbench import container
+    from workbench.errors import BundleError
+
+    model, _ = codecs.get("conv").default_model()
+    chunks = container.unpack(model.data.raw, modelfile.MAGIC, (modelfile.VERSION,), "m")
+    meta = container.unpack_json(chunks[0][1], "m")
+    bad = container.pack(modelfile.MAGIC, modelfile.VERSION,
+                         [(b"META", container.pack_json({**meta, "arch": arch}))] + chunks[1:])
+    with pytest.raises(BundleError, match="architecture"):
+        codecs.get("conv").shared_from_bytes(bad)

@@ -120,7 +120,7 @@ def test_settings_are_remembered_between_runs(qtbot, tmp_path, folder):
     store = QSettings(str(tmp_path / "s.ini"), QSettings.Format.IniFormat)
     w = MainWindow(store)
     qtbot.addWidget(w)
-    w.panel.apply(Settings(block=16, components=30, step=5.0, chroma="444"))
+    w.panel.apply(Settings(block=16, count=30, step=5.0, chroma="444"))
     w.folder = folder
     w.close()
     w2 = MainWindow(QSettings(str(tmp_path / "s.ini"), QSettings.Format.IniFormat))
@@ -148,7 +148,7 @@ def test_quality_sheet_is_saved_from_the_window(qtbot, window, folder, tmp_path)
     out = tmp_path / "report"
     with qtbot.waitSignal(window.jobs.finished, timeout=120000):
         assert window.save_sheet(out)
-    assert {p.name for p in out.iterdir()} == {"bundle.wbundle", "sheet.pdf", "sheet.csv", "sheet.json"}
+    assert {p.name for p in out.iterdir()} == {"bundle.wbundle", "sheet.pdf", "sheet.csv", "sheet.json", "recipe.wrecipe"}
 
 
 def test_quality_sheet_with_the_conv_encoder_is_saved_from_a_child_process(qtbot, window, tmp_path, chelsea):
@@ -158,7 +158,7 @@ def test_quality_sheet_with_the_conv_encoder_is_saved_from_a_child_process(qtbot
     assert window.save_sheet(out)
     qtbot.waitUntil(lambda: not window.jobs.active, timeout=240000)
     assert window.last_error == ""
-    assert {p.name for p in out.iterdir()} == {"bundle.wbundle", "sheet.pdf", "sheet.csv", "sheet.json"}
+    assert {p.name for p in out.iterdir()} == {"bundle.wbundle", "sheet.pdf", "sheet.csv", "sheet.json", "recipe.wrecipe"}
     contents, _ = pipeline.decode((out / "bundle.wbundle").read_bytes())
     assert contents.settings.method == "conv"
 
@@ -376,7 +376,7 @@ def test_each_method_keeps_its_own_count_and_conv_shows_the_chroma_it_uses(qtbot
     p.method.setCurrentIndex(p.method.findData("conv"))
     assert p.count.value() == p.count.maximum()  # not the KLT's 1 (a grey picture)
     assert p.chroma.currentData() == "444" and not p.chroma.isEnabled() and not p.block.isEnabled()
-    assert p.settings().latent == p.count.maximum()
+    assert p.settings().count is None  # all of them
     p.method.setCurrentIndex(p.method.findData("klt"))
     assert p.count.value() == 1 and p.chroma.currentData() == "420" and p.chroma.isEnabled()
 

@@ -45,7 +45,7 @@ def _entry(**kw):
 
 
 @pytest.mark.parametrize("edit", [
-    _settings(block=8.0), _settings(components=float("inf")), _settings(components=10**400),
+    _settings(block=8.0), _settings(count=float("inf")), _settings(count=10**400),
     _settings(step=float("inf")), _settings(step=10**400), _settings(step=float("nan")),
     _settings(latent=True), _settings(target=["psnr", {}]), _settings(target="psnr"),
     _settings(deadzone=None), _settings(colour="yes"),

@@ -15,7 +15,7 @@ def preview(request):
     from skimage import data
 
     # scikit-image's bundled 'astronaut' (512x512 RGB)
-    return pipeline.ImagePreview(SourceImage("astronaut", data.astronaut()), Settings(components=12, step=6.0))
+    return pipeline.ImagePreview(SourceImage("astronaut", data.astronaut()), Settings(count=12, step=6.0))
 
 
 @pytest.mark.parametrize("factor", [2, 4, 8])
@@ -45,8 +45,8 @@ def test_a_full_scale_sketch_of_a_region_matches_the_decoder_there(preview):
 
 
 def test_a_sketch_follows_the_component_count(preview):
-    few = preview.sketch(preview.settings.replace(components=2), 4).pixels.astype(int)
-    many = preview.sketch(preview.settings.replace(components=40), 4).pixels.astype(int)
+    few = preview.sketch(preview.settings.replace(count=2), 4).pixels.astype(int)
+    many = preview.sketch(preview.settings.replace(count=40), 4).pixels.astype(int)
     orig = preview.original_small(4).astype(int)
     assert np.mean(np.abs(many - orig)) < np.mean(np.abs(few - orig))
 
@@ -91,7 +91,7 @@ def test_the_helper_process_counts_the_same_bytes_as_the_coder(preview, camera):
 
     coder = CoderProcess()
     try:
-        for p in (preview, pipeline.ImagePreview(SourceImage("camera", camera), Settings(components=30))):
+        for p in (preview, pipeline.ImagePreview(SourceImage("camera", camera), Settings(count=30))):
             coded, px, n = p.evaluate(p.settings, coder)
             assert n.bytes == len(pipeline.encode([p.img], p.settings).data)
             assert coder.submit(*p.codec.size_task(coded)).result() == len(p.codec.serialise(coded))

@@ -27,7 +27,7 @@ def cat(chelsea):
 
 
 def test_remote_preview_gives_the_pixels_and_numbers_of_the_local_one(helper, cat):
-    s = Settings(method="conv", latent=12)
+    s = Settings(method="conv", count=12)
     remote = helper.open("k", cat, s)
     model, ref = codecs.get("conv").load_model(None)  # the shipped model, as the helper uses it
     local = pipeline.ImagePreview(cat, s, shared=model, shared_ref=ref)

@@ -36,13 +36,13 @@ def compress(images, method: str = "klt", *, basis: Basis | None = None, basis_r
     images : dict of str -> ndarray, or list of ndarray
         (H, W) grey, (H, W, 3) RGB or (H, W, 4) RGBA, uint8 or uint16.
     method : str
-        ``"klt"`` or ``"conv"``.
+        A registered method (:func:`workbench.codecs.names`).
     basis : Basis, optional
         External folder basis (see :func:`workbench.basisfile.load_basis`); the bundle
         refers to it by ``basis_ref`` instead of carrying it.
     **settings
-        Fields of :class:`workbench.Settings` (``block``, ``components``, ``step``,
-        ``chroma``, ``basis_scope``, ``target``...).
+        Fields of :class:`workbench.Settings` (``block``, ``count``, ``step``, ``chroma``,
+        ``basis_scope``, ``target``...).
 
     Examples
     --------

@@ -36,6 +36,7 @@ from .settings import Settings
 RECIPE_KIND = "workbench-recipe"
 MANIFEST = "manifest.sqlite"
 SHARED = "shared"
+SUFFIXES = {"basis": "wbasis", "model": "wmodel"}  # file kinds of the shared sides
 COLUMNS = ("path", "size", "mtime_ns", "source_sha256", "status", "bundle", "bundle_sha256", "bytes", "bpp", "psnr",
            "ssim", "seconds", "worker", "error", "images")
 
@@ -151,20 +152,15 @@ def load_shared(dst: Path, recipe: dict):
         return None, None
     from . import codecs
 
-    path = dst / SHARED / f"{ref['sha256']}.{'wbasis' if ref['kind'] == 'basis' else 'wmodel'}"
-    if ref["kind"] == "model" and not path.exists():
-        builtin = codecs.get("conv").builtin(ref["sha256"])  # the shipped model needs no copy
+    codec = codecs.get(recipe["settings"]["method"])
+    path = dst / SHARED / f"{ref['sha256']}.{SUFFIXES[ref['kind']]}"
+    if not path.exists():
+        builtin = codec.builtin(ref["sha256"])  # a shipped model needs no copy
         if builtin is not None:
             return builtin, ref["sha256"]
-    if not path.exists():
         raise InputError(f"{path}: the recipe's {ref['kind']} is not in {dst / SHARED}; pass it with "
                          f"--{ref['kind']}")
-    if ref["kind"] == "basis":
-        from .basisfile import load_basis
-
-        shared, sha = load_basis(path)
-    else:
-        shared, sha = codecs.get("conv").load_model(path)
+    shared, sha = codec.load_shared(path)
     if sha != ref["sha256"]:
         raise BundleError(f"{path}: content does not match the recipe's SHA-256")
     return shared, sha
@@ -196,7 +192,7 @@ def store_shared(dst: Path, kind: str, data: bytes, sha: str) -> None:
     """Copy a basis or model into ``DST/shared`` once, under its hash."""
     from .imagefiles import write_atomic
 
-    path = dst / SHARED / f"{sha}.{'wbasis' if kind == 'basis' else 'wmodel'}"
+    path = dst / SHARED / f"{sha}.{SUFFIXES[kind]}"
     if not path.exists():
         write_atomic(path, data)
 

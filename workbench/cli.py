@@ -12,7 +12,7 @@ import os
 import sys
 from pathlib import Path
 
-from . import __version__
+from . import __version__, codecs
 from .errors import Cancelled, WorkbenchError
 from .settings import BLOCK_SIZES, Settings
 
@@ -21,10 +21,12 @@ EPILOG = "Steps are in 8-bit grey levels (1/255 of full scale) for 8- and 16-bit
 
 def _add_codec_options(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("codec")
-    g.add_argument("--method", default="klt", choices=["klt", "conv"], help="transform: block KLT or the learned conv encoder (default klt)")
+    g.add_argument("--method", default="klt", choices=codecs.names(),
+                   help="transform: " + ", ".join(f"{n} ({codecs.label(n)})" for n in codecs.names()) + " (default klt)")
     g.add_argument("--block", type=int, default=8, choices=BLOCK_SIZES, help="KLT patch side B (default 8)")
-    g.add_argument("--components", type=int, metavar="K", help="KLT components kept per patch (default all B*B)")
-    g.add_argument("--latent", type=int, metavar="C", help="conv latent channels kept (default all)")
+    g.add_argument("--count", "--components", "--latent", dest="count", type=int, metavar="K",
+                   help="what the method keeps: " + ", ".join(f"{codecs.traits(n).count_label} ({n})"
+                                                             for n in codecs.names()) + " (default all)")
     g.add_argument("--chroma", default="420", choices=["420", "444"], help="chroma sampling for colour images (default 420)")
     g.add_argument("--basis-scope", default="image", choices=["image", "folder"],
                    help="KLT basis per image, or one for all images stored once in the bundle (default image)")
@@ -72,24 +74,22 @@ def settings_from_args(a) -> Settings:
         v = getattr(a, f"target_{kind}", None)
         if v is not None:
             target = (kind, v)
-    kw = dict(method=a.method, block=a.block, components=a.components, chroma=a.chroma,
-              basis_scope=a.basis_scope, target=target, latent=a.latent)
+    kw = dict(method=a.method, block=a.block, count=a.count, chroma=a.chroma, basis_scope=a.basis_scope,
+              target=target)
     if a.step is not None:
         kw["step"] = a.step
     return Settings(**kw)
 
 
-def _shared_from_args(a):
-    """External shared side (basis or model) and its hash, or (None, None)."""
-    if getattr(a, "basis", None):
-        from .basisfile import load_basis
+def _shared_from_args(a, method: str | None = None):
+    """The shared side (basis or model) given by --basis/--model, and its hash, or (None, None).
 
-        return load_basis(a.basis)
-    if getattr(a, "method", "klt") == "conv" or getattr(a, "model", None):
-        from .codecs import get
-
-        return get("conv").load_model(a.model)
-    return None, None
+    ``method`` is the one whose file it is (a bundle's, when decoding); by default ``--method``.
+    """
+    path = getattr(a, "basis", None) or getattr(a, "model", None)
+    if not path:
+        return None, None
+    return codecs.get(method or a.method).load_shared(path)
 
 
 def _read_inputs(inputs):
@@ -165,8 +165,10 @@ def cmd_decode(a) -> int:
     from .imagefiles import encode_png, write_all_atomic
     from .names import output_paths
 
+    from . import bundle
+
     data = _read_bundle(a.bundle)
-    shared, ref = _shared_from_args(a)
+    shared, ref = _shared_from_args(a, bundle.parse(data, max_pixels=a.max_pixels).settings.method)
     _, decoded = pipeline.decode(data, shared=shared, shared_ref=ref, max_pixels=a.max_pixels)
     out = Path(a.output)
     targets = [out / p for p in output_paths([d.name for d in decoded])]
@@ -205,8 +207,8 @@ def cmd_info(a) -> int:
     s = c.settings
     n = len(c.entries)
     print(f"{a.bundle}: {c.size} bytes, {n} image{'' if n == 1 else 's'}, made by {info['tool']}")
-    side = "model" if s.method == "conv" else "basis"
-    print(f"{s.describe()}; {side} {info['basis']}")
+    side = s.traits.shared_kind
+    print(s.describe() + (f"; {side} {info['basis']}" if side else ""))
     for e in info["images"]:
         print(f"  {e['name']}: {e['width']}x{e['height']} {e['bits']}-bit {e['channels']} ch"
               f"{' +alpha' if e['alpha'] else ''}, {e['payload_bytes']} bytes")
@@ -260,7 +262,7 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--model", metavar="FILE", help="the .wmodel file the bundle was made with, if not the shipped one")
     d.add_argument("--force", action="store_true", help="replace existing files in OUTDIR")
     _add_budget_option(d)
-    d.set_defaults(func=cmd_decode, method="klt")
+    d.set_defaults(func=cmd_decode)
 
     i = sub.add_parser("info", help="describe a bundle without decoding it")
     i.add_argument("bundle", metavar="BUNDLE")

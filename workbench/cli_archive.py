@@ -62,15 +62,17 @@ def _recipe_from_args(a, dst: Path) -> dict:
         images, _ = read_many([Path(a.src) / files[i] for i in sorted(pick)])
         if not images:
             raise InputError("no readable images to fit a basis on")
+        if not settings.traits.folder_scope:
+            raise InputError(f"--fit-basis-on: the {settings.traits.label} fits nothing on a folder")
         s = settings.replace(basis_scope="folder")
-        basis, _, _ = get("klt").prepare_shared([pipeline.image_planes(i, s.chroma) for i in images], s)
+        basis, _, _ = get(s.method).prepare_shared([pipeline.image_planes(i, s.chroma) for i in images], s)
         sha = basis_hash(basis_to_bytes(basis))
         archive.store_shared(dst, "basis", basis_file_bytes(basis, sources=[i.name for i in images]), sha)
         return archive.make_recipe(settings, "basis", sha)
     shared, ref = _shared_from_args(a)
     if ref is None:
         return archive.make_recipe(settings)
-    kind = "basis" if a.basis else "model"
+    kind = settings.traits.shared_kind
     data = Path(a.basis or a.model).read_bytes() if (a.basis or a.model) else shared.data.raw
     archive.store_shared(dst, kind, data, ref)
     return archive.make_recipe(settings, kind, ref)

@@ -80,9 +80,10 @@ def parse_model(data: bytes) -> ModelData:
     if not isinstance(meta, dict) or meta.get("kind") != "conv-model":
         raise BundleError("model file metadata is not a conv model description")
     arch = meta.get("arch")
-    if not (isinstance(arch, dict) and isinstance(arch.get("hidden"), int) and isinstance(arch.get("latent"), int)
+    if not (isinstance(arch, dict) and set(arch) == {"hidden", "latent"}
+            and all(type(arch[k]) is int for k in arch)  # not bool, not float
             and 1 <= arch["hidden"] <= MAX_HIDDEN and 1 <= arch["latent"] <= MAX_CHANNELS):
-        raise BundleError("model file has an invalid architecture")
+        raise BundleError("model file has an invalid architecture (exactly 'hidden' and 'latent', whole numbers)")
     si = meta.get("scale_index")
     if not (isinstance(si, list) and len(si) == arch["latent"] and all(isinstance(v, int) and abs(v) < 10_000 for v in si)):
         raise BundleError("model file has invalid entropy-model scales")

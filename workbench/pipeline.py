@@ -100,7 +100,7 @@ class ImageResult:
     def summary(self) -> dict:
         return {"name": self.name, "width": self.width, "height": self.height, "bytes": round(self.bytes, 1),
                 "bpp": self.bpp, "psnr": self.psnr, "ssim": self.ssim, "step": self.step,
-                "components": self.kept, "target_met": self.target_met}
+                "count": self.kept, "target_met": self.target_met}
 
 
 @dataclass
@@ -232,10 +232,13 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
         met = None
         step = settings.step
         mref = None if not measures else measures_mod.Reference(measures, img.pixels, img.peak)
+
+        def at(s, analysis=analysis):
+            return codec.quantise(analysis, step=s, count=settings.count)
+
         if target_measures and mref is not None:
             def passes(s):
-                rec = planes_to_pixels(codec.quantise(analysis, s).planes, img.pixels.shape[:2], settings.chroma,
-                                       img.bits)
+                rec = planes_to_pixels(at(s).planes, img.pixels.shape[:2], settings.chroma, img.bits)
                 return 1.0 if mref.judge(rec).ok else 0.0
             step, met = search_step(passes, "psnr", 0.5)
         elif settings.target is not None:
@@ -243,12 +246,12 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
             overhead = 8 * _overhead_bytes(img, settings, shared_ref)
             if kind == "bpp":
                 def evaluate(s):
-                    return (8 * len(codec.serialise(codec.quantise(analysis, s))) + overhead) / (img.width * img.height)
+                    return (8 * len(codec.serialise(at(s))) + overhead) / (img.width * img.height)
             else:
                 def evaluate(s):
-                    return _measure(kind, img, codec.quantise(analysis, s).planes, settings.chroma)
+                    return _measure(kind, img, at(s).planes, settings.chroma)
             step, met = search_step(evaluate, kind, value)
-        coded = codec.quantise(analysis, step)
+        coded = at(step)
         advice = None if met in (None, True) else target_advice(img, settings, evaluate(step), shared)
         payload = codec.serialise(coded)
         p = s = float("nan")
@@ -292,25 +295,28 @@ LOSSLESS_CHECK_BPP = 4.0  # from this rate on, compare the payload with the sour
 def target_advice(img: SourceImage, settings: Settings, reached: float, shared=None) -> str:
     """Why a quality or rate target was missed, and what would meet it (one sentence or two).
 
-    For a colour KLT image at 4:2:0 it tries 4:4:4, which keeps the chroma detail that a
-    PSNR or SSIM over R, G and B counts.
+    For a colour image at 4:2:0, with a method that lets the chroma be chosen, it tries
+    4:4:4, which keeps the chroma detail that a PSNR or SSIM over R, G and B counts.
     """
     kind, value = settings.target
     unit = {"psnr": " dB", "ssim": "", "bpp": " bpp"}[kind]
     text = (f"The {kind.upper()} target {value:g}{unit} is out of reach: the finest step gives {reached:.4g}{unit}."
             if kind != "bpp" else
             f"The rate target {value:g} bpp is out of reach: the coarsest step needs {reached:.4g} bpp.")
-    if kind != "bpp" and settings.method == "klt" and settings.chroma == "420" and img.channels == 3:
+    if kind != "bpp" and settings.traits.fixed_chroma is None and settings.chroma == "420" and img.channels == 3:
         full = settings.replace(chroma="444", target=None)
-        codec = codecs.get("klt")
+        codec = codecs.get(settings.method)
         a = codec.analyse(image_planes(img, "444"), full, shared if settings.basis_scope == "folder" else None)
 
+        def at(step):
+            return codec.quantise(a, step=step, count=settings.count)
+
         def quality(step):
-            return _measure(kind, img, codec.quantise(a, step).planes, "444")
+            return _measure(kind, img, at(step).planes, "444")
 
         step, met = search_step(quality, kind, value)
         if met:
-            bpp = 8 * len(codec.serialise(codec.quantise(a, step))) / (img.width * img.height)
+            bpp = 8 * len(codec.serialise(at(step))) / (img.width * img.height)
             text += f" With 4:4:4 chroma it reaches {quality(step):.4g}{unit} at {bpp:.2f} bpp (step {step:.3g})."
         else:
             text += f" Even 4:4:4 chroma reaches only {quality(STEP_RANGE[0]):.4g}{unit}."
@@ -343,7 +349,7 @@ def decode_job(data: bytes, *, shared=None, shared_ref: str | None = None, max_p
     if contents.shared is not None:
         shared = codec.shared_from_bytes(contents.shared)
     elif contents.basis_ref is not None:
-        if shared is None and hasattr(codec, "builtin"):
+        if shared is None:
             shared, shared_ref = codec.builtin(contents.basis_ref), contents.basis_ref
         if shared is None:
             raise BundleError(f"this bundle needs its external basis/model (sha256 {contents.basis_ref[:12]}…); pass it with --basis/--model")
@@ -379,9 +385,6 @@ class RDPoint:
     measured: object | None = None  # measures.Outcome, when rd_points was given a reference
 
 
-DEFAULT_STEPS = (2.0, 3.0, 4.5, 6.5, 9.5, 14.0, 20.0, 30.0, 44.0, 64.0)
-
-
 def rd_points(img: SourceImage, settings: Settings, steps=None, *, shared=None, shared_ref=None,
               with_ssim: bool = True, ssim_ref=None, measure_ref=None) -> list[RDPoint]:
     """Rate–distortion points of one image, each the size of a real one-image bundle.
@@ -392,13 +395,13 @@ def rd_points(img: SourceImage, settings: Settings, steps=None, *, shared=None, 
     measurements found in its reconstruction.
     """
     codec = codecs.get(settings.method)
-    steps = steps or getattr(codec, "default_steps", DEFAULT_STEPS)
+    steps = steps or settings.traits.rd_steps
     analysis = codec.analyse(image_planes(img, settings.chroma), settings, shared)
     alpha = None if img.alpha is None else encode_alpha(img.alpha)
     meta = _meta(settings, [img], shared_ref)
     out = []
     for step in steps:
-        coded = codec.quantise(analysis, step)
+        coded = codec.quantise(analysis, step=step, count=settings.count)
         size = len(bundle.assemble(dict(meta, images=[dict(m) for m in meta["images"]]), None,
                                    [codec.serialise(coded)], [alpha]))
         rec = planes_to_pixels(coded.planes, img.pixels.shape[:2], settings.chroma, img.bits)
@@ -474,21 +477,16 @@ class ImagePreview:
     def channels(self) -> int | None:
         """The most components this method offers here (the conv model's latent
         channels), or None where the block size sets it."""
-        model = getattr(self.analysis, "model", None)
-        return None if model is None else model.channels
+        return self.codec.count_range(self.analysis)
 
     def energy_kept(self):
-        basis = getattr(self.analysis, "basis", None)
-        return None if basis is None else basis.energy_kept()
+        return self.codec.energy_kept(self.analysis)
 
     def reconstruct(self, settings: Settings):
         """``(coded, pixels)`` at ``settings.step`` with ``settings``' component count."""
-        import dataclasses
-
         if not self.compatible(settings):
             raise InputError("settings changed the transform; make a new preview")
-        analysis = dataclasses.replace(self.analysis, settings=settings)
-        coded = self.codec.quantise(analysis, settings.step)
+        coded = self.codec.quantise(self.analysis, step=settings.step, count=settings.count)
         px = planes_to_pixels(coded.planes, self.img.pixels.shape[:2], settings.chroma, self.img.bits)
         return coded, px
 
@@ -496,7 +494,7 @@ class ImagePreview:
         """A fast approximate view of the reconstruction at ``settings`` for a dragging
         slider: ``region`` (y0, y1, x0, x1 in image pixels, default all) at 1/``factor``
         scale; None when the method has no such view (then use :meth:`reconstruct`)."""
-        if getattr(self.codec, "sketch", None) is None:
+        if not self.settings.traits.has_sketch:
             return None
         if not self.compatible(settings):
             raise InputError("settings changed the transform; make a new preview")
@@ -534,27 +532,27 @@ class ImagePreview:
         read-outs. The entropy coder runs beside the synthesis and SSIM: in ``coder`` (a
         :class:`workbench.coderproc.CoderProcess`) when given and the codec allows, else in
         a thread (where it competes for the GIL)."""
-        import dataclasses
         from concurrent.futures import ThreadPoolExecutor
 
         if not self.compatible(settings):
             raise InputError("settings changed the transform; make a new preview")
-        coded = self.codec.quantise(dataclasses.replace(self.analysis, settings=settings), settings.step)
+        coded = self.codec.quantise(self.analysis, step=settings.step, count=settings.count)
         with ThreadPoolExecutor(max_workers=1) as threads:
-            if coder is not None and hasattr(self.codec, "size_task"):
-                size = coder.submit(*self.codec.size_task(coded))
+            task = None if coder is None else self.codec.size_task(coded)
+            if task is not None:
+                size = coder.submit(*task)
             else:
                 size = threads.submit(lambda: len(self.codec.serialise(coded)))
             px = planes_to_pixels(coded.planes, self.img.pixels.shape[:2], settings.chroma, self.img.bits)
-            n = self._measure(coded, px, size.result)
+            n = self._measure(coded, px, size.result, settings)
         return coded, px, n
 
-    def _measure(self, coded, pixels, payload_size) -> Numbers:
+    def _measure(self, coded, pixels, payload_size, settings: Settings) -> Numbers:
         img = self.img
         if self._ssim_ref is None and min(img.height, img.width) > 11:
             self._ssim_ref = metrics.SSIMReference(img.pixels, data_range=img.peak)
         p = metrics.psnr(img.pixels, pixels, data_range=img.peak)
         s = self._ssim_ref.ssim(pixels) if self._ssim_ref is not None else float("nan")
-        size = _overhead_bytes(img, coded.analysis.settings, self.shared_ref) + payload_size()
+        size = _overhead_bytes(img, settings, self.shared_ref) + payload_size()  # the metadata these settings write
         raw = img.width * img.height * img.channels * img.bits / 8
         return Numbers(size, 8 * size / (img.width * img.height), raw / size, p, s, coded.kept, coded.step)

@@ -23,12 +23,9 @@ from .imagefiles import SourceImage, write_atomic
 from .settings import Settings
 
 KEEP = 4  # fitted images the helper keeps (each holds its latents)
-METHODS = frozenset({"conv"})  # methods whose work the app hands to this module
-
-
 def handles(method: str) -> bool:
-    """Whether the app runs ``method``'s work here, in child processes."""
-    return method in METHODS
+    """Whether the app runs ``method``'s work here, in child processes (its traits say so)."""
+    return codecs.traits(method).isolated
 
 # --------------------------------------------------------------- child side
 _previews: OrderedDict = OrderedDict()

@@ -5,6 +5,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+import numbers
 from dataclasses import dataclass
 
 from .errors import InputError
@@ -22,35 +23,35 @@ class Settings:
     Parameters
     ----------
     method : str
-        Registered codec name (``"klt"`` or ``"conv"``).
+        Registered codec name (see :mod:`workbench.codecs`; ``"klt"`` by default).
     block : int
-        Patch side B for the KLT, one of 4, 8, 16, 32.
-    components : int or None
-        KLT components kept per patch (1..B*B); ``None`` keeps all.
+        Patch side B for methods that tile into patches, one of 4, 8, 16, 32.
+    count : int or None
+        What the method keeps per patch or per position: the KLT's components (1..B*B),
+        the conv encoder's latent channels. ``None`` keeps all (a KLT count of B*B is
+        stored as ``None``, so one setting has one cache key).
     step : float
         Quantiser step, in units of one 8-bit grey level (1/255 of full scale), so that
         the same step means the same relative precision for 8- and 16-bit sources.
     chroma : str
-        ``"420"`` (chroma halved in both directions) or ``"444"``.
+        ``"420"`` (chroma halved in both directions) or ``"444"``; a method with a fixed
+        chroma sampling (the conv encoder's 4:4:4) always gets its own.
     basis_scope : str
         ``"image"``: one basis per image, stored in the bundle; ``"folder"``: one basis fitted
         on all images of the bundle and stored once.
     target : tuple or None
         ``("psnr", dB)``, ``("ssim", value)`` or ``("bpp", rate)``: search the step per image.
-    latent : int or None
-        Latent channels kept by the learned encoder; ``None`` keeps all.
     deadzone : float
         Rounding offset of the quantiser (0.5 is plain rounding, smaller widens the zero bin).
     """
 
     method: str = "klt"
     block: int = 8
-    components: int | None = None
+    count: int | None = None
     step: float = 8.0
     chroma: str = "420"
     basis_scope: str = "image"
     target: tuple[str, float] | None = None
-    latent: int | None = None
     deadzone: float = 0.38
 
     def __post_init__(self):
@@ -58,13 +59,19 @@ class Settings:
 
         if self.method not in REGISTRY:
             raise InputError(f"unknown method {self.method!r}; choose one of {', '.join(REGISTRY)}")
+        t = REGISTRY[self.method]
         if self.block not in BLOCK_SIZES or not _is(self.block, int):
             raise InputError(f"block size must be one of {BLOCK_SIZES}, got {self.block!r}")
-        if self.components is not None and not (1 <= int(self.components) <= self.block**2):
-            raise InputError(
-                f"components must be between 1 and {self.block**2} for block {self.block}, "
-                f"got {self.components!r}"
-            )
+        if self.count is not None:
+            if isinstance(self.count, numbers.Integral) and not isinstance(self.count, bool):
+                object.__setattr__(self, "count", int(self.count))  # numpy integers too
+            if not _is(self.count, int) or self.count < 1:
+                raise InputError(f"the {t.count_label} kept must be a whole number of at least 1, got {self.count!r}")
+            if t.uses_block and self.count > self.block**2:
+                raise InputError(f"{t.count_label} must be between 1 and {self.block**2} for block {self.block}, "
+                                 f"got {self.count!r}")
+            if t.uses_block and self.count == self.block**2:
+                object.__setattr__(self, "count", None)
         if not (0.01 <= _finite(self.step, "step") <= 4096):
             raise InputError(f"step must be between 0.01 and 4096 grey levels, got {self.step!r}")
         if self.chroma not in CHROMA_MODES:
@@ -73,11 +80,8 @@ class Settings:
             raise InputError(f"basis scope must be one of {BASIS_SCOPES}, got {self.basis_scope!r}")
         if not (0.0 < _finite(self.deadzone, "deadzone") <= 0.5):
             raise InputError(f"deadzone rounding offset must be in (0, 0.5], got {self.deadzone!r}")
-        if self.latent is not None and int(self.latent) < 1:
-            raise InputError(f"latent channels must be at least 1, got {self.latent!r}")
-        if self.method == "conv" and self.chroma != "444":
-            # The learned encoder works on full-resolution planes.
-            object.__setattr__(self, "chroma", "444")
+        if t.fixed_chroma and self.chroma != t.fixed_chroma:
+            object.__setattr__(self, "chroma", t.fixed_chroma)
         if self.target is not None:
             kind, value = self.target
             if kind not in TARGET_KINDS:
@@ -88,28 +92,37 @@ class Settings:
             object.__setattr__(self, "target", (kind, _finite(value, "target")))
 
     @property
+    def traits(self):
+        from .codecs import traits
+
+        return traits(self.method)
+
+    @property
     def kept(self) -> int:
-        """Number of KLT components kept."""
-        return self.block**2 if self.components is None else int(self.components)
+        """Components kept by a patch method (B*B when all are)."""
+        return self.block**2 if self.count is None else int(self.count)
 
     def own(self) -> dict:
         """The fields that mean something for this method (a conv bundle has no block size)."""
         d = self.to_dict()
-        keep = set(METHOD_FIELDS.get(self.method, d))
+        keep = set(self.traits.fields)
         if self.target is not None:
             keep.discard("step")  # each image's step comes from the search, not from here
         return {k: v for k, v in d.items() if k in keep}
 
     def describe(self) -> str:
         """One line of this method's own settings, for people (banners, ``info``, the sheet)."""
-        rate = (f"target {self.target[0]} {self.target[1]:g}" if self.target else f"step {self.step:g}")
-        if self.method == "klt":
-            count = "all" if self.components is None else str(self.components)
-            return (f"Block KLT, block {self.block}, components kept {count} of {self.block ** 2}, chroma "
-                    f"{self.chroma[0]}:{self.chroma[1]}:{self.chroma[2]}, basis per {self.basis_scope}, {rate}")
-        if self.method == "conv":
-            return f"Conv encoder, latent channels kept {self.latent or 'all'}, chroma 4:4:4, {rate}"
-        return f"{self.method}, {rate}"
+        t = self.traits
+        rate = f"target {self.target[0]} {self.target[1]:g}" if self.target else f"step {self.step:g}"
+        parts = [t.label]
+        if t.uses_block:
+            parts.append(f"block {self.block}")
+        kept = "all" if self.count is None else str(self.count)
+        parts.append(f"{t.count_label} kept {kept}" + (f" of {self.block ** 2}" if t.uses_block else ""))
+        parts.append(f"chroma {self.chroma[0]}:{self.chroma[1]}:{self.chroma[2]}")
+        if t.folder_scope:
+            parts.append(f"{t.shared_kind} per {self.basis_scope}")
+        return ", ".join(parts + [rate])
 
     def replace(self, **changes) -> "Settings":
         """Return a copy with ``changes`` applied (validated again)."""
@@ -124,6 +137,9 @@ class Settings:
     def from_dict(cls, d: dict) -> "Settings":
         """Settings from stored metadata, every field checked for its JSON type first.
 
+        Bundles made before the one ``count`` field stored ``components`` (KLT) or
+        ``latent`` (conv); either is read as ``count``.
+
         Raises
         ------
         InputError
@@ -132,10 +148,17 @@ class Settings:
         """
         if not isinstance(d, dict):
             raise InputError("settings must be a JSON object")
+        d = dict(d)
+        for old in LEGACY_COUNT_KEYS:
+            if old in d:
+                value = d.pop(old)
+                if value is not None:
+                    if d.get("count") is not None:
+                        raise InputError(f"settings give both 'count' and {old!r}")
+                    d["count"] = value
         unknown = set(d) - set(_FIELD_TYPES)
         if unknown:
             raise InputError(f"unknown settings: {sorted(unknown)[:5]}")
-        d = dict(d)
         for key, kinds in _FIELD_TYPES.items():
             if key in d and not _is(d[key], kinds):
                 raise InputError(f"setting {key!r} has the wrong type ({type(d[key]).__name__})")
@@ -150,14 +173,12 @@ class Settings:
         return json.dumps(self.to_dict(), sort_keys=True)
 
 
-# The fields each built-in method reads (the rest keep their defaults and are not shown).
-METHOD_FIELDS = {"klt": {"method", "block", "components", "step", "chroma", "basis_scope", "target", "deadzone"},
-                 "conv": {"method", "step", "chroma", "target", "latent"}}
+LEGACY_COUNT_KEYS = ("components", "latent")
 
 # JSON types each stored field may have (bool is not a number here, though Python says it is).
-_FIELD_TYPES = {"method": (str,), "block": (int,), "components": (int, type(None)), "step": (int, float),
+_FIELD_TYPES = {"method": (str,), "block": (int,), "count": (int, type(None)), "step": (int, float),
                 "chroma": (str,), "basis_scope": (str,), "target": (list, tuple, type(None)),
-                "latent": (int, type(None)), "deadzone": (int, float)}
+                "deadzone": (int, float)}
 
 
 def _is(value, kinds) -> bool:

@@ -89,7 +89,6 @@ def _versions() -> dict:
 PROBES = (25, 75)
 MAX_ROUNDS = 2
 MAX_QUALITY = 95  # above this the quality knobs approach lossless (AVIF 100 is), off any curve
-SHEET_STEPS = (2.5, 4.0, 6.0, 9.0, 13.5, 20.0, 30.0, 45.0)
 
 
 def _baseline_curve(b: baselines.Baseline, pixels: np.ndarray, lo: float, hi: float, ssim_ref) -> list:
@@ -198,10 +197,9 @@ def _curves_in_worker(name, pixels, settings_dict, names, shared_bytes, shared_r
 
 def _curves(img: SourceImage, settings: Settings, names, shared, shared_ref, measure_spec=None) -> dict:
     ours_settings = settings.replace(target=None)
-    steps = SHEET_STEPS if settings.method == "klt" else None
     ref = metrics.SSIMReference(img.pixels, data_range=img.peak) if min(img.height, img.width) > 11 else None
     mref = None if measure_spec is None else _measures.Reference(_measures.parse(*measure_spec), img.pixels, img.peak)
-    pts = pipeline.rd_points(img, ours_settings, steps, shared=shared, shared_ref=shared_ref, ssim_ref=ref,
+    pts = pipeline.rd_points(img, ours_settings, None, shared=shared, shared_ref=shared_ref, ssim_ref=ref,
                              measure_ref=mref)
     curves = {"ours": [{"bpp": p.bpp, "psnr": p.psnr, "ssim": p.ssim, "bytes": p.bytes, "knob": p.step,
                         **({} if p.measured is None else {"ok": p.measured.ok, "measures": p.measured.values})}
@@ -318,7 +316,7 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
     crops.sort(key=lambda c: c[0])
     # All four files are staged before any is renamed, the JSON (which holds the bundle's
     # SHA-256) last: a failure or a kill leaves the old set, or a new bundle the old JSON disowns.
-    kind = None if shared_ref is None else ("model" if settings.method == "conv" else "basis")
+    kind = None if shared_ref is None else settings.traits.shared_kind
     recipe = archive.make_recipe(settings, kind, shared_ref)
     write_all_atomic([(outdir / "bundle.wbundle", result.data), (outdir / "sheet.csv", _csv(rows)),
                       (outdir / "recipe.wrecipe", archive.recipe_bytes(recipe)),

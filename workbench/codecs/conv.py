@@ -30,6 +30,7 @@ import numpy as np
 from .. import coefcode
 from ..errors import BundleError, InputError
 from ..modelfile import ModelData, parse_model, read_model
+from .base import CodecBase
 
 DEFAULT_MODEL = Path(__file__).resolve().parents[1] / "models" / "default.wmodel"
 _HEAD = struct.Struct("<bHB")
@@ -110,9 +111,14 @@ def _step_index(step: float) -> int:
     return int(np.clip(np.round(8 * np.log2(max(step, 1e-9))), *STEP_INDEX_RANGE))
 
 
-class ConvCodec:
+class ConvCodec(CodecBase):
     name = "conv"
-    default_steps = (2.8, 4.0, 5.6, 8.0, 11.0, 16.0, 22.0, 32.0, 45.0)
+
+    def load_shared(self, path):
+        return self.load_model(path)
+
+    def count_range(self, analysis) -> int:
+        return analysis.model.channels
 
     # ------------------------------------------------------------- models
     def default_model(self):
@@ -157,10 +163,10 @@ class ConvCodec:
         x = (np.stack(stack) / 255.0).astype(np.float32)
         return Analysis(encode_array(model.net, x), shape, grey, model, settings)
 
-    def quantise(self, a: Analysis, step: float) -> Coded:
+    def quantise(self, a: Analysis, *, step: float, count: int | None) -> Coded:
         j = _step_index(step / 8.0)
         s = float(2.0 ** (j / 8))
-        kept = min(a.settings.latent or a.model.channels, a.model.channels)
+        kept = min(count or a.model.channels, a.model.channels)
         q = np.round(a.latents[:kept] / np.float32(s)).astype(np.int64)
         return Coded(8.0 * s, j, q, kept, a)
 

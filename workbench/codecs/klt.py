@@ -23,6 +23,7 @@ import numpy as np
 from .. import coefcode, klt, tiling
 from ..basisfile import basis_from_bytes, basis_to_bytes
 from ..errors import BundleError
+from .base import CodecBase
 
 _HEAD = struct.Struct("<fHB")
 MAX_STEP = 1e5
@@ -177,8 +178,16 @@ def _deadzone_in_place(x: np.ndarray, offset: float) -> np.ndarray:
     return np.trunc(x, out=x).astype(np.int32)  # |q| < 2**31 for every allowed step
 
 
-class KLTCodec:
+class KLTCodec(CodecBase):
     name = "klt"
+
+    def load_shared(self, path):
+        from ..basisfile import load_basis
+
+        return load_basis(path)
+
+    def energy_kept(self, analysis):
+        return analysis.basis.energy_kept()
 
     # ------------------------------------------------------------- shared side
     def prepare_shared(self, plane_sets, settings):
@@ -214,10 +223,13 @@ class KLTCodec:
             basis = shared
         return Analysis(patches, means, [p.shape for p in planes], basis, shared is None, settings)
 
-    def quantise(self, a: Analysis, step: float) -> Coded:
-        """Quantise at ``step`` and reconstruct exactly as the decoder will."""
+    def quantise(self, a: Analysis, *, step: float, count: int | None) -> Coded:
+        """Quantise at ``step`` keeping at most ``count`` components (None: all), and
+        reconstruct exactly as the decoder will."""
         step = float(np.float32(step))
-        ints, bits, synthesis, analysis_m = _matrices(a, a.settings.kept, step)
+        n = a.settings.block ** 2
+        kept_max = n if count is None else min(int(count), n)
+        ints, bits, synthesis, analysis_m = _matrices(a, kept_max, step)
         analysis_m = analysis_m.T
         # Component-major (K, rows, cols) underneath, viewed as (rows, cols, K): the entropy
         # coder walks one component at a time.

@@ -127,7 +127,7 @@ class SidePanel(QWidget):
         outer.addStretch(1)
 
         self._quiet = False
-        self._method, self._klt_chroma = "klt", "420"
+        self._method, self._chosen_chroma = self.method.currentData(), "420"
         self._saved_count: dict[str, int | None] = {}
         self.block.setCurrentIndex(self.block.findData(8))
         self._set_rate_mode("step")
@@ -179,16 +179,19 @@ class SidePanel(QWidget):
         self.changed.emit()
 
     def _switch_method(self, new: str) -> None:
-        """Each method keeps its own count (a KLT count of 1 is no latent count) and the KLT its chroma."""
+        """Each method keeps its own count (a KLT count of 1 is no latent count); a method with a
+        fixed chroma shows it, and the chosen one comes back after."""
         old = self._method
         self._saved_count[old] = None if self.count.value() == self.count.maximum() else self.count.value()
         self._method = new
         self._quiet = True
-        if new == "conv":
-            self._klt_chroma = self.chroma.currentData()
-            self.chroma.setCurrentIndex(self.chroma.findData("444"))  # what the conv encoder really uses
+        fixed = codecs.traits(new).fixed_chroma
+        if fixed:
+            if codecs.traits(old).fixed_chroma is None:
+                self._chosen_chroma = self.chroma.currentData()
+            self.chroma.setCurrentIndex(self.chroma.findData(fixed))  # what the method really uses
         else:
-            self.chroma.setCurrentIndex(self.chroma.findData(self._klt_chroma))
+            self.chroma.setCurrentIndex(self.chroma.findData(self._chosen_chroma))
             n = self.block.currentData() ** 2
             self.count.setRange(1, n)
             self.count_spin.setRange(1, n)
@@ -198,10 +201,11 @@ class SidePanel(QWidget):
         self._quiet = False
 
     def _show_method_fields(self) -> None:
-        conv = self.method.currentData() == "conv"
-        for w in (self.block, self.scope, self.chroma):
-            w.setEnabled(not conv)
-        self.count_label.setText("Latent channels kept" if conv else "Components kept")
+        t = codecs.traits(self.method.currentData())
+        self.block.setEnabled(t.uses_block)
+        self.scope.setEnabled(t.folder_scope)
+        self.chroma.setEnabled(t.fixed_chroma is None)
+        self.count_label.setText(t.count_label.capitalize() + " kept")
 
     def _on_count(self, v):
         if self._quiet:
@@ -218,7 +222,7 @@ class SidePanel(QWidget):
 
     def set_count_range(self, n: int) -> None:
         """For the conv encoder: the model's latent channel count."""
-        all_kept = self.count.value() == self.count.maximum() and self._saved_count.get("conv") is None
+        all_kept = self.count.value() == self.count.maximum() and self._saved_count.get(self._method) is None
         cur = self.count.value()
         self._quiet = True
         self.count.setRange(1, n)
@@ -231,13 +235,14 @@ class SidePanel(QWidget):
         method = self.method.currentData()
         mode = self.rate_mode.currentData()
         value = float(self.rate_value.value())
-        kw = dict(method=method, chroma=self.chroma.currentData())
-        if method == "klt":
-            b = self.block.currentData()
-            k = self.count.value()
-            kw.update(block=b, components=None if k == b * b else k, basis_scope=self.scope.currentData())
-        else:
-            kw.update(latent=self.count.value())
+        t = codecs.traits(method)
+        # the slider at its end keeps all (None), whatever the range is until a model reports it
+        count = None if self.count.value() == self.count.maximum() else self.count.value()
+        kw = dict(method=method, chroma=self.chroma.currentData(), count=count)
+        if t.uses_block:
+            kw["block"] = self.block.currentData()
+        if t.folder_scope:
+            kw["basis_scope"] = self.scope.currentData()
         if mode == "step":
             kw["step"] = value
         else:
@@ -254,7 +259,7 @@ class SidePanel(QWidget):
         self._quiet = False
         self._set_block(s.block)
         self._quiet = True
-        self.count.setValue(s.kept if s.method == "klt" else (s.latent or self.count.maximum()))
+        self.count.setValue(s.count or self.count.maximum())
         self.count_spin.setValue(self.count.value())
         if s.target is None:
             self.rate_mode.setCurrentIndex(0)
@@ -265,8 +270,8 @@ class SidePanel(QWidget):
             self._quiet = False
             self._set_rate_mode(s.target[0], s.target[1])
         self._method = s.method
-        if s.method != "conv":
-            self._klt_chroma = s.chroma
+        if s.traits.fixed_chroma is None:
+            self._chosen_chroma = s.chroma
         self._show_method_fields()
 
     def compare_with(self, what: str) -> None:
@@ -320,7 +325,7 @@ class SidePanel(QWidget):
         self.readouts["bpp"].setText(f"{n.bpp:.3f}")
         self.readouts["ratio"].setText(f"{n.ratio:.1f} : 1")
         self.readouts["bytes"].setText(f"{n.bytes:,} bytes")
-        what = "latent channels" if self.method.currentData() == "conv" else "components"
+        what = codecs.traits(self.method.currentData()).count_label
         self.readouts["step"].setText(f"{n.step:.3g}, {n.kept} {what} coded")
 
     def show_energy(self, energy, k) -> None:

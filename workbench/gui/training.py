@@ -9,6 +9,8 @@ from PySide6.QtGui import QColor, QPainter, QPen
 from PySide6.QtWidgets import (QDialog, QDialogButtonBox, QDoubleSpinBox, QFileDialog, QFormLayout, QLabel,
                                QSpinBox, QVBoxLayout, QWidget)
 
+METHOD = "conv"  # the method a folder training trains (its model then serves that method)
+
 
 class TrainOptions(QDialog):
     def __init__(self, parent, default_path: Path):
@@ -67,7 +69,7 @@ def on_trained(window, path, result, description) -> None:
     its parsed file, read off the GUI thread; the model is loaded when first used)."""
     window.conv_model_file = Path(path)
     window._previews.clear()
-    i = window.panel.method.findData("conv")
+    i = window.panel.method.findData(METHOD)
     window.panel.method.setItemText(i, f"Conv encoder ({Path(path).stem})")
     window.panel.set_count_range(description.arch["latent"])
     window.status_text.setText(f"Trained {path} ({result['steps']} steps); the conv encoder now uses it.")

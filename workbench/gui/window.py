@@ -327,11 +327,11 @@ class MainWindow(QMainWindow):
         return self.images[self.index] if 0 <= self.index < len(self.images) else None
 
     def _shared_for(self, s: Settings):
-        """Shared side of the block KLT for the current settings, or a marker that it must be
-        fitted first (the conv encoder's model lives in the helper process)."""
-        if s.basis_scope != "folder":
+        """The folder-fitted shared side for the current settings, or a marker that it must be
+        fitted first (an isolated method's model lives in the helper process)."""
+        if s.basis_scope != "folder" or not s.traits.folder_scope:
             return None, None
-        return self._shared.get((s.block, s.chroma, s.kept), (None, "missing"))
+        return self._shared.get((s.method, s.block, s.chroma, s.kept), (None, "missing"))
 
     def _on_settings_changed(self):
         self.refresh()
@@ -383,7 +383,7 @@ class MainWindow(QMainWindow):
         """``(factor, region)`` for a sketch of what the views show, or None where the exact
         path is quick anyway (small images) or the method has no sketch."""
         img = prev.img
-        if not hasattr(prev.codec, "sketch") or img.width * img.height < SKETCH_MIN_PIXELS:
+        if not prev.settings.traits.has_sketch or img.width * img.height < SKETCH_MIN_PIXELS:
             return None
         factor = 1
         while factor < 8 and 2 * factor * self.views.scale <= 1.0:
@@ -419,15 +419,15 @@ class MainWindow(QMainWindow):
             self.preview_lane.submit(fn, tag=tag)
 
     def _make_preview(self, img, s, key):
-        if s.method == "klt" and s.basis_scope == "folder":
-            skey = (s.block, s.chroma, s.kept)
+        if s.traits.folder_scope and s.basis_scope == "folder":
+            skey = (s.method, s.block, s.chroma, s.kept)
             if skey not in self._shared:
                 from ..basisfile import basis_hash
                 from ..codecs import get
 
-                basis, raw, _ = get("klt").prepare_shared(
+                shared, raw, _ = get(s.method).prepare_shared(
                     [pipeline.image_planes(i, s.chroma) for i in self.images], s)
-                self._shared[skey] = (basis, basis_hash(raw))
+                self._shared[skey] = (shared, basis_hash(raw))
         if remote.handles(s.method):
             return key, self._helper().open(key, img, s, self.conv_model_file)
         shared, ref = self._shared_for(s)
@@ -514,7 +514,8 @@ class MainWindow(QMainWindow):
             self._display(img, px, rendered)
 
     def _submit_target(self, img, s):
-        if s.method == "klt" and s.basis_scope == "folder" and (s.block, s.chroma, s.kept) not in self._shared:
+        if s.traits.folder_scope and s.basis_scope == "folder" and (s.method, s.block, s.chroma, s.kept) \
+                not in self._shared:
             key = (img.name, s.method, s.block, s.chroma, s.basis_scope)
             self.fit_lane.submit(lambda: self._make_preview(img, s.replace(target=None), key), tag=key)
             return
@@ -817,9 +818,11 @@ class MainWindow(QMainWindow):
         """Start a batch of ``src`` into ``dst`` with the current setting, in a child process."""
         from .. import archive
 
+        from . import training
+
         s = self.panel.settings()
         ref = None
-        if s.method == "conv" and self.conv_model_file is not None:  # a model trained here travels along
+        if s.method == training.METHOD and self.conv_model_file is not None:  # a model trained here travels along
             from ..modelfile import read_model
 
             ref = read_model(self.conv_model_file).sha256
