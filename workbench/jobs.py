@@ -98,9 +98,10 @@ def end_with_parent(pid: int) -> None:
     threading.Thread(target=watch, name="end-with-parent", daemon=True).start()
 
 
-def _pool_worker_start(parent: int) -> None:
+def _pool_worker_start(parent: int, extra_codecs=None) -> None:
     import signal
 
+    _register(extra_codecs)
     # Ctrl-C reaches the whole process group; the parent alone answers it (and closes the
     # pool), so workers print no tracebacks of their own.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
@@ -114,11 +115,22 @@ def pool(workers: int, context: str = "spawn"):
     import os
     from concurrent.futures import ProcessPoolExecutor
 
+    from . import codecs
+
     return ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context(context),
-                               initializer=_pool_worker_start, initargs=(os.getpid(),))
+                               initializer=_pool_worker_start, initargs=(os.getpid(), codecs.extras()))
 
 
-def run_in_child(conn, cancel, factory, args) -> None:
+def _register(extra_codecs) -> None:
+    """In a child: know the methods the parent registered at run time."""
+    if extra_codecs:
+        from . import codecs
+
+        for name, traits in extra_codecs.items():
+            codecs.register(name, traits)
+
+
+def run_in_child(conn, cancel, factory, args, extra_codecs=None) -> None:
     """Body of a child process that runs ``factory(*args)``, a job, for :func:`start_child`.
 
     Progress goes to the parent over ``conn`` as ``("progress", fraction, text)``; the end as
@@ -131,6 +143,7 @@ def run_in_child(conn, cancel, factory, args) -> None:
 
     parent = os.getppid()
     end_with_parent(parent)
+    _register(extra_codecs)
 
     def should_stop() -> bool:  # asked to, or the parent has gone (then nobody waits for the result)
         return cancel.is_set() or os.getppid() != parent
@@ -162,7 +175,9 @@ def start_child(factory, args):
     cancel = ctx.Event()
     # Not a daemon: a job may start processes of its own (the quality sheet's worker pool).
     # It stops at its next yield once cancelled or orphaned (see run_in_child).
-    proc = ctx.Process(target=run_in_child, args=(child, cancel, factory, args))
+    from . import codecs
+
+    proc = ctx.Process(target=run_in_child, args=(child, cancel, factory, args, codecs.extras()))
     proc.start()
     child.close()
     return proc, parent, cancel

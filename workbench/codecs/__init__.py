@@ -67,6 +67,23 @@ REGISTRY: dict[str, Traits] = {
 }
 
 
+BUILTIN = frozenset(REGISTRY)
+
+
+def register(name: str, traits: Traits) -> None:
+    """Add a method at run time (a codec that lives outside the package: one file, one call).
+
+    Worker processes started through :mod:`workbench.jobs` register the same methods."""
+    if not isinstance(traits, Traits):
+        raise InputError(f"codec {name!r}: traits must be a Traits record")
+    REGISTRY[name] = traits
+
+
+def extras() -> dict[str, Traits]:
+    """The methods registered at run time (passed on to child processes)."""
+    return {k: v for k, v in REGISTRY.items() if k not in BUILTIN}
+
+
 def names() -> list[str]:
     return list(REGISTRY)
 
