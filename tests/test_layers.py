@@ -61,3 +61,40 @@ def test_the_front_end_imports_the_app_only_to_start_it():
     gui_imports = [n for n in ast.walk(tree) if isinstance(n, ast.ImportFrom) and (n.module or "").startswith("gui")]
     top_level = [n for n in tree.body if isinstance(n, ast.ImportFrom) and (n.module or "").startswith("gui")]
     assert len(gui_imports) == 1 and not top_level  # one lazy import, inside the gui command
+
+
+def _module_graph():
+    names = {}
+    for p in _modules():
+        parts = list(p.relative_to(PKG.parent).with_suffix("").parts)
+        names[".".join(parts[:-1] if parts[-1] == "__init__" else parts)] = p
+    graph = {}
+    for name, p in names.items():
+        graph[name] = set()
+        for m in _imports(p):
+            while m and m not in names:
+                m = m.rpartition(".")[0]
+            if m and m != name:
+                graph[name].add(m)
+    return graph
+
+
+def test_the_import_graph_has_no_circle():
+    # every import, lazy ones inside functions included, as the import-linter would read them
+    graph = _module_graph()
+    for g in graph.values():
+        g.discard("workbench")  # "from . import x" names the module x, not the package
+    state = {}
+
+    def visit(node, path):
+        state[node] = "open"
+        for n in graph[node]:
+            if state.get(n) == "open":
+                raise AssertionError("import circle: " + " -> ".join(path[path.index(n):] + [n]))
+            if n not in state:
+                visit(n, path + [n])
+        state[node] = "done"
+
+    for node in graph:
+        if node not in state:
+            visit(node, [node])

@@ -6,7 +6,7 @@ Public API::
     images = workbench.decompress(data)
 """
 
-__version__ = "0.1.0"
+from .version import __version__  # noqa: E402
 
 from .api import compress, decompress  # noqa: E402
 from .errors import BundleError, Cancelled, InputError, WorkbenchError  # noqa: E402

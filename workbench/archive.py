@@ -27,7 +27,7 @@ import sqlite3
 import time
 from pathlib import Path
 
-from . import __version__
+from .version import __version__
 from .errors import BundleError, InputError, WorkbenchError
 from .jobs import Progress
 from .names import IMAGE_SUFFIXES

@@ -6,7 +6,7 @@ import json
 import sys
 from pathlib import Path
 
-from .cli import _add_codec_options, _shared_from_args, command, settings_from_args
+from .cliargs import _add_codec_options, _shared_from_args, command, settings_from_args
 from .errors import InputError
 
 

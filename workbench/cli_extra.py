@@ -5,7 +5,7 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-from .cli import (_add_codec_options, _progress, _read_inputs, _shared_from_args, command, measures_from_args,
+from .cliargs import (_add_codec_options, _progress, _read_inputs, _shared_from_args, command, measures_from_args,
                   settings_from_args)
 from .errors import InputError
 

@@ -12,7 +12,8 @@ from dataclasses import dataclass, field
 import cv2
 import numpy as np
 
-from . import __version__, bundle, codecs, color, metrics
+from . import bundle, codecs, color, metrics
+from .version import __version__
 from . import measures as measures_mod
 from .errors import BundleError, InputError
 from .imagefiles import SourceImage

@@ -21,7 +21,8 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__, archive, baselines, bdrate, jobs, metrics, pipeline, sheetpdf
+from . import archive, baselines, bdrate, jobs, metrics, pipeline, sheetpdf
+from .version import __version__
 from . import measures as _measures
 from .errors import InputError
 from .imagefiles import SourceImage, write_all_atomic

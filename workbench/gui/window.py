@@ -13,7 +13,8 @@ from PySide6.QtGui import QAction, QIcon, QKeySequence, QPixmap
 from PySide6.QtWidgets import (QFileDialog, QHBoxLayout, QLabel, QListWidget, QListWidgetItem, QMainWindow,
                                QMessageBox, QProgressBar, QPushButton, QSplitter, QToolBar, QVBoxLayout, QWidget)
 
-from .. import __version__, bundle, measures, metrics, pipeline, remote
+from .. import bundle, measures, metrics, pipeline, remote
+from ..version import __version__
 from ..errors import Cancelled
 from ..imagefiles import SourceImage, list_inputs, read_many, write_atomic
 from ..notices import CAUTION
