@@ -7,7 +7,7 @@ from PIL import Image
 pytest.importorskip("pytestqt")
 from PySide6.QtCore import QSettings, Qt  # noqa: E402
 
-from workbench import cli, pipeline  # noqa: E402
+from workbench import cli, pipeline, preview  # noqa: E402
 from workbench.gui.window import MainWindow  # noqa: E402
 from workbench.imagefiles import read_image  # noqa: E402
 from workbench.settings import Settings  # noqa: E402
@@ -193,7 +193,7 @@ def test_on_a_large_image_a_sketch_shows_first_and_the_exact_view_replaces_it(qt
     assert rec.shown > shown
     qtbot.waitUntil(lambda: window._exact_tag == ("a.png", window.panel.settings()), timeout=30000)
     assert rec.overlay.pixmap().isNull()  # cleared once the exact image is up
-    core = pipeline.ImagePreview(window.current, window.panel.settings()).reconstruct(window.panel.settings())[1]
+    core = preview.ImagePreview(window.current, window.panel.settings()).reconstruct(window.panel.settings())[1]
     assert np.array_equal(window._shown[1], core)
 
 

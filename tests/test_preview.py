@@ -5,6 +5,7 @@ import pytest
 from skimage.transform import downscale_local_mean
 
 from workbench import jobs, pipeline
+from workbench import preview as previews
 from workbench.errors import InputError
 from workbench.imagefiles import SourceImage
 from workbench.settings import Settings
@@ -15,7 +16,7 @@ def preview(request):
     from skimage import data
 
     # scikit-image's bundled 'astronaut' (512x512 RGB)
-    return pipeline.ImagePreview(SourceImage("astronaut", data.astronaut()), Settings(count=12, step=6.0))
+    return previews.ImagePreview(SourceImage("astronaut", data.astronaut()), Settings(count=12, step=6.0))
 
 
 @pytest.mark.parametrize("factor", [2, 4, 8])
@@ -91,7 +92,7 @@ def test_the_helper_process_counts_the_same_bytes_as_the_coder(preview, camera):
 
     coder = CoderProcess()
     try:
-        for p in (preview, pipeline.ImagePreview(SourceImage("camera", camera), Settings(count=30))):
+        for p in (preview, previews.ImagePreview(SourceImage("camera", camera), Settings(count=30))):
             coded, px, n = p.evaluate(p.settings, coder)
             assert n.bytes == len(pipeline.encode([p.img], p.settings).data)
             assert coder.submit(*p.codec.size_task(coded)).result() == len(p.codec.serialise(coded))

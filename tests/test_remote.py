@@ -6,7 +6,7 @@ import signal
 import numpy as np
 import pytest
 
-from workbench import codecs, pipeline
+from workbench import codecs, pipeline, preview
 from workbench.errors import InputError
 from workbench.imagefiles import SourceImage
 from workbench.remote import PreviewProcess
@@ -30,7 +30,7 @@ def test_remote_preview_gives_the_pixels_and_numbers_of_the_local_one(helper, ca
     s = Settings(method="conv", count=12)
     remote = helper.open("k", cat, s)
     model, ref = codecs.get("conv").load_model(None)  # the shipped model, as the helper uses it
-    local = pipeline.ImagePreview(cat, s, shared=model, shared_ref=ref)
+    local = preview.ImagePreview(cat, s, shared=model, shared_ref=ref)
     _, px, n = remote.evaluate(s)
     _, px_local, n_local = local.evaluate(s)
     assert np.array_equal(px, px_local)

@@ -17,7 +17,7 @@ from concurrent.futures import CancelledError, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
 
-from . import codecs, jobs, pipeline
+from . import codecs, jobs, pipeline, preview
 from .errors import Cancelled, InputError
 from .imagefiles import SourceImage, write_atomic
 from .settings import Settings
@@ -51,7 +51,7 @@ def _warm(model_file) -> None:
 
 def _open(key, img: SourceImage, settings: Settings, model_file) -> int | None:
     shared, ref = _shared(model_file)
-    _previews[key] = pipeline.ImagePreview(img, settings, shared=shared, shared_ref=ref)
+    _previews[key] = preview.ImagePreview(img, settings, shared=shared, shared_ref=ref)
     while len(_previews) > KEEP:
         _previews.popitem(last=False)
     return _previews[key].channels
@@ -72,7 +72,7 @@ def _call(key, what: str, settings: Settings):
 def _encode_one(img: SourceImage, settings: Settings, model_file):
     shared, ref = _shared(model_file)
     r = pipeline.encode([img], settings, shared=shared, shared_ref=ref).images[0]
-    return pipeline.Numbers.of(r), r.reconstruction
+    return preview.Numbers.of(r), r.reconstruction
 
 
 # --------------------------------------------------------------- parent side
@@ -136,7 +136,7 @@ class PreviewProcess:
 
 
 class RemotePreview:
-    """What the app needs of :class:`workbench.pipeline.ImagePreview`, computed in a
+    """What the app needs of :class:`workbench.preview.ImagePreview`, computed in a
     :class:`PreviewProcess`. Pixels come back as arrays; nothing is sketched."""
 
     def __init__(self, proc: PreviewProcess, key, img, settings, model_file, channels):
@@ -145,7 +145,7 @@ class RemotePreview:
         self.codec = codecs.get(settings.method)
 
     def compatible(self, settings: Settings) -> bool:
-        return pipeline.same_transform(self.settings, settings)
+        return preview.same_transform(self.settings, settings)
 
     def energy_kept(self):
         return None

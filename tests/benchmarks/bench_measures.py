@@ -23,7 +23,7 @@ sys.path.insert(0, str(ROOT))
 import numpy as np  # noqa: E402
 from skimage.transform import resize  # noqa: E402
 
-from workbench import demo, jobs, measures, pipeline  # noqa: E402
+from workbench import demo, jobs, measures, pipeline, preview  # noqa: E402
 from workbench.imagefiles import SourceImage  # noqa: E402
 from workbench.settings import Settings  # noqa: E402
 from workbench.sheet import sheet_job  # noqa: E402
@@ -55,7 +55,7 @@ def main():
     frame = (resize(demo.fluorescence(rng), (1024, 1024)) * 65535).astype(np.uint16)
     img = SourceImage("f", frame)
     s = Settings(step=6)
-    prev = pipeline.ImagePreview(img, s)
+    prev = preview.ImagePreview(img, s)
     t_read = median_time(lambda: prev.evaluate(s))
     _, rec, _ = prev.evaluate(s)
     ref = measures.Reference(measures.parse("spots,regions,edges"), frame, img.peak)

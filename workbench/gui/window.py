@@ -13,7 +13,7 @@ from PySide6.QtGui import QAction, QIcon, QKeySequence, QPixmap
 from PySide6.QtWidgets import (QFileDialog, QHBoxLayout, QLabel, QListWidget, QListWidgetItem, QMainWindow,
                                QMessageBox, QProgressBar, QPushButton, QSplitter, QToolBar, QVBoxLayout, QWidget)
 
-from .. import bundle, measures, metrics, pipeline, remote
+from .. import bundle, measures, metrics, pipeline, preview, remote
 from ..version import __version__
 from ..errors import Cancelled
 from ..imagefiles import SourceImage, list_inputs, read_many, write_atomic
@@ -432,7 +432,7 @@ class MainWindow(QMainWindow):
         if remote.handles(s.method):
             return key, self._helper().open(key, img, s, self.conv_model_file)
         shared, ref = self._shared_for(s)
-        return key, pipeline.ImagePreview(img, s, shared=shared, shared_ref=ref)
+        return key, preview.ImagePreview(img, s, shared=shared, shared_ref=ref)
 
     def _helper(self):
         with self._remote_lock:  # worker threads ask for it
@@ -527,7 +527,7 @@ class MainWindow(QMainWindow):
                 return img, s, n, rec, None
             shared, ref = self._shared_for(s)
             r = pipeline.encode([img], s, shared=shared, shared_ref=ref).images[0]
-            n = pipeline.Numbers.of(r)
+            n = preview.Numbers.of(r)
             return img, s, n, r.reconstruction, r.advice
 
         self.preview_lane.invalidate()
