@@ -91,6 +91,10 @@ def test_saved_bundle_decodes_to_the_pixels_shown(qtbot, window, folder, tmp_pat
     assert cli.main(["decode", str(out), "-o", str(tmp_path / "dec")]) == 0
     decoded = read_image(tmp_path / "dec" / "a_cat.png").pixels
     assert np.array_equal(decoded, shown)
+    from workbench import archive
+
+    recipe = archive.read_recipe(out.with_suffix(".wrecipe"))  # the decision, saved beside the bundle
+    assert recipe["settings"] == window.panel.settings().to_dict()
     assert sorted(p.name for p in folder.iterdir()) == ["a_cat.png", "b_camera.png"]  # source folder untouched
 
 
@@ -449,5 +453,6 @@ def test_the_current_setting_can_be_applied_to_an_archive_from_the_app(qtbot, wi
     assert window.last_batch["done"] == 2 and "2 of 2 done" in window.status_text.text()
     made = {r["path"] for r in archive.rows(dst)}
     assert made == {"a_cat.png", "b_camera.png"}
+    assert "2 of 2 items done" in window.show_archive_summary(dst)  # a finished archive's summary
     s = window.panel.settings()
     assert (dst / "a_cat.png.wbundle").read_bytes() == pipeline.encode([read_image(folder / "a_cat.png")], s).data

@@ -215,13 +215,16 @@ def batch_job(src, dst, recipe: dict, *, workers: int | None = None, scheduler: 
         db.commit()
         known = {r["path"]: r for r in rows(dst)}
         todo = [rel for rel in sources(src) if not _up_to_date(dst, src, rel, known.get(rel))]
-        total, done = len(todo), 0
+        total, done, psnrs = len(todo), 0, []
         yield Progress(0, max(total, 1), f"{total} to do, {len(known) - len(set(known) & set(todo))} up to date")
         with _runner(workers, scheduler) as run:
             for row in run(encode_one, [(str(src), rel, str(dst), recipe) for rel in todo]):
                 _put(db, row)
                 done += 1
-                yield Progress(done, max(total, 1), f"{row['path']}: {row['status']}")
+                if row.get("psnr") is not None and row["psnr"] == row["psnr"]:
+                    psnrs.append(row["psnr"])
+                mean = f", mean PSNR {sum(psnrs) / len(psnrs):.2f} dB" if psnrs else ""
+                yield Progress(done, max(total, 1), f"{row['path']}: {row['status']}{mean}")
         return summary(dst)
     finally:
         db.close()
@@ -348,12 +351,15 @@ def restore_job(dst, out, *, verify: bool = False, force: bool = False):
             stats["restored"] += 1
         if verify and (src / rel).exists():
             images, _ = read_many([src / rel])
-            psnrs = [metrics.psnr(i.pixels, d.pixels[..., : i.pixels.shape[2]] if i.pixels.ndim == 3 else
-                                  d.pixels if d.pixels.ndim == 2 else d.pixels[..., 0], data_range=i.peak)
-                     for i, d in zip(images, decoded)]
-            got = _mean(psnrs)
+            pairs = [(i, d.pixels[..., : i.pixels.shape[2]] if i.pixels.ndim == 3 else
+                      d.pixels if d.pixels.ndim == 2 else d.pixels[..., 0]) for i, d in zip(images, decoded)]
+            got = _mean(metrics.psnr(i.pixels, px, data_range=i.peak) for i, px in pairs)
             if not (abs(got - r["psnr"]) <= 1e-6 or (got == float("inf") and r["psnr"] in (None, float("inf")))):
                 stats["mismatches"].append(f"{r['path']}: PSNR {got:.6f} dB now, {r['psnr']:.6f} dB in the manifest")
+            ssim = _mean(metrics.ssim(i.pixels, px, data_range=i.peak) for i, px in pairs
+                         if metrics.ssim_applies(i.height, i.width))
+            if r["ssim"] is not None and r["ssim"] == r["ssim"] and abs(ssim - r["ssim"]) > 1e-6:
+                stats["mismatches"].append(f"{r['path']}: SSIM {ssim:.6f} now, {r['ssim']:.6f} in the manifest")
             stats["verified"] += 1
     yield Progress(len(done), len(done), "done")
     return stats

@@ -192,6 +192,14 @@ class SSIMReference:
         return float(np.mean([ch.mean(t) for ch, t in zip(self.channels, chans)]))
 
 
+SSIM_MIN_SIDE = 11  # the Gaussian window's 11 taps: smaller images have no SSIM
+
+
+def ssim_applies(height: int, width: int) -> bool:
+    """Whether an image is large enough for SSIM (both sides above the window's 11 taps)."""
+    return min(height, width) > SSIM_MIN_SIDE
+
+
 def ssim(ref: np.ndarray, test: np.ndarray, *, data_range: float | None = None) -> float:
     """Mean SSIM, border of 5 pixels excluded; colour = mean over RGB channels.
 

@@ -262,7 +262,7 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
             outcome = None if mref is None else mref.judge(rec)
             full = rec if img.alpha is None else SourceImage(img.name, rec, img.alpha).full()
             p = metrics.psnr(img.pixels, rec, data_range=img.peak)
-            if min(img.height, img.width) > 11:
+            if metrics.ssim_applies(img.height, img.width):
                 s = metrics.ssim(img.pixels, rec, data_range=img.peak)
         if 8 * len(payload) >= LOSSLESS_CHECK_BPP * img.width * img.height:
             from .imagefiles import encode_png

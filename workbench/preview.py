@@ -148,7 +148,7 @@ class ImagePreview:
 
     def _measure(self, coded, pixels, payload_size, settings: Settings) -> Numbers:
         img = self.img
-        if self._ssim_ref is None and min(img.height, img.width) > 11:
+        if self._ssim_ref is None and metrics.ssim_applies(img.height, img.width):
             self._ssim_ref = metrics.SSIMReference(img.pixels, data_range=img.peak)
         p = metrics.psnr(img.pixels, pixels, data_range=img.peak)
         s = self._ssim_ref.ssim(pixels) if self._ssim_ref is not None else float("nan")

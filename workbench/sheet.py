@@ -198,7 +198,7 @@ def _curves_in_worker(name, pixels, settings_dict, names, shared_bytes, shared_r
 
 def _curves(img: SourceImage, settings: Settings, names, shared, shared_ref, measure_spec=None) -> dict:
     ours_settings = settings.replace(target=None)
-    ref = metrics.SSIMReference(img.pixels, data_range=img.peak) if min(img.height, img.width) > 11 else None
+    ref = metrics.SSIMReference(img.pixels, data_range=img.peak) if metrics.ssim_applies(img.height, img.width) else None
     mref = None if measure_spec is None else _measures.Reference(_measures.parse(*measure_spec), img.pixels, img.peak)
     pts = pipeline.rd_points(img, ours_settings, None, shared=shared, shared_ref=shared_ref, ssim_ref=ref,
                              measure_ref=mref)
@@ -253,7 +253,7 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
         px = dec.pixels[..., : img.pixels.shape[2]] if img.pixels.ndim == 3 else (
             dec.pixels if dec.pixels.ndim == 2 else dec.pixels[..., 0])
         p = metrics.psnr(img.pixels, px, data_range=img.peak)
-        s = metrics.ssim(img.pixels, px, data_range=img.peak) if min(img.height, img.width) > 11 else float("nan")
+        s = metrics.ssim(img.pixels, px, data_range=img.peak) if metrics.ssim_applies(img.height, img.width) else float("nan")
         tiles = metrics.tile_psnr(img.pixels, px, tile=TILE, data_range=img.peak)
         wx, wy, wp = tiles.worst(1)[0]
         ok = None

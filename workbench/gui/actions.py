@@ -44,7 +44,14 @@ class JobActions:
         self._end_job()
         kind = tag[0]
         if kind == "save":
-            self.status_text.setText(f"Saved {tag[1]} ({result.size:,} bytes, {len(result.images)} image(s))")
+            recipe = self._recipes.pop(tag[1], None)
+            if recipe is not None:
+                from .. import archive
+
+                write_atomic(Path(tag[1]).with_suffix(".wrecipe"), archive.recipe_bytes(recipe),
+                             protect=self._protected())
+            self.status_text.setText(f"Saved {tag[1]} ({result.size:,} bytes, {len(result.images)} image(s)) "
+                                     "and its recipe")
         elif kind == "open":
             contents, decoded = result
             self._show_bundle(tag[1], contents, decoded)
@@ -87,6 +94,7 @@ class JobActions:
             return False
         s = self.panel.settings()
         images, protect, path = list(self.images), self._protected(), Path(path)
+        self._recipes[path] = self._recipe(s)  # written beside the bundle once it is saved
 
         text = f"saving {path.name}…"
         if remote.handles(s.method):  # torch stays out of this process
@@ -180,20 +188,47 @@ class JobActions:
             Path(path).mkdir(parents=True, exist_ok=True)
             self.save_sheet(path)
 
+    def _recipe(self, s) -> dict:
+        """The recipe of setting ``s`` here: a model trained in this window is referred to by hash."""
+        from .. import archive
+        from .training import METHOD
+
+        ref = None
+        if s.method == METHOD and self.conv_model_file is not None:
+            from ..modelfile import read_model
+
+            ref = read_model(self.conv_model_file).sha256
+        return archive.make_recipe(s, "model" if ref else None, ref)
+
+    def show_archive_summary(self, dst) -> str:
+        """The one-screen summary of a finished (or interrupted) batch output folder."""
+        from .. import archive
+
+        s = archive.summary(dst)
+        text = (f"{s['done']} of {s['items']} items done, {s['failed']} failed; {s['source_bytes']:,} bytes of "
+                f"sources -> {s['bundle_bytes']:,} bytes of bundles"
+                + (f" ({s['ratio']:.1f} : 1)" if s["ratio"] else "")
+                + (f"; PSNR mean {s['mean_psnr']:.2f} dB, lowest {s['min_psnr']:.2f} dB" if s["mean_psnr"] else "")
+                + "".join(f"\nfailed: {f['path']}: {f['error']}" for f in s["failures"][:10]))
+        self.notice.show_text(text)
+        return text
+
+    def _ask_archive_summary(self):
+        from .. import archive
+
+        dst = QFileDialog.getExistingDirectory(self, "A batch output folder", str(self.folder or Path.home()))
+        if dst and (Path(dst) / archive.MANIFEST).exists():
+            self.show_archive_summary(dst)
+        elif dst:
+            self.notice.show_text(f"{dst}: no {archive.MANIFEST} here; not a batch output folder")
+
     def apply_to_archive(self, src, dst) -> bool:
         """Start a batch of ``src`` into ``dst`` with the current setting, in a child process."""
         from .. import archive
 
-        from . import training
-
-        s = self.panel.settings()
-        ref = None
-        if s.method == training.METHOD and self.conv_model_file is not None:  # a model trained here travels along
-            from ..modelfile import read_model
-
-            ref = read_model(self.conv_model_file).sha256
-            archive.store_shared(Path(dst), "model", Path(self.conv_model_file).read_bytes(), ref)
-        recipe = archive.make_recipe(s, "model" if ref else None, ref)
+        recipe = self._recipe(self.panel.settings())
+        if recipe["shared"]:  # a model trained here travels along
+            archive.store_shared(Path(dst), "model", Path(self.conv_model_file).read_bytes(), recipe["shared"]["sha256"])
         return self._start_job(archive.batch_job, ("batch", Path(dst)), f"compressing {Path(src).name}…",
                                child_args=(str(src), str(dst), recipe))
 

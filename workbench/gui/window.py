@@ -92,6 +92,7 @@ class MainWindow(PreviewFlow, JobActions, QMainWindow):
         self.setWindowIcon(icon("app"))
         self.session = Session()  # what is open and computed; the window draws it
         self._shown = None  # (orig, rec) arrays on screen
+        self._recipes: dict = {}  # bundle path -> recipe, written once the bundle is saved
         self._remote = None  # the helper process of the conv encoder (remote.py), on first use
         self._remote_lock = threading.Lock()
 
@@ -206,6 +207,8 @@ class MainWindow(PreviewFlow, JobActions, QMainWindow):
         t.addAction(self.act_train)
         self.act_archive = act("Apply to an archive…", "save-bundle", self._ask_archive)
         t.addAction(self.act_archive)
+        self.act_archive_summary = act("Show an archive's summary…", "open-bundle", self._ask_archive_summary)
+        t.addAction(self.act_archive_summary)
         h = self.menuBar().addMenu("&Help")
         h.addAction(act_about)
         tb = QToolBar("Main")
