@@ -124,7 +124,7 @@ def test_training_for_a_handful_of_steps_lowers_the_loss(small_images, tmp_path)
     first, last = rec["history"][0], rec["history"][-1]
 
     def loss(h):
-        return h["val_bpp"] + cfg.lam * 255**2 * 10 ** (-h["val_psnr"] / 10)
+        return h["heldout_bpp"] + cfg.lam * 255**2 * 10 ** (-h["heldout_psnr"] / 10)
 
     assert loss(last) < loss(first)
 

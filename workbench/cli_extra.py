@@ -101,6 +101,6 @@ def cmd_train(a) -> int:
                       max_steps=a.steps, start_from=start)
     r = run(train_job(images, out, cfg, resume=a.resume), _progress())
     last = r["history"][-1]
-    print(f"wrote {out} after {r['steps']} steps (validation {last['val_psnr']:.2f} dB at {last['val_bpp']:.3f} bpp), "
+    print(f"wrote {out} after {r['steps']} steps (held-out {last['heldout_psnr']:.2f} dB at {last['heldout_bpp']:.3f} bpp), "
           f"sha256 {r['sha256'][:16]}…", file=sys.stdout)
     return 0

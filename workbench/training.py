@@ -189,7 +189,7 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
         net.train()
         psnr = 10 * np.log10(1.0 / max(mse, 1e-12))
         bpp = bits / (val.shape[0] * CROP * CROP)
-        history.append({"step": step, "val_psnr": round(psnr, 3), "val_bpp": round(bpp, 4)})
+        history.append({"step": step, "heldout_psnr": round(psnr, 3), "heldout_bpp": round(bpp, 4)})
         return psnr, bpp
 
     psnr, bpp = record()

@@ -103,7 +103,7 @@ class _Curve(QWidget):
             p.drawText(r, Qt.AlignmentFlag.AlignCenter, "not enough points")
             return
         steps = [x["step"] for x in self.h]
-        for key, colour in (("val_psnr", QColor(120, 200, 160)), ("val_bpp", QColor(250, 170, 40))):
+        for key, colour in (("heldout_psnr", QColor(120, 200, 160)), ("heldout_bpp", QColor(250, 170, 40))):
             v = [x[key] for x in self.h]
             lo, hi = min(v), max(v) if max(v) > min(v) else min(v) + 1
             pts = [QPointF(r.left() + r.width() * (s - steps[0]) / max(1, steps[-1] - steps[0]),
@@ -111,4 +111,4 @@ class _Curve(QWidget):
             p.setPen(QPen(colour, 1.5))
             for a, b in zip(pts[:-1], pts[1:]):
                 p.drawLine(a, b)
-            p.drawText(r.right() - 150, r.top() + (15 if key == "val_psnr" else 30), f"{key}: {v[-1]:.3g}")
+            p.drawText(r.right() - 150, r.top() + (15 if key == "heldout_psnr" else 30), f"{key}: {v[-1]:.3g}")
