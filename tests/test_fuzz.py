@@ -63,3 +63,71 @@ def test_a_model_file_with_a_malformed_architecture_is_refused(arch):
                          [(b"META", container.pack_json({**meta, "arch": arch}))] + chunks[1:])
     with pytest.raises(BundleError, match="architecture"):
         codecs.get("conv").shared_from_bytes(bad)
+
+
+def _model_with(edit_weights=None, edit_meta=None):
+    """The shipped model file rebuilt with edited weights or metadata, CRCs valid."""
+    from safetensors.numpy import load, save
+
+    from workbench import container
+
+    model, _ = codecs.get("conv").default_model()
+    chunks = dict(container.unpack(model.data.raw, modelfile.MAGIC, (modelfile.VERSION,), "m"))
+    meta = container.unpack_json(chunks[b"META"], "m")
+    w = load(chunks[b"WGTS"])
+    if edit_weights:
+        w = edit_weights(w)
+        chunks[b"WGTS"] = save(w)
+    if edit_meta:
+        meta = edit_meta(meta)
+    chunks[b"META"] = container.pack_json(meta)
+    return container.pack(modelfile.MAGIC, modelfile.VERSION, list(chunks.items()))
+
+
+def _nan_first(w):
+    k = sorted(w)[0]
+    bad = w[k].copy()
+    bad.flat[0] = np.nan
+    return {**w, k: bad}
+
+
+def _wrong_shape(w):
+    k = sorted(w)[0]
+    return {**w, k: np.zeros((3,) + w[k].shape[1:], np.float32)}
+
+
+def _changed_weight(w):
+    k = sorted(w)[0]
+    v = w[k].copy()
+    v.flat[0] += 1.0
+    return {**w, k: v}
+
+
+@pytest.mark.parametrize("edit, why", [
+    (dict(edit_weights=_nan_first), "not finite"),
+    (dict(edit_weights=_changed_weight), "hash"),  # content changed under its recorded SHA-256
+    (dict(edit_weights=_wrong_shape, edit_meta=lambda m: {k: v for k, v in m.items() if k != "sha256"}), "fit"),
+    (dict(edit_meta=lambda m: {**m, "tables": [0, 99]}), "tables"),
+], ids=["nan weight", "hash mismatch", "wrong shape", "tables out of range"])
+def test_hostile_model_files_are_refused_with_our_error(edit, why):
+    pytest.importorskip("torch")
+    from workbench.errors import BundleError
+
+    with pytest.raises(BundleError, match=why):
+        codecs.get("conv").shared_from_bytes(_model_with(**edit))
+
+
+def test_a_hostile_model_embedded_in_a_bundle_is_refused_on_decode():
+    pytest.importorskip("torch")
+    from workbench import container
+    from workbench.errors import BundleError
+
+    model, ref = codecs.get("conv").default_model()
+    embedded = pipeline.encode([pipeline.SourceImage("a.png", data.astronaut()[:32, :32])],
+                               pipeline.Settings(method="conv"), shared=model, shared_ref=ref, embed=True).data
+    chunks = container.unpack(embedded, bundle.MAGIC, (bundle.VERSION,), "b")
+    hostile = _model_with(edit_weights=_nan_first)
+    swapped = [(t, hostile if t == b"BASE" else body) for t, body in chunks]
+    with pytest.raises(BundleError, match="not finite"):
+        pipeline.decode(container.pack(bundle.MAGIC, bundle.VERSION, swapped))
+    assert len(pipeline.decode(embedded)[1]) == 1  # while the bundle as made decodes
