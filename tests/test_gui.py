@@ -456,3 +456,20 @@ def test_the_current_setting_can_be_applied_to_an_archive_from_the_app(qtbot, wi
     assert "2 of 2 items done" in window.show_archive_summary(dst)  # a finished archive's summary
     s = window.panel.settings()
     assert (dst / "a_cat.png.wbundle").read_bytes() == pipeline.encode([read_image(folder / "a_cat.png")], s).data
+
+
+def test_cancelling_a_conv_save_in_its_child_process_writes_nothing(qtbot, window, tmp_path, astronaut):
+    big = tmp_path / "big"
+    big.mkdir()
+    for i in range(6):
+        Image.fromarray(np.roll(astronaut, 37 * i, axis=1)).save(big / f"f{i}.png")  # scikit-image's 'astronaut'
+    _open(qtbot, window, big)
+    window.panel.method.setCurrentIndex(window.panel.method.findData("conv"))
+    out = tmp_path / "never.wbundle"
+    with qtbot.waitSignal(window.jobs.failed, timeout=120000) as blocker:
+        window.save_bundle(out)
+        qtbot.waitUntil(lambda: window.progress.value() > 0, timeout=60000)  # the child is encoding
+        qtbot.mouseClick(window.cancel_button, Qt.MouseButton.LeftButton)
+    assert blocker.args[1] == "cancelled"
+    assert not out.exists() and not out.with_suffix(".wrecipe").exists()
+    assert not list(tmp_path.glob(".never.wbundle.*.part"))

@@ -68,6 +68,7 @@ class JobActions:
 
     def _on_job_failed(self, tag, msg):
         self._end_job()
+        self._recipes.pop(tag[1], None)  # a bundle that was not saved gets no recipe
         self.last_error = msg
         if msg == "cancelled":
             self.status_text.setText(self.cancelled_text(tag))
