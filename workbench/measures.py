@@ -53,10 +53,12 @@ class Check:
 
 
 def grey(pixels: np.ndarray, peak: float) -> np.ndarray:
-    """Luma in [0, 1] (ITU-R BT.709 weights, as ``skimage.color.rgb2gray``) of grey or RGB pixels."""
-    a = np.asarray(pixels, dtype=np.float64) / float(peak)
+    """Luma in [0, 1] (ITU-R BT.709 weights, as ``skimage.color.rgb2gray``) of grey or RGB pixels,
+    in float32: the detectors filter float32 in about 60 % of float64's time, and 24 bits of
+    mantissa hold a 16-bit source exactly."""
+    a = np.asarray(pixels, dtype=np.float32) / np.float32(peak)
     if a.ndim == 3:
-        a = a[..., :3] @ np.array([0.2125, 0.7154, 0.0721])
+        a = a[..., :3] @ np.array([0.2125, 0.7154, 0.0721], np.float32)
     return a
 
 
