@@ -47,7 +47,8 @@ def bundle_names(paths: list[Path]) -> list[str]:
     ``a/x.png`` alone is ``x.png``; with ``b/x.png`` beside it the two are ``a/x.png`` and
     ``b/x.png``. Paths must be distinct files.
     """
-    parts = [[clean_text(p) for p in Path(path).parts if p not in ("/", "\\")] or ["image"] for path in paths]
+    # resolved, so that "../x.png" is named by its real folders; the anchor ("/", "C:\\") is left out
+    parts = [[clean_text(p) for p in Path(path).resolve().parts[1:]] or ["image"] for path in paths]
     depth = [1] * len(parts)
     while True:
         names = ["/".join(p[-d:]) for p, d in zip(parts, depth)]
