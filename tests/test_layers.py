@@ -98,3 +98,35 @@ def test_the_import_graph_has_no_circle():
     for node in graph:
         if node not in state:
             visit(node, [node])
+
+
+LAYERS = [  # lowest first; the same table as DEVELOPERS.md's architecture screen
+    {"settings", "codecs", "errors", "color", "display", "notices", "version", "runtime"},
+    {"container", "bundle", "basisfile", "modelfile", "imagefiles", "names"},
+    {"codecs.base", "codecs.klt", "codecs.conv", "klt", "tiling", "coefcode", "conv_model"},
+    {"metrics", "measures", "bdrate", "baselines"},
+    {"pipeline", "preview", "sheet", "sheetpdf", "archive", "training", "session", "remote", "coderproc", "jobs",
+     "demo", "models.make_default"},
+    {"cli", "cliargs", "cli_extra", "cli_archive", "api", "__main__", "gui"},
+]
+# File formats that read a codec part's data type: the basis file holds a klt.Basis, the model
+# file validates entropy tables against the coefficient coder's alphabet.
+EXCEPTIONS = {("basisfile", "klt"), ("modelfile", "coefcode")}
+
+
+def _layer(module: str) -> int:
+    name = module.removeprefix("workbench.") if module != "workbench" else "api"
+    for i, members in enumerate(LAYERS):
+        if name in members or name.split(".")[0] in members and name.split(".")[0] != "codecs":
+            return i
+    raise AssertionError(f"{module} is in no layer of DEVELOPERS.md's table")
+
+
+def test_every_module_imports_only_from_its_layer_or_lower_ones():
+    upward = []
+    for a, deps in _module_graph().items():
+        for b in deps - {"workbench"}:
+            pair = (a.removeprefix("workbench."), b.removeprefix("workbench."))
+            if _layer(b) > _layer(a) and pair not in EXCEPTIONS:
+                upward.append(f"{pair[0]} -> {pair[1]}")
+    assert not upward, upward
