@@ -117,6 +117,7 @@ def encode_one(src_root: str, rel: str, dst_root: str, recipe: dict) -> dict:
     from . import pipeline
     from .imagefiles import read_many, write_atomic
 
+    _one_core()
     t0 = time.perf_counter()
     src, dst = Path(src_root) / rel, Path(dst_root) / (rel + ".wbundle")
     st = src.stat()
@@ -138,6 +139,22 @@ def encode_one(src_root: str, rel: str, dst_root: str, recipe: dict) -> dict:
         row.update(status="failed", error=str(exc).splitlines()[0] if str(exc) else type(exc).__name__)
     row["seconds"] = time.perf_counter() - t0
     return row
+
+
+_LIMITED = False
+
+
+def _one_core() -> None:
+    """A batch worker uses one core: N workers then scale to N cores instead of each one's BLAS
+    and OpenCV threads fighting the others' (done once per process, pool or Dask worker)."""
+    global _LIMITED
+    if not _LIMITED:
+        import cv2
+        from threadpoolctl import threadpool_limits
+
+        cv2.setNumThreads(1)
+        threadpool_limits(1)
+        _LIMITED = True
 
 
 def _mean(values) -> float:
