@@ -99,7 +99,7 @@ def cmd_info(a) -> int:
     n = len(c.entries)
     print(f"{a.bundle}: {c.size} bytes, {n} image{'' if n == 1 else 's'}, made by {info['tool']}")
     side = s.traits.shared_kind
-    print(s.describe() + (f"; {side} {info['basis']}" if side else ""))
+    print(s.describe() + (f"; {side} {info['basis']}" if side and (c.basis_ref or c.shared) else ""))
     for e in info["images"]:
         print(f"  {e['name']}: {e['width']}x{e['height']} {e['bits']}-bit {e['channels']} ch"
               f"{' +alpha' if e['alpha'] else ''}, {e['payload_bytes']} bytes")
