@@ -249,4 +249,4 @@ class EnergyCurve(QWidget):
         p.drawLine(QPointF(x, r.top()), QPointF(x, r.bottom()))
         p.setPen(QColor(150, 150, 150))
         p.drawText(QRectF(r.left(), r.bottom(), r.width(), 14), Qt.AlignmentFlag.AlignLeft,
-                   "energy left out, log scale (grid: 1, 1e-2, 1e-4, 1e-6)")
+                   "energy left out, log scale 1 … 1e-6")
