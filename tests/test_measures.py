@@ -139,3 +139,19 @@ def test_rate_control_for_the_measurements_meets_them_at_a_coarser_step_than_nee
     again = measures.Reference(ms, blobs, 255).judge(workbench.decompress(
         pipeline.encode([SourceImage("b", blobs)], Settings(step=r.step)).data)["b"])
     assert again.ok
+
+
+def test_measuring_until_the_first_failure_finds_the_same_safe_point():
+    blobs = (data.binary_blobs(128, blob_size_fraction=0.1, rng=5) * 180 + 30).astype(np.uint8)  # scikit-image
+    ref = measures.Reference(measures.parse("regions,edges", ["regions.dice>=0.9999"]), blobs, 255)  # fails at 96
+    img, s = SourceImage("b", blobs), Settings()
+    steps = (2.0, 6.0, 12.0, 24.0, 48.0, 96.0, 160.0)
+
+    def safe(points):
+        return measures.safe_point([{"bpp": p.bpp, **({} if p.measured is None else {"ok": p.measured.ok})}
+                                    for p in points])
+
+    full = pipeline.rd_points(img, s, steps, with_ssim=False, measure_ref=ref)
+    short = pipeline.rd_points(img, s, steps, with_ssim=False, measure_ref=ref, measure_until_failure=True)
+    assert any(p.measured is None for p in short) and not any(p.measured is None for p in full)
+    assert safe(short)["bpp"] == safe(full)["bpp"]

@@ -363,11 +363,12 @@ class Reference:
 def safe_point(points: list[dict]) -> dict | None:
     """The lowest-rate point from which every point of higher rate also passes.
 
-    ``points``: dicts with ``bpp`` and ``ok``, any order. ``None`` if the best point fails.
+    ``points``: dicts with ``bpp`` and ``ok``, any order; a point without ``ok`` (not
+    measured) ends the run like a failure. ``None`` if the best point fails.
     """
     best = None
     for p in sorted(points, key=lambda p: -p["bpp"]):
-        if not p["ok"]:
+        if not p.get("ok"):
             break
         best = p
     return best

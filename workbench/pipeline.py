@@ -387,21 +387,24 @@ class RDPoint:
 
 
 def rd_points(img: SourceImage, settings: Settings, steps=None, *, shared=None, shared_ref=None,
-              with_ssim: bool = True, ssim_ref=None, measure_ref=None) -> list[RDPoint]:
+              with_ssim: bool = True, ssim_ref=None, measure_ref=None,
+              measure_until_failure: bool = False) -> list[RDPoint]:
     """Rate–distortion points of one image, each the size of a real one-image bundle.
 
     The transform is fitted once; each step is quantised, entropy-coded and laid out as a
     complete bundle whose length is the rate. With ``measure_ref`` (a
     :class:`workbench.measures.Reference` of this image) each point also says what the
-    measurements found in its reconstruction.
+    measurements found in its reconstruction; with ``measure_until_failure`` the steps are
+    measured from the finest on and the rest are left unmeasured after the first that fails
+    (all a safe operating point needs).
     """
     codec = codecs.get(settings.method)
     steps = steps or settings.traits.rd_steps
     analysis = codec.analyse(image_planes(img, settings.chroma), settings, shared)
     alpha = None if img.alpha is None else encode_alpha(img.alpha)
     meta = _meta(settings, [img], shared_ref)
-    out = []
-    for step in steps:
+    out, failed = [], False
+    for step in sorted(steps) if measure_until_failure else steps:
         coded = codec.quantise(analysis, step=step, count=settings.count)
         size = len(bundle.assemble(dict(meta, images=[dict(m) for m in meta["images"]]), None,
                                    [codec.serialise(coded)], [alpha]))
@@ -410,5 +413,6 @@ def rd_points(img: SourceImage, settings: Settings, steps=None, *, shared=None, 
                            metrics.psnr(img.pixels, rec, data_range=img.peak),
                            float("nan") if not with_ssim else ssim_ref.ssim(rec) if ssim_ref is not None
                            else metrics.ssim(img.pixels, rec, data_range=img.peak),
-                           None if measure_ref is None else measure_ref.judge(rec)))
+                           None if measure_ref is None or failed else measure_ref.judge(rec)))
+        failed = failed or (measure_until_failure and out[-1].measured is not None and not out[-1].measured.ok)
     return sorted(out, key=lambda p: p.bpp)

@@ -201,7 +201,7 @@ def _curves(img: SourceImage, settings: Settings, names, shared, shared_ref, mea
     ref = metrics.SSIMReference(img.pixels, data_range=img.peak) if metrics.ssim_applies(img.height, img.width) else None
     mref = None if measure_spec is None else _measures.Reference(_measures.parse(*measure_spec), img.pixels, img.peak)
     pts = pipeline.rd_points(img, ours_settings, None, shared=shared, shared_ref=shared_ref, ssim_ref=ref,
-                             measure_ref=mref)
+                             measure_ref=mref, measure_until_failure=True)
     curves = {"ours": [{"bpp": p.bpp, "psnr": p.psnr, "ssim": p.ssim, "bytes": p.bytes, "knob": p.step,
                         **({} if p.measured is None else {"ok": p.measured.ok, "measures": p.measured.values})}
                        for p in pts]}
