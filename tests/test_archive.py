@@ -6,7 +6,6 @@ import hashlib
 import os
 import shutil
 import signal
-import sqlite3
 import subprocess
 import sys
 import time
@@ -83,17 +82,6 @@ def test_a_rerun_skips_what_is_done_and_redoes_a_changed_source(tree, tmp_path, 
     assert after["k.png"]["source_sha256"] != before["k.png"]["source_sha256"]
 
 
-def _done(dst):
-    try:
-        db = sqlite3.connect(dst / archive.MANIFEST, timeout=1)
-        try:
-            return db.execute("SELECT COUNT(*) FROM items WHERE status='done'").fetchone()[0]
-        finally:
-            db.close()
-    except sqlite3.Error:
-        return 0
-
-
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="process groups and SIGKILL")
 def test_a_batch_killed_midway_resumes_with_every_item_done_once_and_verified(tmp_path):
     from skimage import data
@@ -107,11 +95,11 @@ def test_a_batch_killed_midway_resumes_with_every_item_done_once_and_verified(tm
     cmd = [sys.executable, "-m", "workbench", "batch", str(src), "-o", str(dst), "--workers", "1"]
     proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True)
     deadline = time.monotonic() + 120
-    while _done(dst) < 3 and time.monotonic() < deadline and proc.poll() is None:
+    while archive.done_count(dst) < 3 and time.monotonic() < deadline and proc.poll() is None:
         time.sleep(0.05)
     os.killpg(proc.pid, signal.SIGKILL)
     proc.wait()
-    assert 3 <= _done(dst) < 12  # killed mid-way
+    assert 3 <= archive.done_count(dst) < 12  # killed mid-way
     assert subprocess.run(cmd + ["--verify"], capture_output=True, text=True).returncode == 0
     rs = archive.rows(dst)
     assert sorted(r["path"] for r in rs) == [f"f{i:02d}.png" for i in range(12)]  # each once
@@ -161,3 +149,12 @@ def test_a_sheet_writes_a_recipe_that_a_batch_applies(tmp_path, capsys):
     cli.main(["batch", str(src), "-o", str(tmp_path / "dst"), "--recipe", str(tmp_path / "sheet" / "recipe.wrecipe")])
     made = (tmp_path / "dst" / "c.png.wbundle").read_bytes()
     assert made == (tmp_path / "sheet" / "bundle.wbundle").read_bytes()  # the same decision, the same bytes
+
+
+def test_restore_into_the_source_tree_is_refused(tree, tmp_path, capsys):
+    dst = tmp_path / "dst"
+    cli.main(["batch", str(tree), "-o", str(dst), "--workers", "1"])
+    before = {p: p.read_bytes() for p in tree.rglob("*") if p.is_file()}
+    assert cli.main(["restore", str(dst), "-o", str(tree / "day1")]) == 2
+    assert "outside the sources" in capsys.readouterr().err
+    assert {p: p.read_bytes() for p in tree.rglob("*") if p.is_file()} == before

@@ -91,9 +91,17 @@ def _put(db: sqlite3.Connection, row: dict) -> None:
     db.commit()
 
 
+def _read_only(dst) -> sqlite3.Connection:
+    """The manifest opened for reading only (a missing one is an error, not a new empty file)."""
+    path = (Path(dst) / MANIFEST).resolve()
+    if not path.exists():
+        raise InputError(f"{dst}: no {MANIFEST} here; not a batch output folder")
+    return sqlite3.connect(f"{path.as_uri()}?mode=ro", uri=True, timeout=30)
+
+
 def rows(dst) -> list[dict]:
     """Every manifest row of a batch output tree, by path."""
-    db = sqlite3.connect(Path(dst) / MANIFEST)
+    db = _read_only(dst)
     try:
         cur = db.execute(f"SELECT {', '.join(COLUMNS)} FROM items ORDER BY path")
         return [dict(zip(COLUMNS, r)) for r in cur.fetchall()]
@@ -308,6 +316,21 @@ class _runner:
         return False
 
 
+def done_count(dst) -> int:
+    """How many items a batch has finished so far (0 before its manifest exists); safe to
+    call while the batch runs."""
+    try:
+        db = _read_only(dst)
+    except InputError:
+        return 0
+    try:
+        return db.execute("SELECT COUNT(*) FROM items WHERE status='done'").fetchone()[0]
+    except sqlite3.Error:  # the driver has not made the table yet
+        return 0
+    finally:
+        db.close()
+
+
 def summary(dst) -> dict:
     """Counts, bytes in and out, mean and lowest PSNR/SSIM, failures with reasons."""
     rs = rows(dst)
@@ -349,14 +372,14 @@ def restore_job(dst, out, *, verify: bool = False, force: bool = False):
     from .names import output_paths
 
     dst, out = Path(dst), (None if out is None else Path(out))
-    if not (dst / MANIFEST).exists():
-        raise InputError(f"{dst}: no {MANIFEST} here; not a batch output folder")
-    db = sqlite3.connect(dst / MANIFEST)
+    db = _read_only(dst)
     try:
         src = Path((db.execute("SELECT value FROM run WHERE key='source'").fetchone() or [""])[0])
         recipe = json.loads((db.execute("SELECT value FROM run WHERE key='recipe'").fetchone() or ["{}"])[0])
     finally:
         db.close()
+    if out is not None and src.parts and (out.resolve() == src.resolve() or src.resolve() in out.resolve().parents):
+        raise InputError(f"{out}: choose a folder outside the sources ({src}); restoring there could replace them")
     done = [r for r in rows(dst) if r["status"] == "done"]
     stats = {"restored": 0, "kept": 0, "verified": 0, "mismatches": []}
     shared, ref = load_shared(dst, recipe) if recipe else (None, None)

@@ -99,8 +99,7 @@ def cmd_batch(a) -> int:
 
     if a.report:
         dst = Path(a.report)
-        if not (dst / archive.MANIFEST).exists():
-            raise InputError(f"{dst}: no {archive.MANIFEST} here; not a batch output folder")
+        archive.rows(dst)  # refuses a folder without a manifest
         write_atomic(dst / "report.csv", archive.report_csv(dst))
         _print_summary(archive.summary(dst), a.json)
         return 0

@@ -12,7 +12,6 @@ import os
 import random
 import resource
 import signal
-import sqlite3
 import subprocess
 import sys
 import tempfile
@@ -54,17 +53,6 @@ def manifest_cost(n: int, tmp: Path) -> float:
         archive._put(db, {"path": f"x{i}", "status": "done", "bytes": 1})
     db.close()
     return time.perf_counter() - t
-
-
-def done_count(dst: Path) -> int:
-    try:
-        db = sqlite3.connect(dst / archive.MANIFEST, timeout=1)
-        try:
-            return db.execute("SELECT COUNT(*) FROM items WHERE status='done'").fetchone()[0]
-        finally:
-            db.close()
-    except sqlite3.Error:
-        return 0
 
 
 def main(argv=None):
