@@ -116,26 +116,16 @@ def render(sheet: dict, rows, crops, tile: int) -> bytes:
             pdf.savefig(fig)
 
         # 3. per-image RD curves
-        per = 6
-        for start in range(0, len(rows), per):
-            fig = Figure(figsize=A4)
+        for fig, grid in _image_pages(sheet, rows, pages + 1, "Rate–distortion per image (PSNR; star = saved setting)",
+                                      0.66):
             pages += 1
-            _page(fig, sheet, pages)
-            fig.text(0.06, 0.94, "Rate–distortion per image (PSNR; star = saved setting)", fontsize=13,
-                     weight="bold", va="top")
-            for i, r in enumerate(rows[start:start + per]):
-                ax = fig.add_axes([0.1 + (i % 2) * 0.45, 0.66 - (i // 2) * 0.29, 0.37, 0.22])
+            for i, (ax, r) in enumerate(grid):
                 for name, pts in r.curves.items():
                     ax.plot([p["bpp"] for p in pts], [min(p["psnr"], 99) for p in pts], "o-", ms=2.5,
                             color=COLOURS.get(name, "k"), lw=_width(name), label=name)
                 ax.plot([r.bpp], [min(r.psnr, 99)], "*", ms=10, color=COLOURS["ours"])
                 bd = " ".join(f"{n} {_fmt(v['psnr'], '+.0f')}%" for n, v in r.bd.items())
-                ax.set_title(f"{r.name[:30]}\nBD-rate: {bd}", fontsize=6.5)
-                ax.tick_params(labelsize=6)
-                ax.set_xlabel("bpp", fontsize=6)
-                ax.grid(alpha=0.3)
-                if i == 0:
-                    ax.legend(fontsize=5.5)
+                _label_small(ax, f"{r.name[:30]}\nBD-rate: {bd}", legend=i == 0)
             pdf.savefig(fig)
 
         # 4. measurements against rate
@@ -172,25 +162,43 @@ def render(sheet: dict, rows, crops, tile: int) -> bytes:
     return buf.getvalue()
 
 
-def _measure_pages(pdf, sheet, rows, pages) -> int:
+PER_PAGE = 6  # images per page of small plots, in a 2 x 3 grid
+
+
+def _image_pages(sheet, rows, first_page: int, title: str, top: float):
+    """Pages of small per-image plots, numbered from ``first_page``: yields ``(figure,
+    [(axes, row), ...])`` with six images a page; the caller draws and saves each figure."""
     from matplotlib.figure import Figure
 
+    for n, start in enumerate(range(0, len(rows), PER_PAGE)):
+        fig = Figure(figsize=A4)
+        _page(fig, sheet, first_page + n)
+        fig.text(0.06, 0.94, title, fontsize=13, weight="bold", va="top")
+        yield fig, [(fig.add_axes([0.1 + (i % 2) * 0.45, top - (i // 2) * 0.29, 0.37, 0.22]), r)
+                    for i, r in enumerate(rows[start:start + PER_PAGE])]
+
+
+def _label_small(ax, title: str, legend: bool) -> None:
+    ax.set_title(title, fontsize=6.5)
+    ax.tick_params(labelsize=6)
+    ax.set_xlabel("bpp", fontsize=6)
+    ax.grid(alpha=0.3)
+    if legend:
+        ax.legend(fontsize=5.5)
+
+
+def _measure_pages(pdf, sheet, rows, pages) -> int:
     from .measures import Check
 
     safe = sheet["safe_point"]
     checks = [(d["measure"], Check(d["key"], d["limit"], d["kind"], d["ideal"])) for d in safe["limits"]]
-    per = 6
-    for start in range(0, len(rows), per):
-        fig = Figure(figsize=A4)
+    for fig, grid in _image_pages(sheet, rows, pages + 1, "Measurements against rate (dashed: the safe operating point)",
+                                  0.64):
         pages += 1
-        _page(fig, sheet, pages)
-        fig.text(0.06, 0.94, "Measurements against rate (dashed: the safe operating point)", fontsize=13,
-                 weight="bold", va="top")
         fig.text(0.06, 0.895, "Each tolerance's share used by the reconstruction: 0 = as in the original, "
                  "1 = at the limit (above the red line the check fails).", fontsize=7, va="top")
         fig.text(0.06, 0.915, "Tolerances: " + "; ".join(safe["checks"]), fontsize=7, va="top", wrap=True)
-        for i, r in enumerate(rows[start:start + per]):
-            ax = fig.add_axes([0.1 + (i % 2) * 0.45, 0.64 - (i // 2) * 0.29, 0.37, 0.22])
+        for i, (ax, r) in enumerate(grid):
             pts = [p for p in r.curves.get("ours", []) if "measures" in p]
             for j, (name, check) in enumerate(checks):
                 ax.plot([p["bpp"] for p in pts], [min(check.fraction(p["measures"][name]), 3.0) for p in pts], "o-",
@@ -201,13 +209,8 @@ def _measure_pages(pdf, sheet, rows, pages) -> int:
             if point is not None:
                 ax.axvline(point["bpp"], ls="--", color="#444444", lw=0.8)
             verdict = "no safe point on the swept curve" if point is None else f"safe from {point['bpp']:.3f} bpp"
-            ax.set_title(f"{r.name[:30]}\n{verdict}", fontsize=6.5)
-            ax.tick_params(labelsize=6)
-            ax.set_xlabel("bpp", fontsize=6)
             ax.set_ylabel("share of tolerance (capped at 3)", fontsize=6)
-            ax.grid(alpha=0.3)
-            if i == 0:
-                ax.legend(fontsize=5.5)
+            _label_small(ax, f"{r.name[:30]}\n{verdict}", legend=i == 0)
         pdf.savefig(fig)
     return pages
 
