@@ -337,7 +337,7 @@ def test_measurements_follow_the_shown_reconstruction_and_mark_the_spots(qtbot, 
     expected = ref.judge(rec)
     assert window.last_measured.values == expected.values
     assert window.panel.measure_result.text().startswith(expected.summary())
-    assert len(window.views.views[0].items_shown) == len(ref.marks(rec)) > 0
+    assert len(window.views.views[0].items_shown) == len(ref.judge(rec, marks=True).marks) > 0
 
 
 def test_the_last_folder_is_stored_as_an_absolute_path(qtbot, window, folder, monkeypatch):

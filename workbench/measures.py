@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import importlib.util
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -74,9 +74,10 @@ class Measure:
     def compare(self, found, pixels: np.ndarray, peak: float) -> dict[str, float]:
         raise NotImplementedError
 
-    def with_checks(self, checks) -> "Measure":
-        self.checks = tuple(checks)
-        return self
+    def compare_marked(self, found, pixels: np.ndarray, peak: float):
+        """``(compare's numbers, [(y, x, kind), ...])``: the items to draw over the views, from
+        the same detection (none by default)."""
+        return self.compare(found, pixels, peak), []
 
 
 def match_points(a: np.ndarray, b: np.ndarray, radius: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -120,21 +121,22 @@ class Spots(Measure):
     def find(self, pixels, peak):
         return self.spots(pixels, peak)
 
-    def marks(self, found, pixels, peak) -> list[tuple[float, float, str]]:
-        """``(y, x, kind)`` per spot, kind ``matched``, ``missed`` (original only) or ``spurious``."""
-        test = self.spots(pixels, peak)
-        ia, ib, _ = match_points(found, test, self.radius)
-        out = [(float(y), float(x), "matched") for y, x in np.asarray(found)[ia]]
-        out += [(float(y), float(x), "missed") for i, (y, x) in enumerate(found) if i not in set(ia)]
-        out += [(float(y), float(x), "spurious") for i, (y, x) in enumerate(test) if i not in set(ib)]
-        return out
-
     def compare(self, found, pixels, peak):
+        return self.compare_marked(found, pixels, peak)[0]
+
+    def compare_marked(self, found, pixels, peak):
+        """The numbers, and ``(y, x, kind)`` per spot: ``matched``, ``missed`` (original only) or
+        ``spurious``, from one detection in the reconstruction."""
         test = self.spots(pixels, peak)
-        ia, _, dist = match_points(found, test, self.radius)
-        return {"count": float(len(found)), "count_rec": float(len(test)),
-                "count_error": float(abs(len(test) - len(found))), "missed": float(len(found) - len(ia)),
-                "spurious": float(len(test) - len(ia)), "shift_px": float(dist.mean()) if len(dist) else 0.0}
+        ia, ib, dist = match_points(found, test, self.radius)
+        values = {"count": float(len(found)), "count_rec": float(len(test)),
+                  "count_error": float(abs(len(test) - len(found))), "missed": float(len(found) - len(ia)),
+                  "spurious": float(len(test) - len(ia)), "shift_px": float(dist.mean()) if len(dist) else 0.0}
+        matched_a, matched_b = set(ia.tolist()), set(ib.tolist())
+        marks = [(float(y), float(x), "matched") for y, x in np.asarray(found)[ia]]
+        marks += [(float(y), float(x), "missed") for i, (y, x) in enumerate(found) if i not in matched_a]
+        marks += [(float(y), float(x), "spurious") for i, (y, x) in enumerate(test) if i not in matched_b]
+        return values, marks
 
 
 class Regions(Measure):
@@ -314,6 +316,7 @@ class Outcome:
 
     values: dict[str, dict[str, float]]
     failed: list[str]  # "spots: shift_px <= 0.5" for each check that does not hold
+    marks: list = field(default_factory=list)  # (y, x, kind) to draw, when asked for
 
     @property
     def ok(self) -> bool:
@@ -343,21 +346,19 @@ class Reference:
         self.measures, self.peak = list(measures), float(peak)
         self.found = [m.find(pixels, self.peak) for m in self.measures]
 
-    def marks(self, pixels: np.ndarray) -> list[tuple[float, float, str]]:
-        """Positions to draw over the views (the spots' matched, missed and spurious items)."""
-        out = []
+    def judge(self, pixels: np.ndarray, *, marks: bool = False) -> Outcome:
+        """Every measurement on one reconstruction; with ``marks``, also the items to draw
+        over the views (the spots' matched, missed and spurious), from the same detections."""
+        values, failed, drawn = {}, [], []
         for m, f in zip(self.measures, self.found):
-            if hasattr(m, "marks"):
-                out += m.marks(f, pixels, self.peak)
-        return out
-
-    def judge(self, pixels: np.ndarray) -> Outcome:
-        values, failed = {}, []
-        for m, f in zip(self.measures, self.found):
-            v = m.compare(f, pixels, self.peak)
+            if marks:
+                v, items = m.compare_marked(f, pixels, self.peak)
+                drawn += items
+            else:
+                v = m.compare(f, pixels, self.peak)
             values[m.name] = v
             failed += [f"{m.name}: {c.text()}" for c in m.checks if not c.holds(v)]
-        return Outcome(values, failed)
+        return Outcome(values, failed, drawn)
 
 
 def safe_point(points: list[dict]) -> dict | None:

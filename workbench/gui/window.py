@@ -365,7 +365,8 @@ class MainWindow(PreviewFlow, JobActions, QMainWindow):
                 self._measure_refs[key] = ref
                 while len(self._measure_refs) > 4:
                     self._measure_refs.popitem(last=False)
-            return img, ref.judge(rec), ref.marks(rec)
+            outcome = ref.judge(rec, marks=True)
+            return img, outcome, outcome.marks
 
         self.measure_lane.submit(work, tag=img.name)
 
