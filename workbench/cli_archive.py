@@ -6,7 +6,7 @@ import json
 import sys
 from pathlib import Path
 
-from .cliargs import _add_codec_options, _shared_from_args, command, settings_from_args
+from .cliargs import _add_codec_options, _Bar, _shared_from_args, command, settings_from_args
 from .errors import InputError
 
 
@@ -107,7 +107,7 @@ def cmd_batch(a) -> int:
         raise InputError("batch needs SRC and -o DST (or --report DST)")
     dst = Path(a.output)
     recipe = _recipe_from_args(a, dst)
-    bar = _BatchBar()
+    bar = _Bar(unit="image")
     try:
         s = run(archive.batch_job(a.src, dst, recipe, workers=a.workers, scheduler=a.scheduler), bar)
     except KeyboardInterrupt:
@@ -124,28 +124,6 @@ def cmd_batch(a) -> int:
     if a.verify and not a.json:
         print(f"verified {s['verified']} bundles against their sources: {len(s['mismatches'])} mismatches")
     return 0 if not s["failed"] and not s.get("mismatches") else 1
-
-
-class _BatchBar:
-    """tqdm bar: count, rate, ETA and the running mean PSNR (terminals only)."""
-
-    def __init__(self):
-        self.bar, self.psnr = None, []
-
-    def __call__(self, p) -> None:
-        if not sys.stderr.isatty():
-            return
-        from tqdm import tqdm
-
-        if self.bar is None:
-            self.bar = tqdm(total=int(p.total), file=sys.stderr, unit="image", dynamic_ncols=True)
-        self.bar.n = int(p.done)
-        self.bar.set_postfix_str(p.text[-40:], refresh=False)
-        self.bar.refresh()
-
-    def close(self):
-        if self.bar is not None:
-            self.bar.close()
 
 
 def cmd_restore(a) -> int:

@@ -101,10 +101,14 @@ def _read_inputs(inputs):
 
 class _Bar:
     """A terminal progress bar (tqdm) fed with a job's Progress; silent when stderr is not a
-    terminal, so scripts and logs get the result lines only."""
+    terminal, so scripts and logs get the result lines only.
 
-    def __init__(self):
-        self.bar = None
+    With ``unit`` (``"image"``) it counts items, with their rate and ETA, and stays until
+    :meth:`close`; without, it shows the fraction done and goes when the job is.
+    """
+
+    def __init__(self, unit: str | None = None):
+        self.bar, self.unit = None, unit
 
     def __call__(self, p) -> None:
         if not sys.stderr.isatty():
@@ -112,12 +116,19 @@ class _Bar:
         if self.bar is None:
             from tqdm import tqdm
 
-            self.bar = tqdm(total=1000, file=sys.stderr, leave=False, dynamic_ncols=True,
-                            bar_format="{l_bar}{bar}| {elapsed}<{remaining} {postfix}")
-        self.bar.n = int(1000 * p.fraction)
-        self.bar.set_postfix_str(p.text[:40], refresh=False)
+            if self.unit:
+                self.bar = tqdm(total=int(p.total), file=sys.stderr, unit=self.unit, dynamic_ncols=True)
+            else:
+                self.bar = tqdm(total=1000, file=sys.stderr, leave=False, dynamic_ncols=True,
+                                bar_format="{l_bar}{bar}| {elapsed}<{remaining} {postfix}")
+        self.bar.n = int(p.done) if self.unit else int(1000 * p.fraction)
+        self.bar.set_postfix_str(p.text[-40:] if self.unit else p.text[:40], refresh=False)
         self.bar.refresh()
-        if p.fraction >= 1:
+        if p.fraction >= 1 and not self.unit:
+            self.close()
+
+    def close(self) -> None:
+        if self.bar is not None:
             self.bar.close()
 
 
