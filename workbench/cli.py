@@ -13,7 +13,7 @@ import sys
 from pathlib import Path
 
 from .cliargs import (EPILOG, EXTRA_COMMANDS, _add_budget_option, _add_codec_options, _progress, _read_inputs,
-                      _shared_from_args, measures_from_args, settings_from_args)
+                      _shared_from_args, measures_from_args, resolve_block, settings_from_args)
 from .errors import Cancelled, WorkbenchError
 from .settings import BLOCK_SIZES, Settings
 from .version import __version__
@@ -27,6 +27,8 @@ def cmd_encode(a) -> int:
     shared, ref = _shared_from_args(a)
     images, _ = _read_inputs(a.inputs)
     chosen = measures_from_args(a)
+    if images:
+        settings = resolve_block(a, settings, images)
     job = pipeline.encode_job(images, settings, shared=shared, shared_ref=ref, embed=a.embed_model,
                               max_pixels=a.max_pixels, measures=chosen, target_measures=a.target_measures)
     result = run(job, _progress())

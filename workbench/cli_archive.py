@@ -6,7 +6,7 @@ import json
 import sys
 from pathlib import Path
 
-from .cliargs import _add_codec_options, _Bar, _shared_from_args, command, settings_from_args
+from .cliargs import _add_codec_options, _Bar, _shared_from_args, command, resolve_block, settings_from_args
 from .errors import InputError
 
 
@@ -51,24 +51,28 @@ def _recipe_from_args(a, dst: Path) -> dict:
         return recipe
     settings = settings_from_args(a)
     if a.fit_basis_on:
-        import numpy as np
-
         from . import pipeline
         from .codecs import get
-        from .imagefiles import read_many
 
-        files = archive.sources(Path(a.src))
-        pick = np.random.default_rng(0).choice(len(files), min(a.fit_basis_on, len(files)), replace=False)
-        images, _ = read_many([Path(a.src) / files[i] for i in sorted(pick)])
+        files, images = _sampled(a.src, a.fit_basis_on)
         if not images:
             raise InputError("no readable images to fit a basis on")
         if not settings.traits.folder_scope:
             raise InputError(f"--fit-basis-on: the {settings.traits.label} fits nothing on a folder")
-        s = settings.replace(basis_scope="folder")
+        # the basis is stored once for the whole tree: its cost is shared by every file
+        s = resolve_block(a, settings.replace(basis_scope="folder"), images, total=len(files))
+        settings = settings.replace(block=s.block, count=s.count)
         basis, _, _ = get(s.method).prepare_shared([pipeline.image_planes(i, s.chroma) for i in images], s)
         sha = basis_hash(basis_to_bytes(basis))
         archive.store_shared(dst, "basis", basis_file_bytes(basis, sources=[i.name for i in images]), sha)
         return archive.make_recipe(settings, "basis", sha)
+    if a.block == "auto":
+        from .blockchoice import SAMPLE
+
+        files, images = _sampled(a.src, SAMPLE)
+        if not images:
+            raise InputError("no readable images to choose a block size on")
+        settings = resolve_block(a, settings, images, total=len(files))
     shared, ref = _shared_from_args(a)
     if ref is None:
         return archive.make_recipe(settings)
@@ -76,6 +80,21 @@ def _recipe_from_args(a, dst: Path) -> dict:
     data = Path(a.basis or a.model).read_bytes() if (a.basis or a.model) else shared.data.raw
     archive.store_shared(dst, kind, data, ref)
     return archive.make_recipe(settings, kind, ref)
+
+
+def _sampled(src, n: int):
+    """``(all source files under src, up to n of them read, sampled with a fixed seed)``."""
+    import numpy as np
+
+    from . import archive
+    from .imagefiles import read_many
+
+    files = archive.sources(Path(src))
+    if not files:
+        return files, []
+    pick = np.random.default_rng(0).choice(len(files), min(n, len(files)), replace=False)
+    images, _ = read_many([Path(src) / files[i] for i in sorted(pick)])
+    return files, images
 
 
 def _print_summary(s: dict, as_json: bool) -> None:

@@ -6,7 +6,7 @@ import sys
 from pathlib import Path
 
 from .cliargs import (_add_codec_options, _progress, _read_inputs, _shared_from_args, command, measures_from_args,
-                  settings_from_args)
+                      resolve_block, settings_from_args)
 from .errors import InputError
 
 
@@ -33,6 +33,8 @@ def cmd_sheet(a) -> int:
     names = [n.strip() for n in a.baselines.split(",") if n.strip()]
     shared, ref = _shared_from_args(a)
     images, skipped = _read_inputs(a.inputs)
+    if images:
+        settings = resolve_block(a, settings, images)
     out = Path(a.output)
     sources = set(list_inputs(a.inputs))
     if any(p.parent.resolve() == out.resolve() for p in sources):

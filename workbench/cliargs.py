@@ -21,7 +21,9 @@ def _add_codec_options(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("codec")
     g.add_argument("--method", default="klt", choices=codecs.names(),
                    help="transform: " + ", ".join(f"{n} ({codecs.label(n)})" for n in codecs.names()) + " (default klt)")
-    g.add_argument("--block", type=int, default=8, choices=BLOCK_SIZES, help="KLT patch side B (default 8)")
+    g.add_argument("--block", type=block_size, default=8, metavar="{" + ",".join(map(str, BLOCK_SIZES)) + ",auto}",
+                   help="KLT patch side B, or auto: the size of lowest rate–distortion cost on a sample of "
+                        "the images (default 8)")
     g.add_argument("--count", "--components", "--latent", dest="count", type=int, metavar="K",
                    help="what the method keeps: " + ", ".join(f"{codecs.traits(n).count_label} ({n})"
                                                              for n in codecs.names()) + " (default all)")
@@ -44,6 +46,31 @@ def _add_codec_options(p: argparse.ArgumentParser) -> None:
                         "(a FILE.py runs as your own code, with your rights)")
     m.add_argument("--tolerance", action="append", default=[], metavar="NAME.KEY<=V",
                    help="replace a default tolerance, e.g. spots.shift_px<=0.3 or regions.dice>=0.99 (repeatable)")
+
+
+def block_size(text: str):
+    """``--block``'s value: one of the block sizes, or ``"auto"``."""
+    if text == "auto":
+        return text
+    if text.isdigit() and int(text) in BLOCK_SIZES:
+        return int(text)
+    raise argparse.ArgumentTypeError(f"choose one of {', '.join(map(str, BLOCK_SIZES))} or auto, not {text!r}")
+
+
+def resolve_block(a, settings: Settings, images, total: int | None = None) -> Settings:
+    """``settings`` with ``--block auto`` resolved on ``images`` (the folder holds ``total``),
+    saying on stderr what was chosen and why; unchanged for a fixed block."""
+    if getattr(a, "block", None) != "auto":
+        return settings
+    from . import blockchoice
+
+    if settings.method != "klt":
+        raise WorkbenchError(f"--block auto chooses the KLT's block; the {settings.traits.label} has none")
+    if getattr(a, "basis", None):
+        raise WorkbenchError("--block auto cannot be used with --basis: the basis file fixes the block")
+    chosen, costs = blockchoice.choose_block(images, settings, total)
+    print(blockchoice.describe(costs, chosen.block), file=sys.stderr)
+    return chosen
 
 
 def measures_from_args(a):
@@ -72,7 +99,7 @@ def settings_from_args(a) -> Settings:
         v = getattr(a, f"target_{kind}", None)
         if v is not None:
             target = (kind, v)
-    kw = dict(method=a.method, block=a.block, count=a.count, chroma=a.chroma, basis_scope=a.basis_scope,
+    kw = dict(method=a.method, block=8 if a.block == "auto" else a.block, count=a.count, chroma=a.chroma, basis_scope=a.basis_scope,
               target=target)
     if a.step is not None:
         kw["step"] = a.step

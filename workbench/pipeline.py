@@ -118,7 +118,8 @@ class EncodeResult:
 # ------------------------------------------------------------------ rate control
 
 
-def _measure(kind: str, img: SourceImage, coded_planes, chroma: str) -> float:
+def plane_quality(kind: str, img: SourceImage, coded_planes, chroma: str) -> float:
+    """PSNR or SSIM (``kind``) of ``img`` against the pixels of ``coded_planes``."""
     rec = planes_to_pixels(coded_planes, img.pixels.shape[:2], chroma, img.bits)
     if kind == "psnr":
         return metrics.psnr(img.pixels, rec, data_range=img.peak)
@@ -250,7 +251,7 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
                     return (8 * len(codec.serialise(at(s))) + overhead) / (img.width * img.height)
             else:
                 def evaluate(s):
-                    return _measure(kind, img, at(s).planes, settings.chroma)
+                    return plane_quality(kind, img, at(s).planes, settings.chroma)
             step, met = search_step(evaluate, kind, value)
         coded = at(step)
         advice = None if met in (None, True) else target_advice(img, settings, evaluate(step), shared)
@@ -313,7 +314,7 @@ def target_advice(img: SourceImage, settings: Settings, reached: float, shared=N
             return codec.quantise(a, step=step, count=settings.count)
 
         def quality(step):
-            return _measure(kind, img, at(step).planes, "444")
+            return plane_quality(kind, img, at(step).planes, "444")
 
         step, met = search_step(quality, kind, value)
         if met:

@@ -59,6 +59,12 @@ class JobActions:
             self.status_text.setText(f"Quality sheet written to {tag[1]}")
         elif kind == "train":
             self._on_trained(tag[1], result)
+        elif kind == "block":
+            from .. import blockchoice
+
+            chosen, costs = result
+            self.panel.apply(chosen)
+            self.status_text.setText(blockchoice.describe(costs, chosen.block).capitalize())
         elif kind == "batch":
             self.last_batch = result
             self.status_text.setText(
@@ -108,6 +114,27 @@ class JobActions:
             return result
 
         return self._start_job(job, ("save", path), text)
+
+    def choose_block(self) -> bool:
+        """Try every block size on the folder and keep the one of lowest rate–distortion
+        cost at the current step (a background job; the panel then shows it)."""
+        if not self.images:
+            self.notice.show_text("Nothing to choose on: open a folder first.")
+            return False
+        s = self.panel.settings()
+        if not s.traits.uses_block:
+            self.notice.show_text(f"The {s.traits.label} has no block size to choose.")
+            return False
+        images = list(self.images)
+
+        def job():
+            from .. import blockchoice
+            from ..jobs import Progress
+
+            yield Progress(0, 1, "trying each block size on the folder…")
+            return blockchoice.choose_block(images, s)
+
+        return self._start_job(job, ("block", ""), "choosing the block size…")
 
     def _ask_save_bundle(self):
         start = str(Path(self.store.value("last_save_dir", str(Path.home()))) / ((self.folder.name if self.folder else "images") + ".wbundle"))

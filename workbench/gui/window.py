@@ -204,6 +204,8 @@ class MainWindow(PreviewFlow, JobActions, QMainWindow):
         v = self.menuBar().addMenu("&View")
         v.addAction(self.act_zoom)
         t = self.menuBar().addMenu("&Tools")
+        self.act_block = act("Choose the block size for this folder", "", self.choose_block)
+        t.addAction(self.act_block)
         t.addAction(self.act_train)
         self.act_archive = act("Apply to an archive…", "save-bundle", self._ask_archive)
         t.addAction(self.act_archive)

@@ -1,0 +1,72 @@
+"""``--block auto``: the block size of lowest rate–distortion cost, checked against the rate
+the pipeline really spends (Bjøntegaard BD-rate, VCEG-M33) on scikit-image's bundled images."""
+
+import numpy as np
+import pytest
+from skimage import data
+
+from workbench import bdrate, blockchoice, bundle, cli, pipeline
+from workbench.imagefiles import SourceImage
+from workbench.settings import Settings
+
+STEPS = (3.0, 4.5, 6.5, 9.0, 13.0, 18.0)
+
+
+def _tiles(a, side=128):
+    return [SourceImage(f"t{y}_{x}", a[y:y + side, x:x + side])
+            for y in range(0, a.shape[0] - side + 1, side) for x in range(0, a.shape[1] - side + 1, side)]
+
+
+def test_the_chosen_block_spends_the_fewest_bits_at_equal_psnr(astronaut):
+    # scikit-image's 'astronaut' (a quarter of it): every candidate's real RD curve
+    img = SourceImage("astronaut", astronaut[:256, :256])
+    chosen, costs = blockchoice.choose_block([img], Settings())
+    curves = {c.block: pipeline.rd_points(img, Settings(block=c.block), STEPS, with_ssim=False) for c in costs}
+    ref = curves[8]
+
+    def bd(block):
+        pts = curves[block]
+        return bdrate.bd_rate([p.bpp for p in ref], [p.psnr for p in ref], [p.bpp for p in pts], [p.psnr for p in pts])
+
+    assert {c.block for c in costs} == {4, 8, 16, 32}
+    assert bd(chosen.block) == pytest.approx(min(bd(b) for b in curves), abs=1e-9)
+
+
+def test_a_basis_shared_by_a_larger_archive_can_afford_a_larger_block():
+    # scikit-image's 'grass' texture in 128 px tiles: the stored basis costs a 1/8 share
+    # of itself for 8 files, almost nothing for 10,000, and the choice follows
+    tiles = _tiles(data.grass())
+    small, _ = blockchoice.choose_block(tiles, Settings(basis_scope="folder"), total=8)
+    large, _ = blockchoice.choose_block(tiles, Settings(basis_scope="folder"), total=10_000)
+    assert large.block > small.block
+
+
+def test_the_count_is_kept_as_a_fraction_of_the_blocks_components(astronaut):
+    img = SourceImage("astronaut", astronaut[:256, :256])
+    chosen, _ = blockchoice.choose_block([img], Settings(count=32))  # half of 8 x 8
+    assert chosen.count == chosen.block ** 2 // 2
+
+
+def test_candidates_leave_out_blocks_larger_than_half_the_shortest_image():
+    assert blockchoice.candidates([SourceImage("s", np.zeros((40, 300), np.uint8))]) == (4, 8, 16)
+
+
+def test_cli_block_auto_writes_the_chosen_block_and_says_why(tmp_path, capsys, astronaut):
+    from PIL import Image
+
+    Image.fromarray(astronaut[:256, :256]).save(tmp_path / "a.png")
+    out = tmp_path / "a.wbundle"
+    assert cli.main(["encode", str(tmp_path / "a.png"), "--block", "auto", "-o", str(out)]) == 0
+    line = capsys.readouterr().err.strip().splitlines()[-1]
+    block = bundle.parse(out.read_bytes()).settings.block
+    assert line.startswith(f"block {block} chosen by rate–distortion cost at step 8")
+
+
+def test_cli_block_auto_refuses_a_method_without_blocks(tmp_path, capsys, astronaut):
+    from PIL import Image
+
+    Image.fromarray(astronaut[:64, :64]).save(tmp_path / "a.png")
+    assert cli.main(["encode", str(tmp_path / "a.png"), "--block", "auto", "--method", "conv",
+                     "-o", str(tmp_path / "a.wbundle")]) == 2
+    assert "--block auto chooses the KLT's block" in capsys.readouterr().err
+    assert not (tmp_path / "a.wbundle").exists()
