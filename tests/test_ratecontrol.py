@@ -62,3 +62,49 @@ def test_a_rate_past_the_lossless_png_is_said():
     noise = np.random.default_rng(0).integers(0, 256, (64, 64), dtype=np.uint8)
     r = pipeline.encode([SourceImage("n", noise)], Settings(step=0.05)).images[0]
     assert r.advice and "lossless PNG" in r.advice
+
+
+def _counting_quantise(monkeypatch):
+    from workbench.codecs.klt import CODEC
+
+    calls = []
+    real = CODEC.quantise
+
+    def counted(a, **kw):
+        calls.append(kw["step"])
+        return real(a, **kw)
+
+    monkeypatch.setattr(CODEC, "quantise", counted)
+    return calls
+
+
+@pytest.mark.parametrize("target", [("psnr", 34.0), ("bpp", 1.0), ("ssim", 0.95)])
+def test_a_target_takes_a_few_trials_not_a_bisection(monkeypatch, astronaut, target):
+    # scikit-image's 'astronaut'; a bisection over the step range took 16 trials
+    calls = _counting_quantise(monkeypatch)
+    r = _enc(astronaut, target=target)
+    assert r.target_met
+    assert len(calls) <= 7
+
+
+def test_the_chosen_trial_is_not_quantised_or_coded_again(monkeypatch, chelsea):
+    from workbench.codecs.klt import CODEC
+
+    calls = _counting_quantise(monkeypatch)
+    coded = []
+    real = CODEC.serialise
+    monkeypatch.setattr(CODEC, "serialise", lambda c: coded.append(c.step) or real(c))
+    r = _enc(chelsea, target=("bpp", 1.0))
+    assert len(coded) == len(set(coded)) == len(calls) == len(set(calls))
+    assert np.float32(r.step) in {np.float32(s) for s in calls}
+
+
+def test_a_search_for_a_verdict_brackets_its_threshold_within_two_percent():
+    step, ok = pipeline.search_step(lambda s: 1.0 if s <= 37.0 else 0.0, "pass", 0.5)
+    assert ok and 37.0 / 1.02 <= step <= 37.0
+
+
+def test_a_rate_search_finds_the_finest_step_within_the_rate():
+    # a rate falling as 1/step: the step for 0.5 is 2.0
+    step, ok = pipeline.search_step(lambda s: 1.0 / s, "bpp", 0.5)
+    assert ok and 1.0 / step <= 0.5 and step == pytest.approx(2.0, rel=0.011)

@@ -137,6 +137,29 @@ def section_speed(repeats):
     print(f"SSIM of a 4-MP RGB image: {(time.perf_counter() - t0) / repeats * 1000:.0f} ms (mean of {repeats})")
 
 
+def section_targets(repeats):
+    print("\n== Rate control, 4-megapixel RGB: a target's encode against one encode at the step it found "
+          "(interleaved, same process)")
+    img = four_mp()
+    src = [SourceImage("x", img)]
+    psnr8 = pipeline.encode(src, Settings(step=8.0)).images[0].psnr
+    targets = [("--target-bpp 1", ("bpp", 1.0)), ("--target-bpp 0.25", ("bpp", 0.25)),
+               (f"--target-psnr {psnr8 + 2:.1f}", ("psnr", round(psnr8 + 2, 1))),
+               ("--target-ssim 0.95", ("ssim", 0.95))]
+    for label, target in targets:
+        r = pipeline.encode(src, Settings(target=target)).images[0]
+        pair = [Settings(target=target), Settings(step=float(np.float32(r.step)))]
+        times = [[], []]
+        for i in range(repeats):
+            for j in ((0, 1) if i % 2 else (1, 0)):
+                t = time.perf_counter()
+                pipeline.encode(src, pair[j])
+                times[j].append(time.perf_counter() - t)
+        a, b = statistics.median(times[0]), statistics.median(times[1])
+        print(f"  {label:20s} {r.bpp:.3f} bpp, PSNR {r.psnr:.2f} dB, SSIM {r.ssim:.4f}, step {r.step:.3g}: "
+              f"{a / b:.1f}x one fixed-step encode ({a:.2f} s against {b:.2f} s; median of {repeats})")
+
+
 def section_memory():
     code = ("import sys, tracemalloc, resource; sys.path.insert(0, %r); sys.path.insert(0, %r); import bench_klt, workbench; "
             "img = bench_klt.four_mp(); tracemalloc.start(); b = workbench.compress({'x': img}, step=6.0); "
@@ -162,6 +185,7 @@ def main():
         section_per_image()
         section_folder_basis()
     section_speed(5 if a.quick else 11)
+    section_targets(3 if a.quick else 5)
     section_memory()
 
 
