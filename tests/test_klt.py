@@ -139,3 +139,34 @@ def test_a_per_image_basis_with_more_dimensions_than_patches_stays_affordable(as
     jpeg = baselines.sweep(baselines.get("jpeg"), astronaut, with_ssim=False)
     bd = bdrate.bd_rate([p.bpp for p in jpeg], [p.psnr for p in jpeg], [p.bpp for p in ours], [p.psnr for p in ours])
     assert bd < 200, bd
+
+
+def test_rdo_levels_only_move_levels_towards_zero_and_leave_the_first_component():
+    from workbench.codecs.klt import rdo_levels
+
+    rng = np.random.default_rng(3)
+    x = (rng.laplace(size=(64, 4000)) * np.linspace(20, 0.3, 64)[:, None]).astype(np.float32)
+    q = np.round(x).astype(np.int32)
+    r = rdo_levels(x, q.copy())
+    assert r.dtype == np.int32 and r.shape == q.shape
+    assert np.array_equal(r[0], q[0])
+    assert np.all(np.abs(r) <= np.abs(q)) and np.all(r * q >= 0)
+    moved = r != q
+    assert moved.any() and np.all(((np.abs(q - r) == 1) | (r == 0))[moved])
+
+
+def test_rdoq_saves_bits_at_equal_psnr_against_plain_rounding(monkeypatch, astronaut):
+    # scikit-image's 'astronaut' (a quarter); BD-rate after Bjøntegaard (VCEG-M33)
+    from workbench import bdrate, pipeline
+    from workbench.codecs import klt as codec_klt
+    from workbench.imagefiles import SourceImage
+    from workbench.settings import Settings
+
+    img = SourceImage("a", astronaut[:256, :256])
+    steps = (3.0, 4.5, 6.5, 9.0, 13.0, 18.0)
+    with_rdoq = pipeline.rd_points(img, Settings(deadzone=0.5), steps, with_ssim=False)
+    monkeypatch.setattr(codec_klt, "RDOQ_LAMBDA", 0.0)  # nothing is worth dropping: plain rounding
+    plain = pipeline.rd_points(img, Settings(deadzone=0.5), steps, with_ssim=False)
+    bd = bdrate.bd_rate([p.bpp for p in plain], [p.psnr for p in plain],
+                        [p.bpp for p in with_rdoq], [p.psnr for p in with_rdoq])
+    assert bd < -1.0

@@ -105,8 +105,8 @@ LAYERS = [  # lowest first; the same table as DEVELOPERS.md's architecture scree
     {"container", "bundle", "basisfile", "modelfile", "imagefiles", "names"},
     {"codecs.base", "codecs.klt", "codecs.conv", "klt", "tiling", "coefcode", "conv_model"},
     {"metrics", "measures", "bdrate", "baselines"},
-    {"pipeline", "preview", "sheet", "sheetpdf", "archive", "training", "session", "remote", "coderproc", "jobs",
-     "demo", "models.make_default"},
+    {"pipeline", "blockchoice", "preview", "sheet", "sheetpdf", "archive", "training", "session", "remote",
+     "coderproc", "jobs", "demo", "models.make_default"},
     {"cli", "cliargs", "cli_extra", "cli_archive", "api", "__main__", "gui"},
 ]
 # File formats that read a codec part's data type: the basis file holds a klt.Basis, the model

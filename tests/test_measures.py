@@ -51,7 +51,7 @@ def test_measured_change_grows_with_the_quantiser_step():
     ms = [measures.Spots(), measures.Regions(), measures.Edges()]
     ref = measures.Reference(ms, blobs, 255)
     used = []
-    for step in (1.0, 16.0, 64.0):
+    for step in (1.0, 32.0, 64.0):  # spots on flat-topped blobs move by a few even at 58 dB: steps well apart
         rec = pipeline.encode([SourceImage("b", blobs)], Settings(step=step)).images[0].reconstruction
         outcome = ref.judge(rec)
         used.append(sum(c.fraction(outcome.values[m.name]) for m in ms for c in m.checks))

@@ -52,7 +52,7 @@ class Settings:
     chroma: str = "420"
     basis_scope: str = "image"
     target: tuple[str, float] | None = None
-    deadzone: float = 0.38
+    deadzone: float = 0.5
 
     def __post_init__(self):
         from .codecs import REGISTRY

@@ -50,17 +50,24 @@ def bd_against(img, ours, names=("jpeg", "jpeg2000", "webp", "avif")):
 
 def section_per_image():
     print("\n== Per-image basis (stored in each bundle), BD-rate by PSNR, negative = fewer bits than the codec")
-    rows = []
+    from workbench import blockchoice
+
+    rows = {"block 8": [], "block auto": []}
     for name in PHOTOS:
         img = getattr(data, name)()
-        ours = pipeline.rd_points(SourceImage(name, img), Settings(), STEPS, with_ssim=False)
-        bd = bd_against(img, ours)
-        rows.append(bd)
-        pts = ", ".join(f"{p.bpp:.2f}/{p.psnr:.1f}" for p in ours[::2])
-        print(f"{name:10s} " + "  ".join(f"{k} {v:+6.1f}%" for k, v in bd.items()) + f"   (bpp/dB: {pts})")
-    mean = {k: statistics.mean(r[k] for r in rows) for k in rows[0]}
-    print(f"{'mean':10s} " + "  ".join(f"{k} {v:+6.1f}%" for k, v in mean.items()))
-    return mean
+        src = SourceImage(name, img)
+        auto, _ = blockchoice.choose_block([src], Settings())
+        for tag, s in (("block 8", Settings()), ("block auto", auto)):
+            ours = pipeline.rd_points(src, s, STEPS, with_ssim=False)
+            bd = bd_against(img, ours)
+            rows[tag].append(bd)
+            pts = ", ".join(f"{p.bpp:.2f}/{p.psnr:.1f}" for p in ours[::2])
+            print(f"{name:10s} {tag + (f' ({s.block})' if tag == 'block auto' else ''):15s} "
+                  + "  ".join(f"{k} {v:+6.1f}%" for k, v in bd.items()) + f"   (bpp/dB: {pts})")
+    for tag, r in rows.items():
+        mean = {k: statistics.mean(x[k] for x in r) for k in r[0]}
+        print(f"{'mean':10s} {tag:15s} " + "  ".join(f"{k} {v:+6.1f}%" for k, v in mean.items()))
+    return rows
 
 
 def _tiles(img, side):
@@ -69,8 +76,11 @@ def _tiles(img, side):
 
 
 def section_folder_basis():
-    print("\n== Folder basis fitted on other images of the same source, tested on held-out images")
+    print("\n== Folder basis fitted on other images of the same source (an archive's shared basis, stored once "
+          "and not counted per image), tested on held-out images; BD-rate by PSNR")
     import make_samples
+
+    from workbench import blockchoice
 
     rng = np.random.default_rng(99)
     sources = {
@@ -79,23 +89,25 @@ def section_folder_basis():
         "retina tiles (scikit-image)": _tiles(data.retina(), 352)[:16],
     }
     results = {}
+    codec = workbench.codecs.get("klt")
     for label, imgs in sources.items():
         half = len(imgs) // 2
         train, test = imgs[:half], imgs[half:]
-        s = Settings(basis_scope="folder")
-        codec = workbench.codecs.get("klt")
-        basis, raw, _ = codec.prepare_shared([pipeline.image_planes(SourceImage("t", t), s.chroma) for t in train], s)
-        ref = workbench.basisfile.basis_hash(raw)
-        bds, bds_own = [], []
-        for i, img in enumerate(test):
-            src = SourceImage(f"t{i}", img)
-            ours = pipeline.rd_points(src, s, STEPS, shared=basis, shared_ref=ref, with_ssim=False)
-            own = pipeline.rd_points(src, Settings(), STEPS, with_ssim=False)
-            bds.append(bd_against(img, ours, ("jpeg",))["jpeg"])
-            bds_own.append(bd_against(img, own, ("jpeg",))["jpeg"])
-        results[label] = statistics.mean(bds)
-        print(f"{label:28s} folder basis vs JPEG {statistics.mean(bds):+6.1f}%   "
-              f"(per-image basis vs JPEG {statistics.mean(bds_own):+6.1f}%; {half} fit / {len(test)} held out)")
+        fit = [SourceImage(f"f{i}", t) for i, t in enumerate(train)]
+        auto, _ = blockchoice.choose_block(fit, Settings(basis_scope="folder"), total=10_000)
+        for s in (Settings(basis_scope="folder"), auto):
+            basis, raw, _ = codec.prepare_shared([pipeline.image_planes(f, s.chroma) for f in fit], s)
+            ref = workbench.basisfile.basis_hash(raw)
+            bds = []
+            for i, img in enumerate(test):
+                ours = pipeline.rd_points(SourceImage(f"t{i}", img), s, STEPS, shared=basis, shared_ref=ref,
+                                          with_ssim=False)
+                bds.append(bd_against(img, ours))
+            mean = {k: statistics.mean(b[k] for b in bds) for k in bds[0]}
+            tag = f"block {s.block}" + (" (auto)" if s is auto else "")
+            results[label, tag] = mean
+            print(f"{label:28s} {tag:15s} " + "  ".join(f"{k} {v:+6.1f}%" for k, v in mean.items())
+                  + f"   ({half} fit / {len(test)} held out)")
     return results
 
 
