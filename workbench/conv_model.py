@@ -147,7 +147,7 @@ def train_step(model: Autoencoder, x: torch.Tensor, lam: float, gen: torch.Gener
 
 # ------------------------------------------------------------------ tiled inference
 
-TILE = 256
+TILE = 512  # 256 spent 2.25x the tile's work on its margins, 512 1.56x (measured 1.3x faster)
 MARGIN = 64  # beyond the receptive field's significant part: seams do not show
 
 
@@ -180,14 +180,26 @@ def _tiled(fn, x: np.ndarray, out_channels: int, tile: int, margin: int, up: int
     return out
 
 
-@torch.no_grad()
+def _channels_last(fn):
+    """``fn`` run on channels-last tensors: oneDNN's convolutions are faster in that layout
+    (4 MP with the shipped model: encode 1.32 -> 0.99 s, decode 1.90 -> 1.33 s on 2 cores);
+    use with a model converted by :func:`for_inference`."""
+    return lambda t: fn(t.contiguous(memory_format=torch.channels_last)).contiguous()
+
+
+def for_inference(model: Autoencoder) -> Autoencoder:
+    """``model`` in eval mode with its convolution weights in the channels-last layout."""
+    return model.eval().to(memory_format=torch.channels_last)
+
+
+@torch.inference_mode()
 def encode_array(model: Autoencoder, x: np.ndarray) -> np.ndarray:
     """Latents (C, H/8, W/8) of a (3, H, W) float32 image in [0, 1], padded to 8, in tiles."""
-    return _tiled(model.encoder, _pad_to(x, STRIDE), model.arch.latent, TILE, MARGIN, 1, STRIDE)
+    return _tiled(_channels_last(model.encoder), _pad_to(x, STRIDE), model.arch.latent, TILE, MARGIN, 1, STRIDE)
 
 
-@torch.no_grad()
+@torch.inference_mode()
 def decode_array(model: Autoencoder, y: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
     """(3, H, W) float32 reconstruction of latents, in tiles, cropped to ``shape``."""
-    out = _tiled(model.decoder, y, 3, TILE // STRIDE, MARGIN // STRIDE, STRIDE, 1)
+    out = _tiled(_channels_last(model.decoder), y, 3, TILE // STRIDE, MARGIN // STRIDE, STRIDE, 1)
     return out[:, : shape[0], : shape[1]]

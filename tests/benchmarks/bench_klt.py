@@ -115,34 +115,51 @@ def four_mp():
     return (resize(data.retina(), (2048, 2048), anti_aliasing=True) * 255).round().astype(np.uint8)
 
 
-def section_speed(repeats):
-    print("\n== 4-megapixel RGB (retina resized to 2048x2048): time ratios to Pillow JPEG at the same rate")
-    img = four_mp()
+def _speed_at(img, step, repeats):
+    """Median encode/decode seconds of ours at ``step`` and of Pillow JPEG at the same rate,
+    interleaved (alternating which goes first, so that drifts of this machine's speed fall on
+    both sides of each ratio); the first round warms up."""
     jpeg = baselines.get("jpeg")
-    b = workbench.compress({"x": img}, step=6.0)
+    b = workbench.compress({"x": img}, step=step)
     bpp = 8 * len(b) / img.shape[0] / img.shape[1]
     q = baselines.at_rate(jpeg, img, bpp).knob
     jb = baselines.encode(jpeg, img, q)
-    ours = (lambda: workbench.compress({"x": img}, step=6.0), lambda: workbench.decompress(b))
+    ours = (lambda: workbench.compress({"x": img}, step=step), lambda: workbench.decompress(b))
     theirs = (lambda: baselines.encode(jpeg, img, q), lambda: baselines.decode(jb))
     times = {key: [] for key in ("enc", "dec", "jenc", "jdec")}
-    # Interleaved, alternating which goes first, so that drifts of this machine's speed
-    # fall on both sides of each ratio.
     for i in range(repeats + 1):
         pairs = [(("enc", "dec"), ours), (("jenc", "jdec"), theirs)]
         for keys, fns in pairs if i % 2 else pairs[::-1]:
             for key, fn in zip(keys, fns):
                 t = time.perf_counter()
                 fn()
-                if i:  # the first round warms up
+                if i:
                     times[key].append(time.perf_counter() - t)
-    times_enc, times_dec, je, jd = times["enc"], times["dec"], times["jenc"], times["jdec"]
-    e, d, e0, d0 = map(statistics.median, (times_enc, times_dec, je, jd))
-    print(f"ours {bpp:.2f} bpp: encode {e:.3f} s, decode {d:.3f} s | JPEG q{int(q)} {8*len(jb)/img.size*3:.2f} bpp: "
-          f"encode {e0:.3f} s, decode {d0:.3f} s | ratios encode {e/e0:.1f}x, decode {d/d0:.1f}x (median of {repeats})")
-    for label, a, b in (("encode", times_enc, je), ("decode", times_dec, jd)):
-        r = sorted(x / y for x, y in zip(a, b))
-        print(f"  {label} ratio round by round: median {statistics.median(r):.1f}x, range {r[0]:.1f}-{r[-1]:.1f}x")
+    e, d, e0, d0 = (statistics.median(times[k]) for k in ("enc", "dec", "jenc", "jdec"))
+    print(f"  ours {bpp:.2f} bpp (step {step:.3g}): encode {e:.3f} s, decode {d:.3f} s | JPEG q{int(q)} "
+          f"{8 * len(jb) / img.shape[0] / img.shape[1]:.2f} bpp: encode {e0:.3f} s, decode {d0:.3f} s | "
+          f"ratios encode {e / e0:.1f}x, decode {d / d0:.1f}x (median of {repeats})")
+
+
+def four_mp_photo():
+    """4 megapixels of photographic detail at its own scale: 512 x 512 crops of scikit-image's
+    astronaut, coffee, chelsea and rocket in a 2 x 2 mosaic, repeated 2 x 2 (2048 x 2048)."""
+    crops = [getattr(data, n)()[:512, :512] for n in PHOTOS]
+    crops = [np.pad(c, ((0, 512 - c.shape[0]), (0, 512 - c.shape[1]), (0, 0)), mode="reflect") for c in crops]
+    mosaic = np.concatenate([np.concatenate(crops[:2], axis=1), np.concatenate(crops[2:], axis=1)], axis=0)
+    return np.ascontiguousarray(np.tile(mosaic, (2, 2, 1)))
+
+
+def section_speed(repeats):
+    print("\n== 4-megapixel RGB: time ratios to Pillow JPEG at the same rate")
+    print("retina resized to 2048x2048 (smooth):")
+    _speed_at(four_mp(), 6.0, repeats)
+    photo = four_mp_photo()
+    print("a mosaic of 512 px crops of the four photographs, 2048x2048, at about 0.25, 1 and 2 bpp:")
+    for rate in (0.25, 1.0, 2.0):
+        r = pipeline.encode([SourceImage("x", photo)], Settings(target=("bpp", rate))).images[0]
+        _speed_at(photo, float(np.float32(r.step)), repeats)
+    img = four_mp()
     t0 = time.perf_counter()
     for _ in range(repeats):
         workbench.metrics.ssim(img, img)

@@ -55,8 +55,9 @@ class Model:
             net.load_state_dict(state, strict=True)
         except RuntimeError as exc:
             raise BundleError(f"model weights do not fit the architecture ({str(exc).splitlines()[0]})") from None
-        net.eval()
-        self.net = net
+        from ..conv_model import for_inference
+
+        self.net = for_inference(net)
 
     @property
     def channels(self) -> int:
