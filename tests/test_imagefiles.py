@@ -281,3 +281,22 @@ def test_a_stack_decodes_to_one_png_per_page(tmp_path, camera16, capsys):
     assert cli.main(["encode", str(tmp_path / "s.tif"), "-o", str(tmp_path / "s.wbundle")]) == 0
     assert cli.main(["decode", str(tmp_path / "s.wbundle"), "-o", str(tmp_path / "out")]) == 0
     assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["s[0].png", "s[1].png"]
+
+
+def test_16bit_grey_alpha_png_of_our_own_writer_reads_in_opencv(camera16):
+    # The one layout neither Pillow nor OpenCV writes; OpenCV's reader (libpng) is the check.
+    import cv2
+
+    ga = np.dstack([camera16, camera16[::-1]])
+    back = cv2.imdecode(np.frombuffer(imagefiles.encode_png(ga), np.uint8), cv2.IMREAD_UNCHANGED)
+    assert back.dtype == np.uint16
+    grey, alpha = (back[..., 0], back[..., 3]) if back.ndim == 3 and back.shape[2] == 4 else (back[..., 0], back[..., 1])
+    assert np.array_equal(grey, camera16) and np.array_equal(alpha, camera16[::-1])
+
+
+def test_16bit_rgba_png_is_written_by_opencv_in_rgb_order(camera16):
+    import cv2
+
+    rgba = np.dstack([camera16, camera16[::-1], camera16[:, ::-1], camera16.T[:camera16.shape[0], :camera16.shape[1]]])
+    back = cv2.imdecode(np.frombuffer(imagefiles.encode_png(rgba), np.uint8), cv2.IMREAD_UNCHANGED)
+    assert np.array_equal(cv2.cvtColor(back, cv2.COLOR_BGRA2RGBA), rgba)

@@ -335,7 +335,12 @@ def _process_alive(pid: int) -> bool:
 
 
 def encode_png(pixels: np.ndarray) -> bytes:
-    """PNG bytes of (H, W[, C]) uint8/uint16 pixels, C in 1..4 (grey, grey+alpha, RGB, RGBA)."""
+    """PNG bytes of (H, W[, C]) uint8/uint16 pixels, C in 1..4 (grey, grey+alpha, RGB, RGBA).
+
+    8-bit images go through Pillow, 16-bit grey, RGB and RGBA through OpenCV. Neither writes
+    16-bit grey + alpha (PNG colour type 4 at depth 16), so that one layout is written here:
+    one IDAT of unfiltered rows (PNG specification, ISO/IEC 15948).
+    """
     a = np.asarray(pixels)
     if a.ndim == 2:
         a = a[..., None]
@@ -345,6 +350,15 @@ def encode_png(pixels: np.ndarray) -> bytes:
         buf = io.BytesIO()
         Image.fromarray(a[..., 0] if a.shape[2] == 1 else a).save(buf, format="PNG")
         return buf.getvalue()
+    if a.dtype == np.uint16 and a.shape[2] != 2:
+        import cv2
+
+        bgr = a[..., 0] if a.shape[2] == 1 else cv2.cvtColor(a, cv2.COLOR_RGB2BGR if a.shape[2] == 3
+                                                             else cv2.COLOR_RGBA2BGRA)
+        ok, buf = cv2.imencode(".png", np.ascontiguousarray(bgr), [cv2.IMWRITE_PNG_COMPRESSION, 6])
+        if not ok:
+            raise InputError(f"OpenCV could not write a {a.shape} 16-bit PNG")
+        return buf.tobytes()
     h, w, c = a.shape
     colour_type = {1: 0, 2: 4, 3: 2, 4: 6}[c]
     depth = 16 if a.dtype == np.uint16 else 8
