@@ -15,7 +15,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from workbench import container
+from workbench.formats import container
 from workbench.errors import WorkbenchError
 
 HOSTILE = [0, -1, 1, 2, 7, 8.0, 0.5, -0.0, 1e308, -1e308, 2**31, 2**63, 10**30, 65536, 65537, 1 << 27,

@@ -15,7 +15,7 @@ import pytest
 from PIL import Image
 
 from workbench import archive, cli, pipeline
-from workbench.imagefiles import read_image
+from workbench.formats.imagefiles import read_image
 
 
 @pytest.fixture(scope="module")

@@ -7,7 +7,7 @@ import pytest
 from PIL import Image
 from skimage.metrics import peak_signal_noise_ratio
 
-from workbench import baselines
+from workbench.quality import baselines
 
 
 @pytest.mark.parametrize("name", ["jpeg", "jpeg2000", "webp", "avif"])

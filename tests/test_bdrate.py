@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from workbench.bdrate import bd_rate
+from workbench.quality.bdrate import bd_rate
 from workbench.errors import InputError
 
 RATES = np.array([0.25, 0.5, 1.0, 2.0])

@@ -5,8 +5,10 @@ import numpy as np
 import pytest
 from skimage import data
 
-from workbench import bdrate, blockchoice, bundle, cli, pipeline
-from workbench.imagefiles import SourceImage
+from workbench import blockchoice, cli, pipeline
+from workbench.quality import bdrate
+from workbench.formats import bundle
+from workbench.formats.imagefiles import SourceImage
 from workbench.settings import Settings
 
 STEPS = (3.0, 4.5, 6.5, 9.0, 13.0, 18.0)

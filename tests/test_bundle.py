@@ -7,9 +7,10 @@ import numpy as np
 import pytest
 
 import workbench
-from workbench import bundle, container, pipeline
+from workbench import pipeline
+from workbench.formats import bundle, container
 from workbench.errors import BundleError
-from workbench.imagefiles import SourceImage
+from workbench.formats.imagefiles import SourceImage
 from workbench.settings import Settings
 
 

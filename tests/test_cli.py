@@ -9,7 +9,7 @@ import pytest
 from PIL import Image
 
 from workbench import cli
-from workbench.imagefiles import encode_png, read_image
+from workbench.formats.imagefiles import encode_png, read_image
 
 
 @pytest.fixture()

@@ -11,7 +11,7 @@ from skimage.metrics import peak_signal_noise_ratio
 
 import plaincodec
 from workbench import cli, codecs, pipeline
-from workbench.imagefiles import SourceImage, read_image
+from workbench.formats.imagefiles import SourceImage, read_image
 from workbench.settings import Settings
 
 

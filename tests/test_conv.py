@@ -8,10 +8,11 @@ torch = pytest.importorskip("torch")
 import workbench  # noqa: E402
 import workbench.codecs  # noqa: E402
 import workbench.coefcode  # noqa: E402
-from workbench import conv_model, container, modelfile, pipeline, tiling, klt  # noqa: E402
+from workbench import conv_model, pipeline, tiling, klt
+from workbench.formats import container, modelfile  # noqa: E402
 from workbench.codecs import get  # noqa: E402
 from workbench.errors import BundleError  # noqa: E402
-from workbench.imagefiles import SourceImage  # noqa: E402
+from workbench.formats.imagefiles import SourceImage  # noqa: E402
 from workbench.jobs import run  # noqa: E402
 from workbench.settings import Settings  # noqa: E402
 from workbench.training import TrainConfig, train_job  # noqa: E402

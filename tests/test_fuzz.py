@@ -6,7 +6,8 @@ import pytest
 from skimage import data
 
 import workbench
-from workbench import basisfile, bundle, codecs, klt, modelfile, pipeline, tiling
+from workbench import codecs, klt, pipeline, tiling
+from workbench.formats import basisfile, bundle, modelfile
 
 import fuzzing
 
@@ -53,7 +54,7 @@ def test_conv_bundle_and_model_file_mutants_give_only_our_error():
 def test_a_model_file_with_a_malformed_architecture_is_refused(arch):
     # found by the long fuzzer run (bench_fuzz.py): these reached torch's constructors
     pytest.importorskip("torch")
-    from workbench import container
+    from workbench.formats import container
     from workbench.errors import BundleError
 
     model, _ = codecs.get("conv").default_model()
@@ -69,7 +70,7 @@ def _model_with(edit_weights=None, edit_meta=None):
     """The shipped model file rebuilt with edited weights or metadata, CRCs valid."""
     from safetensors.numpy import load, save
 
-    from workbench import container
+    from workbench.formats import container
 
     model, _ = codecs.get("conv").default_model()
     chunks = dict(container.unpack(model.data.raw, modelfile.MAGIC, (modelfile.VERSION,), "m"))
@@ -119,7 +120,7 @@ def test_hostile_model_files_are_refused_with_our_error(edit, why):
 
 def test_a_hostile_model_embedded_in_a_bundle_is_refused_on_decode():
     pytest.importorskip("torch")
-    from workbench import container
+    from workbench.formats import container
     from workbench.errors import BundleError
 
     model, ref = codecs.get("conv").default_model()

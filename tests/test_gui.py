@@ -9,7 +9,7 @@ from PySide6.QtCore import QSettings, Qt  # noqa: E402
 
 from workbench import cli, pipeline, preview  # noqa: E402
 from workbench.gui.window import MainWindow  # noqa: E402
-from workbench.imagefiles import read_image  # noqa: E402
+from workbench.formats.imagefiles import read_image  # noqa: E402
 from workbench.settings import Settings  # noqa: E402
 
 
@@ -202,7 +202,7 @@ def test_on_a_large_image_a_sketch_shows_first_and_the_exact_view_replaces_it(qt
 
 
 def test_conv_readouts_come_from_the_helper_process_and_equal_the_core(qtbot, window, tmp_path, chelsea):
-    # The conv encoder runs in a helper process (workbench.remote); its numbers must still
+    # The conv encoder runs in a helper process (workbench.gui.remote); its numbers must still
     # be the core's own for the same settings (shipped model, scikit-image's "chelsea").
     d = _open_with_conv(qtbot, window, tmp_path, chelsea[:96, :128])
     s = window.panel.settings()
@@ -321,7 +321,7 @@ def test_a_real_slider_drag_gives_readouts_that_match_the_saved_file(qtbot, wind
 def test_measurements_follow_the_shown_reconstruction_and_mark_the_spots(qtbot, window, tmp_path):
     from skimage import data
 
-    from workbench import measures
+    from workbench.quality import measures
 
     d = tmp_path / "frames"
     d.mkdir()

@@ -13,10 +13,11 @@ import pytest
 from PIL import Image
 
 import workbench
-from workbench import bundle, cli, container, pipeline
+from workbench import cli, pipeline
+from workbench.formats import bundle, container
 from workbench.errors import BundleError, InputError
-from workbench.imagefiles import SourceImage
-from workbench.names import bundle_names, output_paths
+from workbench.formats.imagefiles import SourceImage
+from workbench.formats.names import bundle_names, output_paths
 from workbench.settings import Settings
 
 
@@ -151,7 +152,7 @@ def test_decode_of_same_named_files_from_two_folders_writes_both(tmp_path, capsy
 def test_decode_that_fails_midway_leaves_the_output_folder_untouched(tmp_path, monkeypatch, capsys):
     from skimage import data
 
-    from workbench import imagefiles
+    from workbench.formats import imagefiles
 
     for i in range(3):
         Image.fromarray(data.camera()[64 * i: 64 * i + 64, :64]).save(tmp_path / f"{i}.png")

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from workbench import imagefiles
+from workbench.formats import imagefiles
 from workbench.errors import InputError
 
 

@@ -109,9 +109,10 @@ def test_dropping_sparse_trailing_components_gives_a_better_rate_distortion_curv
     # keeping every component with a non-zero coefficient (scikit-image's bundled images).
     from skimage import data
 
-    from workbench import bdrate, pipeline
+    from workbench import pipeline
+    from workbench.quality import bdrate
     from workbench.codecs import klt as klt_codec
-    from workbench.imagefiles import SourceImage
+    from workbench.formats.imagefiles import SourceImage
     from workbench.settings import Settings
 
     img = SourceImage(name, getattr(data, name)())
@@ -128,8 +129,9 @@ def test_a_per_image_basis_with_more_dimensions_than_patches_stays_affordable(as
     # 32 x 32 patches of scikit-image's "astronaut": 384 patches for 1024 dimensions. Past
     # the patch count the eigenvalues are rounding noise; storing those vectors once made
     # the bundle 14 bits per pixel. Loose reference: Pillow's JPEG at equal PSNR (VCEG-M33).
-    from workbench import baselines, bdrate, pipeline
-    from workbench.imagefiles import SourceImage
+    from workbench import pipeline
+    from workbench.quality import baselines, bdrate
+    from workbench.formats.imagefiles import SourceImage
     from workbench.settings import Settings
 
     img = SourceImage("astronaut", astronaut)
@@ -157,9 +159,10 @@ def test_rdo_levels_only_move_levels_towards_zero_and_leave_the_first_component(
 
 def test_rdoq_saves_bits_at_equal_psnr_against_plain_rounding(monkeypatch, astronaut):
     # scikit-image's 'astronaut' (a quarter); BD-rate after Bjøntegaard (VCEG-M33)
-    from workbench import bdrate, pipeline
+    from workbench import pipeline
+    from workbench.quality import bdrate
     from workbench.codecs import klt as codec_klt
-    from workbench.imagefiles import SourceImage
+    from workbench.formats.imagefiles import SourceImage
     from workbench.settings import Settings
 
     img = SourceImage("a", astronaut[:256, :256])

@@ -9,7 +9,7 @@ import pytest
 
 PKG = Path(__file__).resolve().parents[1] / "workbench"
 TORCH_ALLOWED = {"codecs/conv.py", "conv_model.py", "training.py", "models/make_default.py"}
-FORMATS = {"container.py", "bundle.py", "basisfile.py", "modelfile.py"}
+FORMATS = {"formats/container.py", "formats/bundle.py", "formats/basisfile.py", "formats/modelfile.py"}
 FRONT_ENDS = {"cli.py"}  # the command line starts the app (``workbench gui``); it is not the core
 
 
@@ -102,16 +102,16 @@ def test_the_import_graph_has_no_circle():
 
 LAYERS = [  # lowest first; the same table as DEVELOPERS.md's architecture screen
     {"settings", "codecs", "errors", "color", "display", "notices", "version", "runtime"},
-    {"container", "bundle", "basisfile", "modelfile", "imagefiles", "names"},
+    {"formats"},
     {"codecs.base", "codecs.klt", "codecs.conv", "klt", "tiling", "coefcode", "conv_model"},
-    {"metrics", "measures", "bdrate", "baselines"},
-    {"pipeline", "blockchoice", "preview", "sheet", "sheetpdf", "archive", "training", "session", "remote",
-     "coderproc", "jobs", "demo", "models.make_default"},
+    {"quality"},
+    {"pipeline", "blockchoice", "preview", "sheet", "sheetpdf", "archive", "training", "session", "jobs", "demo",
+     "models.make_default"},
     {"cli", "cliargs", "cli_extra", "cli_archive", "api", "__main__", "gui"},
 ]
 # File formats that read a codec part's data type: the basis file holds a klt.Basis, the model
 # file validates entropy tables against the coefficient coder's alphabet.
-EXCEPTIONS = {("basisfile", "klt"), ("modelfile", "coefcode")}
+EXCEPTIONS = {("formats.basisfile", "klt"), ("formats.modelfile", "coefcode")}
 
 
 def _layer(module: str) -> int:

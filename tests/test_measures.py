@@ -6,9 +6,10 @@ import pytest
 from skimage import data, feature, filters, measure
 
 import workbench
-from workbench import measures, pipeline
+from workbench import pipeline
+from workbench.quality import measures
 from workbench.errors import InputError
-from workbench.imagefiles import SourceImage
+from workbench.formats.imagefiles import SourceImage
 from workbench.settings import Settings
 
 

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from skimage.metrics import peak_signal_noise_ratio, structural_similarity
 
-from workbench import metrics
+from workbench.quality import metrics
 from workbench.errors import InputError
 
 

@@ -7,7 +7,7 @@ from skimage.transform import downscale_local_mean
 from workbench import jobs, pipeline
 from workbench import preview as previews
 from workbench.errors import InputError
-from workbench.imagefiles import SourceImage
+from workbench.formats.imagefiles import SourceImage
 from workbench.settings import Settings
 
 
@@ -88,7 +88,7 @@ def test_a_job_in_a_child_process_stops_when_cancelled(camera):
 
 
 def test_the_helper_process_counts_the_same_bytes_as_the_coder(preview, camera):
-    from workbench.coderproc import CoderProcess
+    from workbench.gui.coderproc import CoderProcess
 
     coder = CoderProcess()
     try:

@@ -19,7 +19,7 @@ from skimage import data
 from skimage.metrics import peak_signal_noise_ratio
 
 import workbench
-from workbench.bdrate import bd_rate
+from workbench.quality.bdrate import bd_rate
 
 PHOTOS = ["astronaut", "coffee", "chelsea", "rocket"]
 JPEG_QUALITIES = (30, 45, 60, 72, 82, 90, 95)

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 
 from workbench import pipeline
-from workbench.imagefiles import SourceImage
+from workbench.formats.imagefiles import SourceImage
 from workbench.settings import Settings
 
 

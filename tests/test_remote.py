@@ -8,8 +8,8 @@ import pytest
 
 from workbench import codecs, pipeline, preview
 from workbench.errors import InputError
-from workbench.imagefiles import SourceImage
-from workbench.remote import PreviewProcess
+from workbench.formats.imagefiles import SourceImage
+from workbench.gui.remote import PreviewProcess
 from workbench.settings import Settings
 
 

@@ -1,6 +1,6 @@
 """The app's state without Qt (session.py): what the window draws, driven directly."""
 
-from workbench.imagefiles import SourceImage
+from workbench.formats.imagefiles import SourceImage
 from workbench.session import PREVIEW_CACHE, Session
 from workbench.settings import Settings
 

@@ -10,7 +10,7 @@ from PIL import Image
 from skimage.metrics import peak_signal_noise_ratio, structural_similarity
 
 from workbench import cli, pipeline
-from workbench.imagefiles import read_image
+from workbench.formats.imagefiles import read_image
 
 
 @pytest.fixture(scope="module")
@@ -177,7 +177,7 @@ def test_ctrl_c_ends_a_sheet_with_one_line_no_outputs_and_no_children(tmp_path, 
 def test_measurements_give_csv_columns_and_a_safe_point_that_really_passes(tmp_path):
     from skimage import data
 
-    from workbench import measures
+    from workbench.quality import measures
 
     src = tmp_path / "src"
     src.mkdir()
@@ -201,7 +201,7 @@ def test_measurements_give_csv_columns_and_a_safe_point_that_really_passes(tmp_p
 
 def test_sheet_progress_rises_steadily_and_is_mostly_the_curves(tmp_path, camera, astronaut):
     from workbench import jobs
-    from workbench.imagefiles import SourceImage
+    from workbench.formats.imagefiles import SourceImage
     from workbench.settings import Settings
     from workbench.sheet import sheet_job
 

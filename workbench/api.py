@@ -6,7 +6,7 @@ import numpy as np
 
 from . import pipeline
 from .errors import InputError
-from .imagefiles import SourceImage
+from .formats.imagefiles import SourceImage
 from .klt import Basis
 from .settings import Settings
 
@@ -38,7 +38,7 @@ def compress(images, method: str = "klt", *, basis: Basis | None = None, basis_r
     method : str
         A registered method (:func:`workbench.codecs.names`).
     basis : Basis, optional
-        External folder basis (see :func:`workbench.basisfile.load_basis`); the bundle
+        External folder basis (see :func:`workbench.formats.basisfile.load_basis`); the bundle
         refers to it by ``basis_ref`` instead of carrying it.
     **settings
         Fields of :class:`workbench.Settings` (``block``, ``count``, ``step``, ``chroma``,

@@ -30,7 +30,7 @@ from pathlib import Path
 from .version import __version__
 from .errors import BundleError, InputError, WorkbenchError
 from .jobs import Progress
-from .names import IMAGE_SUFFIXES
+from .formats.names import IMAGE_SUFFIXES
 from .settings import Settings
 
 RECIPE_KIND = "workbench-recipe"
@@ -123,7 +123,7 @@ def file_sha256(path: Path) -> str:
 def encode_one(src_root: str, rel: str, dst_root: str, recipe: dict) -> dict:
     """Encode one source file into its bundle; returns its manifest row (never raises for bad input)."""
     from . import pipeline
-    from .imagefiles import read_many, write_atomic
+    from .formats.imagefiles import read_many, write_atomic
 
     _one_core()
     t0 = time.perf_counter()
@@ -221,7 +221,7 @@ def _up_to_date(dst: Path, src: Path, rel: str, row: dict | None) -> bool:
 
 def store_shared(dst: Path, kind: str, data: bytes, sha: str) -> None:
     """Copy a basis or model into ``DST/shared`` once, under its hash."""
-    from .imagefiles import write_atomic
+    from .formats.imagefiles import write_atomic
 
     path = dst / SHARED / f"{sha}.{SUFFIXES[kind]}"
     if not path.exists():
@@ -367,9 +367,10 @@ def restore_job(dst, out, *, verify: bool = False, force: bool = False):
     exist are kept (a rerun completes what is missing) unless ``force``. With ``verify``, each
     bundle's decoded pixels are re-measured against its source where it still exists, and
     compared with the manifest. Returns ``{"restored", "kept", "verified", "mismatches"}``."""
-    from . import metrics, pipeline
-    from .imagefiles import encode_png, read_many, write_all_atomic
-    from .names import output_paths
+    from . import pipeline
+    from .quality import metrics
+    from .formats.imagefiles import encode_png, read_many, write_all_atomic
+    from .formats.names import output_paths
 
     dst, out = Path(dst), (None if out is None else Path(out))
     db = _read_only(dst)

@@ -22,7 +22,7 @@ import numpy as np
 from . import codecs
 from .codecs.klt import RD_LAMBDA
 from .errors import InputError
-from .imagefiles import SourceImage
+from .formats.imagefiles import SourceImage
 from .pipeline import image_planes, plane_quality, search_step
 from .settings import BLOCK_SIZES, Settings
 

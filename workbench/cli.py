@@ -20,7 +20,7 @@ from .version import __version__
 
 def cmd_encode(a) -> int:
     from . import pipeline
-    from .imagefiles import list_inputs, write_atomic
+    from .formats.imagefiles import list_inputs, write_atomic
     from .jobs import run
 
     settings = settings_from_args(a)
@@ -55,10 +55,10 @@ def cmd_encode(a) -> int:
 
 def cmd_decode(a) -> int:
     from . import pipeline
-    from .imagefiles import encode_png, write_all_atomic
-    from .names import output_paths
+    from .formats.imagefiles import encode_png, write_all_atomic
+    from .formats.names import output_paths
 
-    from . import bundle
+    from .formats import bundle
 
     data = _read_bundle(a.bundle)
     shared, ref = _shared_from_args(a, bundle.parse(data, max_pixels=a.max_pixels).settings.method)
@@ -85,7 +85,7 @@ def _read_bundle(path) -> bytes:
 
 
 def cmd_info(a) -> int:
-    from . import bundle
+    from .formats import bundle
 
     c = bundle.parse(_read_bundle(a.bundle), max_pixels=a.max_pixels)
     info = {"bundle": str(a.bundle), "bytes": c.size, "tool": c.meta.get("tool"), "settings": c.settings.own(),
@@ -110,9 +110,9 @@ def cmd_info(a) -> int:
 
 def cmd_fit_basis(a) -> int:
     from . import pipeline
-    from .basisfile import save_basis
+    from .formats.basisfile import save_basis
     from .codecs.klt import CODEC
-    from .imagefiles import list_inputs
+    from .formats.imagefiles import list_inputs
 
     images, _ = _read_inputs(a.inputs)
     if not images:

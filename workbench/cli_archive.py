@@ -37,7 +37,7 @@ def _batch(sub):
 
 def _recipe_from_args(a, dst: Path) -> dict:
     from . import archive
-    from .basisfile import basis_file_bytes, basis_to_bytes, basis_hash
+    from .formats.basisfile import basis_file_bytes, basis_to_bytes, basis_hash
 
     if a.recipe:
         recipe = archive.read_recipe(a.recipe)
@@ -87,7 +87,7 @@ def _sampled(src, n: int):
     import numpy as np
 
     from . import archive
-    from .imagefiles import read_many
+    from .formats.imagefiles import read_many
 
     files = archive.sources(Path(src))
     if not files:
@@ -113,7 +113,7 @@ def _print_summary(s: dict, as_json: bool) -> None:
 
 def cmd_batch(a) -> int:
     from . import archive
-    from .imagefiles import write_atomic
+    from .formats.imagefiles import write_atomic
     from .jobs import run
 
     if a.report:

@@ -24,7 +24,7 @@ def _sheet(sub):
 
 
 def cmd_sheet(a) -> int:
-    from .imagefiles import list_inputs
+    from .formats.imagefiles import list_inputs
     from .jobs import run
     from .sheet import sheet_job
 
@@ -86,7 +86,7 @@ def _train(sub):
 
 
 def cmd_train(a) -> int:
-    from .imagefiles import list_inputs
+    from .formats.imagefiles import list_inputs
     from .jobs import run
     from .training import TrainConfig, train_job
 

@@ -75,7 +75,7 @@ def resolve_block(a, settings: Settings, images, total: int | None = None) -> Se
 
 def measures_from_args(a):
     """The measurements asked for, or None; --target-measures without --measure is an error."""
-    from . import measures
+    from .quality import measures
 
     chosen = measures.parse(a.measure, a.tolerance) if a.measure else None
     if a.target_measures and not chosen:
@@ -86,7 +86,7 @@ def measures_from_args(a):
 
 
 def _add_budget_option(p: argparse.ArgumentParser) -> None:
-    from .bundle import MAX_PIXELS
+    from .formats.bundle import MAX_PIXELS
 
     p.add_argument("--max-pixels", type=int, default=MAX_PIXELS, metavar="N",
                    help=f"refuse bundles declaring more than N pixels in all (default {MAX_PIXELS:,}: "
@@ -118,7 +118,7 @@ def _shared_from_args(a, method: str | None = None):
 
 
 def _read_inputs(inputs):
-    from .imagefiles import read_many
+    from .formats.imagefiles import read_many
 
     images, skipped = read_many(inputs)
     for name, why in skipped:

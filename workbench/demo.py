@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 from scipy import ndimage
 
-from .imagefiles import encode_png, write_atomic
+from .formats.imagefiles import encode_png, write_atomic
 
 SEED = 20261201
 

@@ -12,11 +12,13 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import bundle, codecs, color, metrics
+from . import codecs, color
+from .formats import bundle
+from .quality import metrics
 from .version import __version__
-from . import measures as measures_mod
+from .quality import measures as measures_mod
 from .errors import BundleError, InputError
-from .imagefiles import SourceImage
+from .formats.imagefiles import SourceImage
 from .jobs import Progress, run
 from .settings import Settings
 
@@ -270,7 +272,7 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
         bundle then refers to it by ``shared_ref`` (its content hash) instead of carrying it.
     max_pixels : int
         The decoder's pixel budget: a bundle it would refuse is refused here, before any work.
-    measures : list of workbench.measures.Measure, optional
+    measures : list of workbench.quality.measures.Measure, optional
         Run on each original and its reconstruction; the outcome is in each result.
     target_measures : bool
         Search each image's step for the coarsest at which every measurement's checks hold
@@ -349,7 +351,7 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
             if metrics.ssim_applies(img.height, img.width):
                 s = metrics.ssim(img.pixels, rec, data_range=img.peak)
         if 8 * len(payload) >= LOSSLESS_CHECK_BPP * img.width * img.height:
-            from .imagefiles import encode_png
+            from .formats.imagefiles import encode_png
 
             png = len(encode_png(img.full()))
             if len(payload) >= png:
@@ -477,7 +479,7 @@ def rd_points(img: SourceImage, settings: Settings, steps=None, *, shared=None, 
 
     The transform is fitted once; each step is quantised, entropy-coded and laid out as a
     complete bundle whose length is the rate. With ``measure_ref`` (a
-    :class:`workbench.measures.Reference` of this image) each point also says what the
+    :class:`workbench.quality.measures.Reference` of this image) each point also says what the
     measurements found in its reconstruction; with ``measure_until_failure`` the steps are
     measured from the finest on and the rest are left unmeasured after the first that fails
     (all a safe operating point needs).

@@ -8,9 +8,10 @@ from dataclasses import dataclass
 import cv2
 import numpy as np
 
-from . import codecs, metrics
+from . import codecs
+from .quality import metrics
 from .errors import InputError
-from .imagefiles import SourceImage
+from .formats.imagefiles import SourceImage
 from .pipeline import ImageResult, _overhead_bytes, image_planes, planes_to_pixels
 from .settings import Settings
 
@@ -129,7 +130,7 @@ class ImagePreview:
     def evaluate(self, settings: Settings, coder=None):
         """``(coded, pixels, Numbers)`` at ``settings``: :meth:`reconstruct` and the
         read-outs. The entropy coder runs beside the synthesis and SSIM: in ``coder`` (a
-        :class:`workbench.coderproc.CoderProcess`) when given and the codec allows, else in
+        :class:`workbench.gui.coderproc.CoderProcess`) when given and the codec allows, else in
         a thread (where it competes for the GIL)."""
         from concurrent.futures import ThreadPoolExecutor
 

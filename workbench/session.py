@@ -12,7 +12,7 @@ from collections import OrderedDict
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from .imagefiles import SourceImage
+from .formats.imagefiles import SourceImage
 from .settings import Settings
 
 PREVIEW_CACHE = 3  # fitted images kept: each holds its analysis (patches or latents)

@@ -4,7 +4,7 @@
 ``sheet.pdf``, ``sheet.csv`` and ``sheet.json``. Every per-image number is measured on
 the pixels decoded back from the saved bundle, never estimated. Rate–distortion curves
 give one point per setting, each the size of a real file (ours: a one-image bundle;
-baselines: the file Pillow wrote), and BD-rates follow VCEG-M33 (:mod:`workbench.bdrate`).
+baselines: the file Pillow wrote), and BD-rates follow VCEG-M33 (:mod:`workbench.quality.bdrate`).
 """
 
 from __future__ import annotations
@@ -21,11 +21,12 @@ from pathlib import Path
 
 import numpy as np
 
-from . import archive, baselines, bdrate, jobs, metrics, pipeline, sheetpdf
+from . import archive, jobs, pipeline, sheetpdf
+from .quality import baselines, bdrate, metrics
 from .version import __version__
-from . import measures as _measures
+from .quality import measures as _measures
 from .errors import InputError
-from .imagefiles import SourceImage, write_all_atomic
+from .formats.imagefiles import SourceImage, write_all_atomic
 from .jobs import Progress
 from .notices import CAUTION
 from .settings import Settings
@@ -224,7 +225,7 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
               protect=None, skipped=(), measures: tuple[str, list[str]] | None = None, target_measures: bool = False):
     """Generator job writing the bundle and the sheet into ``outdir``; returns the sheet dict.
 
-    ``measures`` is the text of the measurements and tolerances (:func:`workbench.measures.parse`):
+    ``measures`` is the text of the measurements and tolerances (:func:`workbench.quality.measures.parse`):
     run on every original and reconstruction of the curves, giving each image's safe point;
     with ``target_measures`` each image's step is searched for it.
     """

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import io
 
-from . import baselines
+from .quality import baselines
 from .notices import CAUTION
 
 # Ours in the app's amber, drawn thick; the standard codecs in muted tones of the app's dark
@@ -188,7 +188,7 @@ def _label_small(ax, title: str, legend: bool) -> None:
 
 
 def _measure_pages(pdf, sheet, rows, pages) -> int:
-    from .measures import Check
+    from .quality.measures import Check
 
     safe = sheet["safe_point"]
     checks = [(d["measure"], Check(d["key"], d["limit"], d["kind"], d["ideal"])) for d in safe["limits"]]

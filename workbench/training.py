@@ -18,7 +18,7 @@ import numpy as np
 
 from . import pipeline
 from .errors import InputError
-from .imagefiles import SourceImage, write_atomic
+from .formats.imagefiles import SourceImage, write_atomic
 from .jobs import Progress
 
 CROP = 96
@@ -84,7 +84,7 @@ def _state_path(out: Path) -> Path:
 def save_checkpoint(net, opt, out: Path, info: dict) -> str:
     from safetensors.numpy import save
 
-    from .modelfile import model_bytes
+    from .formats.modelfile import model_bytes
 
     weights = {k: v.detach().numpy() for k, v in net.state_dict().items()}
     data = model_bytes(net.arch.to_dict(), weights, net.log_scale.detach().numpy(), info)
@@ -96,7 +96,7 @@ def save_checkpoint(net, opt, out: Path, info: dict) -> str:
                 flat[f"{i}.{k}"] = np.ascontiguousarray(v.detach().numpy().astype(np.float32))
     flat["_step"] = np.array([info.get("steps", 0)], np.float32)
     write_atomic(_state_path(out), save(flat))
-    from .modelfile import parse_model
+    from .formats.modelfile import parse_model
 
     return parse_model(data).sha256
 
@@ -107,7 +107,7 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
 
     from . import conv_model
     from .codecs.conv import Model
-    from .modelfile import read_model
+    from .formats.modelfile import read_model
 
     if not images:
         raise InputError("no readable images to train on")

@@ -25,7 +25,7 @@ import numpy as np  # noqa: E402
 
 from workbench import archive, jobs  # noqa: E402
 from workbench.demo import aerial, fabric  # noqa: E402
-from workbench.imagefiles import encode_png, write_atomic  # noqa: E402
+from workbench.formats.imagefiles import encode_png, write_atomic  # noqa: E402
 from workbench.settings import Settings  # noqa: E402
 
 

@@ -24,7 +24,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 import bench_klt  # noqa: E402
 from workbench import pipeline  # noqa: E402
 from workbench.codecs import get  # noqa: E402
-from workbench.imagefiles import SourceImage  # noqa: E402
+from workbench.formats.imagefiles import SourceImage  # noqa: E402
 from workbench.jobs import run  # noqa: E402
 from workbench.settings import Settings  # noqa: E402
 
@@ -69,7 +69,7 @@ def section_trained(minutes):
         s = Settings(basis_scope="folder")
         codec = get("klt")
         basis, raw, _ = codec.prepare_shared([pipeline.image_planes(SourceImage("t", a), "420") for a in train], s)
-        from workbench.basisfile import basis_hash
+        from workbench.formats.basisfile import basis_hash
 
         conv_bd, klt_bd, conv_vs_klt = [], [], []
         for i, a in enumerate(test):
@@ -78,7 +78,7 @@ def section_trained(minutes):
             k = pipeline.rd_points(src, s, bench_klt.STEPS, shared=basis, shared_ref=basis_hash(raw), with_ssim=False)
             conv_bd.append(bd_jpeg(a, c))
             klt_bd.append(bd_jpeg(a, k))
-            from workbench import bdrate
+            from workbench.quality import bdrate
 
             try:
                 conv_vs_klt.append(bdrate.bd_rate([p.bpp for p in k], [p.psnr for p in k],

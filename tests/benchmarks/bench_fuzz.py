@@ -25,7 +25,8 @@ from skimage import data  # noqa: E402
 
 import fuzzing  # noqa: E402
 import workbench  # noqa: E402
-from workbench import basisfile, bundle, codecs, klt, modelfile, pipeline, tiling  # noqa: E402
+from workbench import codecs, klt, pipeline, tiling
+from workbench.formats import basisfile, bundle, modelfile  # noqa: E402
 
 
 def peak_mib() -> float:

@@ -30,7 +30,7 @@ sys.path.insert(0, str(ROOT / "tests"))
 
 from test_sheet import _group_members  # noqa: E402
 
-from workbench import bundle  # noqa: E402
+from workbench.formats import bundle  # noqa: E402
 from workbench.errors import WorkbenchError  # noqa: E402
 
 

@@ -25,11 +25,12 @@ sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "sample_images"))
 
 import workbench  # noqa: E402
-import workbench.basisfile  # noqa: E402
+import workbench.formats.basisfile  # noqa: E402
 import workbench.codecs  # noqa: E402
-import workbench.metrics  # noqa: E402
-from workbench import baselines, bdrate, pipeline  # noqa: E402
-from workbench.imagefiles import SourceImage  # noqa: E402
+import workbench.quality.metrics  # noqa: E402
+from workbench import pipeline
+from workbench.quality import baselines, bdrate  # noqa: E402
+from workbench.formats.imagefiles import SourceImage  # noqa: E402
 from workbench.settings import Settings  # noqa: E402
 
 PHOTOS = ["astronaut", "coffee", "chelsea", "rocket"]
@@ -97,7 +98,7 @@ def section_folder_basis():
         auto, _ = blockchoice.choose_block(fit, Settings(basis_scope="folder"), total=10_000)
         for s in (Settings(basis_scope="folder"), auto):
             basis, raw, _ = codec.prepare_shared([pipeline.image_planes(f, s.chroma) for f in fit], s)
-            ref = workbench.basisfile.basis_hash(raw)
+            ref = workbench.formats.basisfile.basis_hash(raw)
             bds = []
             for i, img in enumerate(test):
                 ours = pipeline.rd_points(SourceImage(f"t{i}", img), s, STEPS, shared=basis, shared_ref=ref,
@@ -162,7 +163,7 @@ def section_speed(repeats):
     img = four_mp()
     t0 = time.perf_counter()
     for _ in range(repeats):
-        workbench.metrics.ssim(img, img)
+        workbench.quality.metrics.ssim(img, img)
     print(f"SSIM of a 4-MP RGB image: {(time.perf_counter() - t0) / repeats * 1000:.0f} ms (mean of {repeats})")
 
 

@@ -23,8 +23,9 @@ sys.path.insert(0, str(ROOT))
 import numpy as np  # noqa: E402
 from skimage.transform import resize  # noqa: E402
 
-from workbench import demo, jobs, measures, pipeline, preview  # noqa: E402
-from workbench.imagefiles import SourceImage  # noqa: E402
+from workbench import demo, jobs, pipeline, preview
+from workbench.quality import measures  # noqa: E402
+from workbench.formats.imagefiles import SourceImage  # noqa: E402
 from workbench.settings import Settings  # noqa: E402
 from workbench.sheet import sheet_job  # noqa: E402
 

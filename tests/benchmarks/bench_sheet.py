@@ -20,7 +20,7 @@ sys.path.insert(0, str(ROOT / "sample_images"))
 import make_samples  # noqa: E402
 
 from workbench import Settings  # noqa: E402
-from workbench.imagefiles import SourceImage  # noqa: E402
+from workbench.formats.imagefiles import SourceImage  # noqa: E402
 from workbench.jobs import run  # noqa: E402
 from workbench.sheet import sheet_job  # noqa: E402
 

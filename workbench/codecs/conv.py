@@ -29,7 +29,7 @@ import numpy as np
 
 from .. import coefcode
 from ..errors import BundleError, InputError
-from ..modelfile import ModelData, parse_model, read_model
+from ..formats.modelfile import ModelData, parse_model, read_model
 from .base import CodecBase
 
 DEFAULT_MODEL = Path(__file__).resolve().parents[1] / "models" / "default.wmodel"

@@ -21,7 +21,7 @@ import cv2
 import numpy as np
 
 from .. import coefcode, klt, tiling
-from ..basisfile import basis_from_bytes, basis_to_bytes
+from ..formats.basisfile import basis_from_bytes, basis_to_bytes
 from ..errors import BundleError
 from .base import CodecBase
 
@@ -251,7 +251,7 @@ class KLTCodec(CodecBase):
     name = "klt"
 
     def load_shared(self, path):
-        from ..basisfile import load_basis
+        from ..formats.basisfile import load_basis
 
         return load_basis(path)
 

@@ -7,8 +7,10 @@ from pathlib import Path
 
 from PySide6.QtWidgets import QFileDialog
 
-from .. import bundle, pipeline, remote
-from ..imagefiles import SourceImage, list_inputs, write_atomic
+from .. import pipeline
+from ..formats import bundle
+from . import remote
+from ..formats.imagefiles import SourceImage, list_inputs, write_atomic
 
 
 class JobActions:
@@ -223,7 +225,7 @@ class JobActions:
 
         ref = None
         if s.method == METHOD and self.conv_model_file is not None:
-            from ..modelfile import read_model
+            from ..formats.modelfile import read_model
 
             ref = read_model(self.conv_model_file).sha256
         return archive.make_recipe(s, "model" if ref else None, ref)
@@ -275,7 +277,7 @@ class JobActions:
         training.ask_and_train(self)
 
     def _on_trained(self, path, result):
-        from ..modelfile import read_model
+        from ..formats.modelfile import read_model
 
         # Only its description is read now (no torch): the model itself is loaded by the
         # first job that needs it.

@@ -280,7 +280,7 @@ class SidePanel(QWidget):
 
     # -------------------------------------------------------------- measurements
     def measure_spec(self) -> tuple[str, list[str]] | None:
-        """The chosen measurements and tolerances as text (see :func:`workbench.measures.parse`)."""
+        """The chosen measurements and tolerances as text (see :func:`workbench.quality.measures.parse`)."""
         names = [k for k, box in self.measure_boxes.items() if box.isChecked()]
         if self.measure_file:
             names.append(str(self.measure_file))

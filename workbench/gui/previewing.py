@@ -8,7 +8,9 @@ import threading
 
 import numpy as np
 
-from .. import metrics, pipeline, preview, remote
+from .. import pipeline, preview
+from ..quality import metrics
+from . import remote
 from ..errors import Cancelled
 from ..settings import Settings
 from . import imaging
@@ -112,7 +114,7 @@ class PreviewFlow:
         if s.traits.folder_scope and s.basis_scope == "folder":
             skey = (s.method, s.block, s.chroma, s.kept)
             if skey not in self._shared:
-                from ..basisfile import basis_hash
+                from ..formats.basisfile import basis_hash
                 from ..codecs import get
 
                 shared, raw, _ = get(s.method).prepare_shared(
@@ -176,7 +178,7 @@ class PreviewFlow:
 
     def _coder_process(self):
         if self._coder is None:
-            from ..coderproc import CoderProcess
+            from .coderproc import CoderProcess
 
             self._coder = CoderProcess()
         return self._coder

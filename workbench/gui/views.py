@@ -87,7 +87,7 @@ class ImageView(QGraphicsView):
     ITEM_COLOURS = {"matched": QColor(80, 220, 160), "missed": QColor(255, 170, 40), "spurious": QColor(220, 90, 255)}
 
     def set_items(self, items) -> None:
-        """Rings at ``(y, x, kind)`` image positions (see :meth:`workbench.measures.Reference.marks`)."""
+        """Rings at ``(y, x, kind)`` image positions (see :meth:`workbench.quality.measures.Reference.marks`)."""
         from PySide6.QtWidgets import QGraphicsEllipseItem
 
         for m in getattr(self, "items_shown", []):

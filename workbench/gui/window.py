@@ -13,9 +13,9 @@ from PySide6.QtGui import QAction, QIcon, QKeySequence, QPixmap
 from PySide6.QtWidgets import (QHBoxLayout, QLabel, QListWidget, QListWidgetItem, QMainWindow,
                                QMessageBox, QProgressBar, QPushButton, QSplitter, QToolBar, QVBoxLayout, QWidget)
 
-from .. import measures, metrics
+from ..quality import measures, metrics
 from ..version import __version__
-from ..imagefiles import SourceImage, read_many
+from ..formats.imagefiles import SourceImage, read_many
 from ..notices import CAUTION
 from ..session import Session
 from ..settings import Settings

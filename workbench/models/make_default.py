@@ -24,7 +24,7 @@ OPEN_IMAGES = ["camera", "hubble_deep_field", "immunohistochemistry", "retina", 
 def training_images():
     from skimage import data
 
-    from workbench.imagefiles import SourceImage
+    from workbench.formats.imagefiles import SourceImage
 
     out = []
     for name in OPEN_IMAGES:

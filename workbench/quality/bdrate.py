@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .errors import InputError
+from ..errors import InputError
 
 
 def _prepare(rate, quality, what):

@@ -12,7 +12,7 @@ from dataclasses import dataclass
 import cv2
 import numpy as np
 
-from .errors import InputError
+from ..errors import InputError
 
 SSIM_SIGMA = 1.5
 SSIM_K1, SSIM_K2 = 0.01, 0.03

@@ -22,7 +22,7 @@ from pathlib import Path
 import numpy as np
 from PIL import Image, ImageOps, UnidentifiedImageError
 
-from .errors import InputError
+from ..errors import InputError
 from .names import IMAGE_SUFFIXES, bundle_names
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"

@@ -21,7 +21,7 @@ import json
 import struct
 import zlib
 
-from .errors import BundleError
+from ..errors import BundleError
 
 HEADER = struct.Struct("<8sHHII")
 ENTRY = struct.Struct("<4sIQQ")

@@ -14,7 +14,7 @@ import numpy as np
 from PIL import Image, features
 
 from . import metrics
-from .errors import InputError
+from ..errors import InputError
 
 
 @dataclass(frozen=True)

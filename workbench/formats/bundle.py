@@ -1,6 +1,6 @@
 """The ``.wbundle`` file: one or many compressed images plus shared side information.
 
-A :mod:`workbench.container` with magic ``WKBUNDLE`` and chunks
+A :mod:`workbench.formats.container` with magic ``WKBUNDLE`` and chunks
 
 * ``META`` deflated JSON: format version, tool version, settings, basis reference and one
   entry per image (name, size, bit depth, channels, alpha, SHA-256 of the source pixels,
@@ -21,9 +21,9 @@ import re
 from dataclasses import dataclass
 
 from . import container
-from .errors import BundleError, InputError
+from ..errors import BundleError, InputError
 from .names import name_problem
-from .settings import Settings
+from ..settings import Settings
 
 MAGIC = b"WKBUNDLE"
 VERSION = 4  # 2: coefficient streams coded in lockstep (coefcode); 3: first pass as a row hierarchy; 4: chunk tags

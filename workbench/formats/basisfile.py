@@ -14,9 +14,9 @@ from pathlib import Path
 import numpy as np
 
 from . import container
-from .errors import BundleError, InputError
-from .klt import Basis
-from .settings import BLOCK_SIZES
+from ..errors import BundleError, InputError
+from ..klt import Basis
+from ..settings import BLOCK_SIZES
 
 MAGIC = b"WKBBASIS"
 VERSION = 1

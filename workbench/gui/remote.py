@@ -17,10 +17,10 @@ from concurrent.futures import CancelledError, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
 
-from . import codecs, jobs, pipeline, preview
-from .errors import Cancelled, InputError
-from .imagefiles import SourceImage, write_atomic
-from .settings import Settings
+from .. import codecs, jobs, pipeline, preview
+from ..errors import Cancelled, InputError
+from ..formats.imagefiles import SourceImage, write_atomic
+from ..settings import Settings
 
 KEEP = 4  # fitted images the helper keeps (each holds its latents)
 def handles(method: str) -> bool:
@@ -37,7 +37,7 @@ def _shared(model_file):
     key = None if model_file is None else str(model_file)
     if key not in _models:
         if not _models:
-            from .runtime import tune_allocator
+            from ..runtime import tune_allocator
 
             tune_allocator()
         _models.clear()  # one model at a time: the app uses one
@@ -183,7 +183,7 @@ def save_job(images, settings: Settings, path: Path, protect, model_file=None):
 
 def sheet_job(images, settings: Settings, outdir: Path, protect, model_file=None):
     """The quality sheet of ``images`` into ``outdir`` (a job, for a child process)."""
-    from . import sheet
+    from .. import sheet
 
     shared, ref = _shared(model_file) if handles(settings.method) else (None, None)
     return (yield from sheet.sheet_job(images, settings, outdir, shared=shared, shared_ref=ref, protect=protect))

@@ -14,7 +14,7 @@ from multiprocessing import shared_memory
 
 import numpy as np
 
-from . import jobs
+from .. import jobs
 
 _attached: dict[str, shared_memory.SharedMemory] = {}  # in the child: blocks by name
 
@@ -23,7 +23,7 @@ def _run(fn, scalars, block: str, specs) -> int:
     """Child side: views into the shared block, then ``fn(*scalars, arrays)``."""
     shm = _attached.get(block)
     if shm is None:
-        from .runtime import tune_allocator
+        from ..runtime import tune_allocator
 
         tune_allocator()
         for old in _attached.values():

@@ -1,6 +1,6 @@
 """The ``.wmodel`` file: a learned codec's weights and entropy tables, no code inside.
 
-A :mod:`workbench.container` with magic ``WKBMODEL`` and chunks ``META`` (deflated JSON:
+A :mod:`workbench.formats.container` with magic ``WKBMODEL`` and chunks ``META`` (deflated JSON:
 architecture, per-channel scale indices, training record), ``WGTS`` (the weights as a
 safetensors archive, which holds only tensors and is loaded without executing anything)
 and ``TABS`` (int64 token counts, one row per entropy-table index). The file's identity,
@@ -18,8 +18,9 @@ from pathlib import Path
 
 import numpy as np
 
-from . import coefcode, container
-from .errors import BundleError, InputError
+from .. import coefcode
+from . import container
+from ..errors import BundleError, InputError
 
 MAGIC = b"WKBMODEL"
 VERSION = 1
