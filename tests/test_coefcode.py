@@ -1,7 +1,7 @@
 import numpy as np
 import pytest
 
-from workbench import coefcode
+from workbench.codecs import coefcode
 from workbench.errors import BundleError
 
 

@@ -7,8 +7,9 @@ torch = pytest.importorskip("torch")
 
 import workbench  # noqa: E402
 import workbench.codecs  # noqa: E402
-import workbench.coefcode  # noqa: E402
-from workbench import conv_model, pipeline, tiling, klt
+import workbench.codecs.coefcode  # noqa: E402
+from workbench import pipeline
+from workbench.codecs import conv_model, tiling, klt_basis
 from workbench.formats import container, modelfile  # noqa: E402
 from workbench.codecs import get  # noqa: E402
 from workbench.errors import BundleError  # noqa: E402
@@ -57,7 +58,7 @@ def test_linear_autoencoder_reaches_the_klt_optimum(camera):
     opt.step(closure)
     with torch.no_grad():
         err = float(torch.mean((dec(enc(x)) - x) ** 2))
-    optimum = klt.fit_basis([patches], 8).eigenvalues[k:].sum() / 64
+    optimum = klt_basis.fit_basis([patches], 8).eigenvalues[k:].sum() / 64
     assert err <= 1.03 * optimum
     assert err >= optimum * (1 - 1e-3)  # and never below the optimum
 
@@ -171,7 +172,7 @@ def test_tiled_inference_matches_whole_image_inference(tiny_model):
 def test_laplace_tables_follow_the_distribution():
     # Token 0 of a Laplace(0, b) quantised to integers has mass 1 - exp(-0.5 / b).
     for b in (0.3, 1.0, 7.0):
-        t = workbench.coefcode.laplace_token_counts(b)
+        t = workbench.codecs.coefcode.laplace_token_counts(b)
         assert t[0] / t.sum() == pytest.approx(1 - np.exp(-0.5 / b), abs=2e-3)
 
 

@@ -6,7 +6,8 @@ import pytest
 from skimage import data
 
 import workbench
-from workbench import codecs, klt, pipeline, tiling
+from workbench import codecs, pipeline
+from workbench.codecs import klt_basis, tiling
 from workbench.formats import basisfile, bundle, modelfile
 
 import fuzzing
@@ -32,7 +33,7 @@ def test_klt_bundle_mutants_give_only_our_error(settings):
 
 
 def test_basis_file_mutants_give_only_our_error():
-    basis = klt.fit_basis([tiling.to_patches(data.camera().astype(float), 8)], 8)
+    basis = klt_basis.fit_basis([tiling.to_patches(data.camera().astype(float), 8)], 8)
     b = basisfile.basis_file_bytes(basis, sources=["camera"])
     report = fuzzing.run(basisfile.parse_basis_file, b, basisfile.MAGIC, basisfile.VERSION, seed=2, count=400)
     assert report.refused > 50 and not report.bugs, _bugs(report)

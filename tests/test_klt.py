@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from workbench import klt, tiling
+from workbench.codecs import klt_basis, tiling
 
 
 def test_markov_klt_approaches_the_dct_ii():
@@ -11,18 +11,18 @@ def test_markov_klt_approaches_the_dct_ii():
     # for a first-order Markov process with rho near 1 the KLT basis tends to the DCT-II.
     # A 16-sample sequence (n = 16 = 4 x 4 fits the basis fitter); every KLT vector is within
     # about 3.5 degrees of its DCT-II counterpart (|cos| >= 0.998 here).
-    basis = klt.basis_from_covariance(klt.markov_covariance(16, 0.95), 4)
-    cosines = np.abs(np.sum(basis.vectors * klt.dct2_matrix(16), axis=0))
+    basis = klt_basis.basis_from_covariance(klt_basis.markov_covariance(16, 0.95), 4)
+    cosines = np.abs(np.sum(basis.vectors * klt_basis.dct2_matrix(16), axis=0))
     assert cosines.min() > 0.997
 
 
 def test_separable_markov_klt_compacts_energy_like_the_2d_dct():
     # Same source, 8x8 separable case: the KLT is optimal for energy compaction (never below
     # the DCT at any K) and the 2-D DCT-II is within half a per cent of it at every K.
-    c1 = klt.markov_covariance(8, 0.95)
+    c1 = klt_basis.markov_covariance(8, 0.95)
     cov = np.kron(c1, c1)
-    basis = klt.basis_from_covariance(cov, 8)
-    d2 = np.kron(klt.dct2_matrix(8), klt.dct2_matrix(8))
+    basis = klt_basis.basis_from_covariance(cov, 8)
+    d2 = np.kron(klt_basis.dct2_matrix(8), klt_basis.dct2_matrix(8))
     dct_var = np.sort(np.diag(d2.T @ cov @ d2))[::-1]
     klt_energy = basis.energy_kept()
     dct_energy = np.cumsum(dct_var) / dct_var.sum()
@@ -35,7 +35,7 @@ def test_truncation_error_equals_sum_of_discarded_eigenvalues(camera):
     # patch equal to the sum of the discarded eigenvalues of the second-moment matrix
     # (exact on the fitting data, with the plane's mean removed as the codec removes it).
     patches = tiling.to_patches(camera.astype(float), 8).reshape(-1, 64)
-    basis = klt.fit_basis([patches], 8)
+    basis = klt_basis.fit_basis([patches], 8)
     centred = patches - patches.mean()
     for k in (1, 6, 20, 63):
         v = basis.vectors[:, :k]
@@ -45,26 +45,26 @@ def test_truncation_error_equals_sum_of_discarded_eigenvalues(camera):
 
 
 def test_eigenvalues_descend_and_energy_reaches_one(camera):
-    basis = klt.fit_basis([tiling.to_patches(camera.astype(float), 8)], 8)
+    basis = klt_basis.fit_basis([tiling.to_patches(camera.astype(float), 8)], 8)
     assert np.all(np.diff(basis.eigenvalues) <= 1e-9)
     e = basis.energy_kept()
     assert np.all(np.diff(e) >= -1e-12) and np.isclose(e[-1], 1.0)
 
 
 def test_basis_is_orthonormal_with_a_fixed_sign_convention(camera):
-    basis = klt.fit_basis([tiling.to_patches(camera.astype(float), 8)], 8)
+    basis = klt_basis.fit_basis([tiling.to_patches(camera.astype(float), 8)], 8)
     assert np.allclose(basis.vectors.T @ basis.vectors, np.eye(64), atol=1e-10)
     x = -tiling.to_patches(camera.astype(float), 8).reshape(-1, 64)
     x -= x.mean()
-    flipped = klt.basis_from_covariance(x.T @ x / len(x), 8)
+    flipped = klt_basis.basis_from_covariance(x.T @ x / len(x), 8)
     assert np.allclose(flipped.vectors, basis.vectors, atol=1e-8)
 
 
 def test_quantised_vectors_rebuild_exactly_from_their_integers(camera):
-    basis = klt.fit_basis([tiling.to_patches(camera.astype(float), 8)], 8)
-    ints, bits = klt.quantise_vectors(basis, 64, 4.0)
-    s1 = klt.dequantise_vectors(ints, bits)
-    s2 = klt.dequantise_vectors(ints.copy(), bits.copy())
+    basis = klt_basis.fit_basis([tiling.to_patches(camera.astype(float), 8)], 8)
+    ints, bits = klt_basis.quantise_vectors(basis, 64, 4.0)
+    s1 = klt_basis.dequantise_vectors(ints, bits)
+    s2 = klt_basis.dequantise_vectors(ints.copy(), bits.copy())
     assert np.array_equal(s1, s2)
     assert np.abs(s1 - basis.vectors.T).max() <= 2.0 ** -3 / 2 + 1e-12
 

@@ -1,7 +1,7 @@
 import numpy as np
 import pytest
 
-from workbench import tiling
+from workbench.codecs import tiling
 from workbench.errors import InputError
 
 

@@ -7,7 +7,7 @@ import numpy as np
 from . import pipeline
 from .errors import InputError
 from .formats.imagefiles import SourceImage
-from .klt import Basis
+from .codecs.klt_basis import Basis
 from .settings import Settings
 
 

@@ -63,7 +63,7 @@ def _crop(rng, x):
 
 def _klt_patches(train, rng, n: int = 40000) -> np.ndarray:
     """Random 8x8 patches (3 planes) from the training images, for the linear paths' KLT."""
-    from .conv_model import STRIDE
+    from .codecs.conv_model import STRIDE
 
     out = []
     per = max(1, n // len(train))
@@ -105,7 +105,7 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
     """Generator job: train and write ``out`` (.wmodel); returns the training record."""
     import torch
 
-    from . import conv_model
+    from .codecs import conv_model
     from .codecs.conv import Model
     from .formats.modelfile import read_model
 

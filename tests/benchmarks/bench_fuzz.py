@@ -25,7 +25,8 @@ from skimage import data  # noqa: E402
 
 import fuzzing  # noqa: E402
 import workbench  # noqa: E402
-from workbench import codecs, klt, pipeline, tiling
+from workbench import codecs, pipeline
+from workbench.codecs import klt_basis, tiling
 from workbench.formats import basisfile, bundle, modelfile  # noqa: E402
 
 
@@ -70,7 +71,7 @@ def main(argv=None):
                    workbench.compress({"a.png": data.chelsea()[:48, :40]}, step=8, basis_scope="folder"),
                    workbench.compress({"g": data.camera()[:40, :40].astype(np.uint16) * 257}, step=3, chroma="444",
                                       block=4)]
-    basis = klt.fit_basis([tiling.to_patches(data.camera().astype(float), 8)], 8)
+    basis = klt_basis.fit_basis([tiling.to_patches(data.camera().astype(float), 8)], 8)
     jobs = {
         "klt": ("KLT bundles", read_bundle, klt_sources, bundle.MAGIC, bundle.VERSION, 100_000),
         "basis": ("basis files", basisfile.parse_basis_file, [basisfile.basis_file_bytes(basis, sources=["camera"])],

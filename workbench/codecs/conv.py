@@ -12,7 +12,7 @@ Only the first ``kept`` latent channels are coded (nested-dropout order). Two co
 are tried and the smaller stream is kept (the byte says which): 0, the model's own
 learned per-channel tables (integers stored in the model file, so decoding elsewhere
 gives the same latents); 1, the adaptive context coder of the KLT
-(:mod:`workbench.coefcode`), which also exploits spatial context. The pixels then come
+(:mod:`workbench.codecs.coefcode`), which also exploits spatial context. The pixels then come
 from the same torch decoder.
 The model works on full-resolution Y, Cb, Cr planes scaled to [0, 1] (grey images: Y
 with neutral chroma; only Y is kept on decoding).
@@ -27,7 +27,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .. import coefcode
+from . import coefcode
 from ..errors import BundleError, InputError
 from ..formats.modelfile import ModelData, parse_model, read_model
 from .base import CodecBase
@@ -44,7 +44,7 @@ class Model:
     def __init__(self, data: ModelData):
         import torch
 
-        from ..conv_model import Arch, Autoencoder
+        from .conv_model import Arch, Autoencoder
 
         self.data = data
         self.sha256 = data.sha256
@@ -55,7 +55,7 @@ class Model:
             net.load_state_dict(state, strict=True)
         except RuntimeError as exc:
             raise BundleError(f"model weights do not fit the architecture ({str(exc).splitlines()[0]})") from None
-        from ..conv_model import for_inference
+        from .conv_model import for_inference
 
         self.net = for_inference(net)
 
@@ -98,7 +98,7 @@ class Coded:
 
 
 def _synthesise(model: Model, q: np.ndarray, step: float, shape, grey: bool):
-    from ..conv_model import decode_array
+    from .conv_model import decode_array
 
     y = np.zeros((model.channels,) + q.shape[1:], np.float32)
     y[: q.shape[0]] = q.astype(np.float32) * np.float32(step)
@@ -153,7 +153,7 @@ class ConvCodec(CodecBase):
 
     # ------------------------------------------------------------- coding
     def analyse(self, planes, settings, shared=None) -> Analysis:
-        from ..conv_model import encode_array
+        from .conv_model import encode_array
 
         model = shared if shared is not None else _load_default()
         if not isinstance(model, Model):
@@ -189,7 +189,7 @@ class ConvCodec(CodecBase):
         if not (STEP_INDEX_RANGE[0] <= j <= STEP_INDEX_RANGE[1]) or not (1 <= kept <= shared.channels) \
                 or coder not in (LEARNED, ADAPTIVE):
             raise BundleError(f"image payload has invalid step index {j}, channel count {kept} or coder {coder}")
-        from ..conv_model import STRIDE
+        from .conv_model import STRIDE
 
         h, w = shapes[0]
         lh, lw = -(-h // STRIDE), -(-w // STRIDE)

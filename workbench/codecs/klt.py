@@ -4,12 +4,12 @@ Per image payload (little-endian)::
 
     step f32 | kept u16 | inline u8 | plane means i16 x planes
     [inline basis: precision u8 x kept | u32 length | vector stream]
-    coefficient stream (see :mod:`workbench.coefcode`)
+    coefficient stream (see :mod:`workbench.codecs.coefcode`)
 
 ``kept`` is the number of leading components that carry any non-zero coefficient in this
 image (at most the requested count): trailing all-zero components cost neither basis
 vectors nor symbols. With an inline basis the vectors are quantised to a precision that
-follows each component's spread relative to the step (:func:`workbench.klt.quantise_vectors`).
+follows each component's spread relative to the step (:func:`workbench.codecs.klt_basis.quantise_vectors`).
 """
 
 from __future__ import annotations
@@ -20,7 +20,7 @@ from dataclasses import dataclass
 import cv2
 import numpy as np
 
-from .. import coefcode, klt, tiling
+from . import coefcode, klt_basis, tiling
 from ..formats.basisfile import basis_from_bytes, basis_to_bytes
 from ..errors import BundleError
 from .base import CodecBase
@@ -36,7 +36,7 @@ class Analysis:
     patches: list[np.ndarray]
     means: list[int]
     shapes: list[tuple[int, int]]
-    basis: klt.Basis
+    basis: klt_basis.Basis
     inline: bool
     settings: object
     _sketch_step: tuple | None = None  # ((step, count), synthesis, dequantised coefficients)
@@ -94,8 +94,8 @@ def _matrices(a: Analysis, kept: int, step: float):
     With an inline basis ``kept`` is capped at :attr:`Analysis.directions`."""
     if a.inline:
         kept = min(kept, a.directions)
-        ints, bits = klt.quantise_vectors(a.basis, kept, step)
-        synthesis = klt.dequantise_vectors(ints, bits)
+        ints, bits = klt_basis.quantise_vectors(a.basis, kept, step)
+        synthesis = klt_basis.dequantise_vectors(ints, bits)
         analysis_m = np.linalg.pinv(synthesis)
     else:
         ints = bits = None
@@ -266,13 +266,13 @@ class KLTCodec(CodecBase):
         if plane_sets is None:
             return None, None, None
         patches = (tiling.to_patches(p, settings.block) for planes in plane_sets for p in planes)
-        data = basis_to_bytes(klt.fit_basis(patches, settings.block), settings.kept)
+        data = basis_to_bytes(klt_basis.fit_basis(patches, settings.block), settings.kept)
         return basis_from_bytes(data), data, None
 
-    def shared_from_bytes(self, data: bytes) -> klt.Basis:
+    def shared_from_bytes(self, data: bytes) -> klt_basis.Basis:
         return basis_from_bytes(data)
 
-    def shared_to_bytes(self, basis: klt.Basis) -> bytes:
+    def shared_to_bytes(self, basis: klt_basis.Basis) -> bytes:
         return basis_to_bytes(basis)
 
     # ---------------------------------------------------------------- encoding
@@ -285,7 +285,7 @@ class KLTCodec(CodecBase):
             patches.append(x)
             means.append(m)
         if shared is None:
-            basis = klt.fit_basis(patches, settings.block)
+            basis = klt_basis.fit_basis(patches, settings.block)
         else:
             if shared.block != settings.block:
                 raise BundleError(f"basis is for block {shared.block}, settings ask for block {settings.block}")
@@ -347,7 +347,7 @@ class KLTCodec(CodecBase):
                 raise BundleError("image payload is truncated in its basis")
             ints = coefcode.decode_grids(payload[pos : pos + vlen], [(1, kept, n)], [2])[0].reshape(kept, n)
             pos += vlen
-            synthesis = klt.dequantise_vectors(ints, bits)
+            synthesis = klt_basis.dequantise_vectors(ints, bits)
         else:
             if shared is None:
                 raise BundleError("image needs a shared basis that the bundle does not provide")

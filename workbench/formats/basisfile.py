@@ -15,7 +15,7 @@ import numpy as np
 
 from . import container
 from ..errors import BundleError, InputError
-from ..klt import Basis
+from ..codecs.klt_basis import Basis
 from ..settings import BLOCK_SIZES
 
 MAGIC = b"WKBBASIS"

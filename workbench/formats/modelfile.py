@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .. import coefcode
+from ..codecs import coefcode
 from . import container
 from ..errors import BundleError, InputError
 

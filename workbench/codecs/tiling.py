@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .errors import InputError
+from ..errors import InputError
 
 
 def grid_shape(shape: tuple[int, int], block: int) -> tuple[int, int]:

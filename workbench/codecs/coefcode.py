@@ -38,7 +38,7 @@ import struct
 import constriction
 import numpy as np
 
-from .errors import BundleError
+from ..errors import BundleError
 
 DIRECT = 16
 MAX_BITS = 26
