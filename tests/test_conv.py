@@ -7,7 +7,7 @@ torch = pytest.importorskip("torch")
 
 import workbench  # noqa: E402
 import workbench.codecs  # noqa: E402
-import workbench.codecs.coefcode  # noqa: E402
+import workbench.codecs.symbols  # noqa: E402
 from workbench import pipeline
 from workbench.codecs import conv_model, tiling, klt_basis
 from workbench.formats import container, modelfile  # noqa: E402
@@ -172,7 +172,7 @@ def test_tiled_inference_matches_whole_image_inference(tiny_model):
 def test_laplace_tables_follow_the_distribution():
     # Token 0 of a Laplace(0, b) quantised to integers has mass 1 - exp(-0.5 / b).
     for b in (0.3, 1.0, 7.0):
-        t = workbench.codecs.coefcode.laplace_token_counts(b)
+        t = workbench.codecs.symbols.laplace_token_counts(b)
         assert t[0] / t.sum() == pytest.approx(1 - np.exp(-0.5 / b), abs=2e-3)
 
 

@@ -107,15 +107,15 @@ LAYERS = [  # lowest first; the same table as DEVELOPERS.md's architecture scree
     {"settings", "codecs", "errors", "color", "display", "notices", "version", "runtime"},
     {"formats"},
     {"codecs.base", "codecs.klt", "codecs.conv", "codecs.klt_basis", "codecs.tiling", "codecs.coefcode",
-     "codecs.conv_model"},
+     "codecs.symbols", "codecs.conv_model"},
     {"quality"},
-    {"pipeline", "blockchoice", "preview", "sheet", "sheetpdf", "archive", "training", "session", "jobs", "demo",
+    {"pipeline", "ratecontrol", "blockchoice", "preview", "sheet", "sheetpdf", "archive", "training", "session", "jobs", "demo",
      "models.make_default"},
     {"cli", "cliargs", "cli_extra", "cli_archive", "api", "__main__", "gui"},
 ]
 # File formats that read a codec part's data type: the basis file holds a klt_basis.Basis, the model
 # file validates entropy tables against the coefficient coder's alphabet.
-EXCEPTIONS = {("formats.basisfile", "codecs.klt_basis"), ("formats.modelfile", "codecs.coefcode")}
+EXCEPTIONS = {("formats.basisfile", "codecs.klt_basis"), ("formats.modelfile", "codecs.symbols")}
 
 
 def _layer(module: str) -> int:

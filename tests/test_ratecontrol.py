@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from workbench import pipeline
+from workbench import pipeline, ratecontrol
 from workbench.formats.imagefiles import SourceImage
 from workbench.settings import Settings
 
@@ -41,7 +41,7 @@ def test_unreachable_target_is_reported_not_met(camera16):
 
 
 def test_search_step_on_a_monotone_function_finds_the_threshold():
-    step, ok = pipeline.search_step(lambda s: 100 - s, "psnr", 60.0)
+    step, ok = ratecontrol.search_step(lambda s: 100 - s, "psnr", 60.0)
     assert ok and step == pytest.approx(40.0, rel=0.02) and 100 - step >= 60.0
 
 
@@ -100,11 +100,11 @@ def test_the_chosen_trial_is_not_quantised_or_coded_again(monkeypatch, chelsea):
 
 
 def test_a_search_for_a_verdict_brackets_its_threshold_within_two_percent():
-    step, ok = pipeline.search_step(lambda s: 1.0 if s <= 37.0 else 0.0, "pass", 0.5)
+    step, ok = ratecontrol.search_step(lambda s: 1.0 if s <= 37.0 else 0.0, "pass", 0.5)
     assert ok and 37.0 / 1.02 <= step <= 37.0
 
 
 def test_a_rate_search_finds_the_finest_step_within_the_rate():
     # a rate falling as 1/step: the step for 0.5 is 2.0
-    step, ok = pipeline.search_step(lambda s: 1.0 / s, "bpp", 0.5)
+    step, ok = ratecontrol.search_step(lambda s: 1.0 / s, "bpp", 0.5)
     assert ok and 1.0 / step <= 0.5 and step == pytest.approx(2.0, rel=0.011)

@@ -23,7 +23,8 @@ from . import codecs
 from .codecs.klt import RD_LAMBDA
 from .errors import InputError
 from .formats.imagefiles import SourceImage
-from .pipeline import image_planes, plane_quality, search_step
+from .pipeline import image_planes, plane_quality
+from .ratecontrol import search_step
 from .settings import BLOCK_SIZES, Settings
 
 SAMPLE = 8

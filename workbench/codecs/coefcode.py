@@ -8,8 +8,7 @@ serves all of them: a call costs about the same Python overhead whether it carri
 hundred symbols or a hundred thousand, so the number of calls is what sets the speed.
 
 Symbols
-    magnitude token ``t = |q|`` for ``|q| < 16``; above that ``t = 11 + bitlength(|q|)`` followed
-    by ``bitlength - 1`` raw mantissa bits (the leading one is implied). Signs are raw bits.
+    magnitude tokens, raw sign and mantissa bits, as :mod:`workbench.codecs.symbols` codes them.
 First coefficient (k = 0) and extent
     the first coefficient is replaced by the residual of the planar predictor ``L + T - TL``
     over the patch grid; the extent of a patch is the index of its last non-zero coefficient
@@ -33,16 +32,11 @@ any machine rebuilds bit for bit the models the encoder used.
 
 from __future__ import annotations
 
-import struct
-
-import constriction
 import numpy as np
 
 from ..errors import BundleError
+from .symbols import ALPHABET, MAX_BITS, Reader, Writer
 
-DIRECT = 16
-MAX_BITS = 26
-ALPHABET = DIRECT + MAX_BITS - 4  # tokens for bit lengths 5..MAX_BITS
 INCREMENT = 32
 COUNT_LIMIT = 1 << 16
 LOW = 8
@@ -64,19 +58,7 @@ FAMILIES = (("dc", N_DC_CLASSES), ("ext", N_EXT_CLASSES), ("low", N_GROUPS * N_A
 # Every context starts from the same prior: most coefficients are zero or small, and a
 # starting point near that saves each fresh context from learning it symbol by symbol.
 PRIOR = np.array([64, 32, 16, 8, 4, 2])
-_FAMILY = constriction.stream.model.Categorical(perfect=False)
 _AC_CLASS = np.searchsorted(AC_EDGES, np.arange(AC_EDGES[-1] + 1), side="right").astype(np.int32)
-
-
-def _tokens(mag: np.ndarray):
-    """Token and number of mantissa bits of non-negative magnitudes."""
-    if mag.size and int(mag.max()) >= 1 << MAX_BITS:
-        raise ValueError(f"coefficient magnitude {int(mag.max())} exceeds the coder's {MAX_BITS}-bit range")
-    bitlen = np.frexp(mag.astype(np.float64))[1].astype(np.int64)
-    esc = mag >= DIRECT
-    tok = np.where(esc, DIRECT - 5 + bitlen, mag)
-    nbits = np.where(esc, bitlen - 1, 0)
-    return tok, nbits
 
 
 class _Models:
@@ -246,134 +228,6 @@ def _tail_context(own: np.ndarray, ext: np.ndarray, idx: np.ndarray, k: np.ndarr
     return (_k_group(k) * N_OWN + own_cls) * N_GAP + gap_cls
 
 
-class _Writer:
-    def __init__(self):
-        self.enc = constriction.stream.queue.RangeEncoder()
-        self.raw: list[np.ndarray] = []
-
-    def put(self, models: _Models, ctx: np.ndarray, values: np.ndarray, n_signed: int | None = None) -> None:
-        """Code ``values`` under the contexts ``ctx``; the first ``n_signed`` (all by default)
-        carry a sign, the rest are magnitudes."""
-        mag = np.abs(values)
-        tok, nbits = _tokens(mag)
-        if tok.size:
-            self.enc.encode(tok.astype(np.int32), _FAMILY, models.probabilities(ctx))
-            models.update(ctx, tok)
-        signed = values if n_signed is None else values[:n_signed]
-        self.raw.append((signed[signed != 0] < 0).astype(np.uint8))
-        self._mantissas(nbits, mag)
-
-    def put_fixed(self, probs: np.ndarray, values: np.ndarray) -> None:
-        """Signed values under one fixed token distribution (for learned models)."""
-        values = values.reshape(-1)
-        mag = np.abs(values)
-        tok, nbits = _tokens(mag)
-        if tok.size:
-            self.enc.encode(tok.astype(np.int32), constriction.stream.model.Categorical(probs, perfect=False))
-        self.raw.append((values[mag > 0] < 0).astype(np.uint8))
-        self._mantissas(nbits, mag)
-
-    def _mantissas(self, nbits, mag):
-        esc = nbits > 0
-        if esc.any():
-            nb, m = nbits[esc], mag[esc]
-            pos = np.arange(nb.sum()) - np.repeat(np.cumsum(nb) - nb, nb)
-            shift = np.repeat(nb, nb) - 1 - pos
-            self.raw.append(((np.repeat(m, nb) >> shift) & 1).astype(np.uint8))
-
-    def finish(self) -> bytes:
-        words = self.enc.get_compressed().astype("<u4")
-        bits = np.concatenate(self.raw) if self.raw else np.zeros(0, np.uint8)
-        return struct.pack("<II", words.size, bits.size) + words.tobytes() + np.packbits(bits).tobytes()
-
-
-class _Reader:
-    def __init__(self, data: bytes):
-        if len(data) < 8:
-            raise BundleError("coefficient stream is truncated")
-        n_words, n_bits = struct.unpack("<II", data[:8])
-        end = 8 + 4 * n_words
-        if end + (n_bits + 7) // 8 > len(data):
-            raise BundleError("coefficient stream is shorter than its header says")
-        words = np.frombuffer(data[8:end], dtype="<u4").astype(np.uint32)
-        self.bits = np.unpackbits(np.frombuffer(data[end:], np.uint8))[:n_bits]
-        self.pos = 0
-        try:
-            self.dec = constriction.stream.queue.RangeDecoder(words)
-        except Exception as exc:  # constriction reports malformed input in several ways
-            raise BundleError(f"coefficient stream is not decodable ({exc})") from None
-
-    def _take(self, n: int) -> np.ndarray:
-        if self.pos + n > self.bits.size:
-            raise BundleError("coefficient stream ran out of raw bits")
-        out = self.bits[self.pos : self.pos + n]
-        self.pos += n
-        return out
-
-    def get(self, models: _Models, ctx: np.ndarray, n_signed: int | None = None) -> np.ndarray:
-        """Inverse of :meth:`_Writer.put`."""
-        if ctx.size == 0:
-            self._values(np.zeros(0, np.int64), 0)
-            return np.zeros(0, np.int64)
-        try:
-            tok = np.asarray(self.dec.decode(_FAMILY, models.probabilities(ctx)), dtype=np.int64)
-        except Exception as exc:
-            raise BundleError(f"coefficient stream is not decodable ({exc})") from None
-        models.update(ctx, tok)
-        return self._values(tok, tok.size if n_signed is None else n_signed)
-
-    def get_fixed(self, probs: np.ndarray, n: int) -> np.ndarray:
-        """Inverse of :meth:`_Writer.put_fixed`."""
-        if n == 0:
-            return np.zeros(0, np.int64)
-        try:
-            model = constriction.stream.model.Categorical(probs, perfect=False)
-            tok = np.asarray(self.dec.decode(model, n), dtype=np.int64)
-        except Exception as exc:
-            raise BundleError(f"latent stream is not decodable ({exc})") from None
-        return self._values(tok, n)
-
-    def _values(self, tok: np.ndarray, n_signed: int) -> np.ndarray:
-        esc = tok >= DIRECT
-        mag = tok  # escaped entries are overwritten below
-        nz = tok[:n_signed] > 0
-        signs = self._take(int(nz.sum()))  # signs precede mantissas
-        if esc.any():
-            nb = tok[esc] - (DIRECT - 5) - 1
-            bits = self._take(int(nb.sum())).astype(np.int64)
-            pos = np.arange(bits.size) - np.repeat(np.cumsum(nb) - nb, nb)
-            weights = np.left_shift(1, np.repeat(nb, nb) - 1 - pos)
-            starts = np.cumsum(nb) - nb
-            mant = np.add.reduceat(bits * weights, starts)
-            mag[esc] = (np.int64(1) << nb) + mant
-        neg = np.flatnonzero(nz)[signs == 1]
-        mag[neg] = -mag[neg]
-        return mag
-
-
-def laplace_token_counts(scale: float, total: int = 1 << 16) -> np.ndarray:
-    """Integer token counts of a zero-mean Laplace of ``scale`` (quantiser units), rounded
-    integers with a floor of one so every token stays codable."""
-    b = max(scale, 1e-6)
-    edges = np.concatenate([np.arange(DIRECT) + 0.5, 2.0 ** np.arange(5, MAX_BITS + 1) - 0.5])
-    tail = np.exp(-edges / b)  # P(|k| > edge) for the folded Laplace
-    mass = -np.diff(np.concatenate([[1.0], tail]))
-    return np.maximum(1, np.round(mass * total)).astype(np.int64)
-
-
-def encode_fixed(channels: list[np.ndarray], counts: list[np.ndarray]) -> bytes:
-    """Each array of ``channels`` coded under its own fixed token distribution."""
-    w = _Writer()
-    for v, c in zip(channels, counts):
-        w.put_fixed(c.astype(np.float64), np.asarray(v, dtype=np.int64))
-    return w.finish()
-
-
-def decode_fixed(data: bytes, sizes: list[int], counts: list[np.ndarray]) -> list[np.ndarray]:
-    rd = _Reader(data)
-    return [rd.get_fixed(c.astype(np.float64), n) for n, c in zip(sizes, counts)]
-
-
 class _Grid:
     """Coding state of one grid: what both sides know once a symbol has been coded."""
 
@@ -403,7 +257,7 @@ class _Grid:
 class _Encoding:
     decoding = False
 
-    def __init__(self, writer: _Writer):
+    def __init__(self, writer: Writer):
         self.w = writer
 
     def code(self, models, ctx, values, n_signed=None):
@@ -415,7 +269,7 @@ class _Encoding:
 class _Decoding:
     decoding = True
 
-    def __init__(self, reader: _Reader):
+    def __init__(self, reader: Reader):
         self.r = reader
 
     def code(self, models, ctx, values, n_signed=None):
@@ -494,7 +348,7 @@ def encode_grids(grids: list[np.ndarray], kinds: list[int]) -> bytes:
             raise ValueError(f"coefficient grid must be 3-D with at least one component, got shape {q.shape}")
     _check_kinds(qs, kinds)
     models = _Models(kinds)
-    w = _Writer()
+    w = Writer()
     _traverse([_Grid(q.shape, kind, models, q) for q, kind in zip(qs, kinds)], models, _Encoding(w))
     return w.finish()
 
@@ -504,5 +358,5 @@ def decode_grids(data: bytes, shapes: list[tuple[int, int, int]], kinds: list[in
     _check_kinds(shapes, kinds)
     models = _Models(kinds)
     grids = [_Grid(tuple(s), kind, models) for s, kind in zip(shapes, kinds)]
-    _traverse(grids, models, _Decoding(_Reader(data)))
+    _traverse(grids, models, _Decoding(Reader(data)))
     return [np.moveaxis(g.q, 0, -1) for g in grids]  # (rows, cols, K) views

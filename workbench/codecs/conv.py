@@ -27,7 +27,7 @@ from pathlib import Path
 
 import numpy as np
 
-from . import coefcode
+from . import coefcode, symbols
 from ..errors import BundleError, InputError
 from ..formats.modelfile import ModelData, parse_model, read_model
 from .base import CodecBase
@@ -174,7 +174,7 @@ class ConvCodec(CodecBase):
     def serialise(self, c: Coded) -> bytes:
         m = c.analysis.model.data
         counts = [m.counts(ch, c.step_index) for ch in range(c.kept)]
-        learned = coefcode.encode_fixed(list(c.q), counts)
+        learned = symbols.encode_fixed(list(c.q), counts)
         adaptive = coefcode.encode_grids([np.ascontiguousarray(c.q.transpose(1, 2, 0))], [3])
         if len(adaptive) < len(learned):
             return _HEAD.pack(c.step_index, c.kept, ADAPTIVE) + adaptive
@@ -198,7 +198,7 @@ class ConvCodec(CodecBase):
             q = coefcode.decode_grids(body, [(lh, lw, kept)], [3])[0].transpose(2, 0, 1)
         else:
             counts = [shared.data.counts(ch, j) for ch in range(kept)]
-            q = np.stack(coefcode.decode_fixed(body, [lh * lw] * kept, counts)).reshape(kept, lh, lw)
+            q = np.stack(symbols.decode_fixed(body, [lh * lw] * kept, counts)).reshape(kept, lh, lw)
         return _synthesise(shared, q, float(2.0 ** (j / 8)), (h, w), len(shapes) == 1)
 
 

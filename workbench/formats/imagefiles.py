@@ -337,10 +337,8 @@ def _process_alive(pid: int) -> bool:
 def encode_png(pixels: np.ndarray) -> bytes:
     """PNG bytes of (H, W[, C]) uint8/uint16 pixels, C in 1..4 (grey, grey+alpha, RGB, RGBA).
 
-    8-bit images go through Pillow, 16-bit grey, RGB and RGBA through OpenCV. Neither writes
-    16-bit grey + alpha (PNG colour type 4 at depth 16), so that one layout is written here:
-    one IDAT of unfiltered rows (PNG specification, ISO/IEC 15948).
-    """
+    8-bit images go through Pillow, 16-bit grey, RGB and RGBA through OpenCV. Neither writes 16-bit
+    grey + alpha (PNG colour type 4), so that one is written here: one IDAT of unfiltered rows."""
     a = np.asarray(pixels)
     if a.ndim == 2:
         a = a[..., None]

@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..codecs import coefcode
+from ..codecs import symbols
 from . import container
 from ..errors import BundleError, InputError
 
@@ -30,7 +30,7 @@ MAX_HIDDEN = 1024
 
 
 def scale_tables() -> np.ndarray:
-    return np.stack([coefcode.laplace_token_counts(2.0 ** (i / 8)) for i in range(TABLE_MIN, TABLE_MAX + 1)])
+    return np.stack([symbols.laplace_token_counts(2.0 ** (i / 8)) for i in range(TABLE_MIN, TABLE_MAX + 1)])
 
 
 @dataclass
@@ -90,9 +90,9 @@ def parse_model(data: bytes) -> ModelData:
         raise BundleError("model file has invalid entropy-model scales")
     n_tab = TABLE_MAX - TABLE_MIN + 1
     tabs = chunks[b"TABS"]
-    if len(tabs) != n_tab * coefcode.ALPHABET * 8 or meta.get("tables") != [TABLE_MIN, TABLE_MAX]:
+    if len(tabs) != n_tab * symbols.ALPHABET * 8 or meta.get("tables") != [TABLE_MIN, TABLE_MAX]:
         raise BundleError("model file has entropy tables of the wrong size")
-    tables = np.frombuffer(tabs, "<i8").reshape(n_tab, coefcode.ALPHABET).astype(np.int64)
+    tables = np.frombuffer(tabs, "<i8").reshape(n_tab, symbols.ALPHABET).astype(np.int64)
     if tables.min() < 1 or tables.max() > 1 << 20:
         raise BundleError("model file has invalid entropy tables")
     try:

@@ -207,18 +207,18 @@ class Lane(QObject):
             self.busy.emit(False)
 
     def _on_done(self, gen_id, value):
-        tag = self._tags.pop(gen_id, None)
-        fresh = gen_id == self._latest
-        self._finish()
-        if fresh:
-            self.result.emit(tag, value)
+        self._end(gen_id, self.result, value)
 
     def _on_failed(self, gen_id, msg):
+        self._end(gen_id, self.error, msg)
+
+    def _end(self, gen_id, signal, payload):
+        """A job ended: pass its outcome on only if no newer job was submitted since."""
         tag = self._tags.pop(gen_id, None)
         fresh = gen_id == self._latest
         self._finish()
         if fresh:
-            self.error.emit(tag, msg)
+            signal.emit(tag, payload)
 
 
 class JobRunner(QObject):
