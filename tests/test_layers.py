@@ -109,8 +109,8 @@ LAYERS = [  # lowest first; the same table as DEVELOPERS.md's architecture scree
     {"codecs.base", "codecs.klt", "codecs.conv", "codecs.klt_basis", "codecs.tiling", "codecs.coefcode",
      "codecs.symbols", "codecs.conv_model"},
     {"quality"},
-    {"pipeline", "ratecontrol", "blockchoice", "preview", "sheet", "sheetpdf", "archive", "training", "session", "jobs", "demo",
-     "models.make_default"},
+    {"pipeline", "ratecontrol", "blockchoice", "preview", "sheet", "sheetpdf", "archive", "training", "session",
+     "jobs", "demo", "models.make_default"},
     {"cli", "cliargs", "cli_extra", "cli_archive", "api", "__main__", "gui"},
 ]
 # File formats that read a codec part's data type: the basis file holds a klt_basis.Basis, the model

@@ -115,7 +115,8 @@ def block_costs(images: list[SourceImage], settings: Settings, total: int | None
     return out
 
 
-def choose_block(images: list[SourceImage], settings: Settings, total: int | None = None) -> tuple[Settings, list[BlockCost]]:
+def choose_block(images: list[SourceImage], settings: Settings,
+                 total: int | None = None) -> tuple[Settings, list[BlockCost]]:
     """``settings`` with the block of lowest cost on ``images`` (see :func:`block_costs`),
     and every candidate's cost."""
     costs = block_costs(images, settings, total)

@@ -94,7 +94,8 @@ def section_speed():
     print("\n== 4-megapixel RGB (bench_klt.four_mp_photo: a mosaic of 512 px photograph crops) with the shipped model")
     code = ("import sys, time, statistics, resource; sys.path.insert(0, %r); sys.path.insert(0, %r); "
             "import bench_klt, workbench; from workbench.codecs import get; m, sha = get('conv').default_model(); "
-            "img = bench_klt.four_mp_photo(); base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss; es, ds = [], []\n"
+            "img = bench_klt.four_mp_photo(); base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss\n"
+            "es, ds = [], []\n"
             "for i in range(4):\n"
             "    t = time.perf_counter(); b = workbench.compress({'x': img}, method='conv', basis=m, basis_ref=sha)\n"
             "    es.append(time.perf_counter() - t); t = time.perf_counter()\n"

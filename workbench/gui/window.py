@@ -63,26 +63,20 @@ class Notice(QWidget):
         self.show()
 
 
-def _session_field(name: str, doc: str = ""):
-    """A window attribute that is the session's (the window only draws the session)."""
-    return property(lambda self: getattr(self.session, name), lambda self, v: setattr(self.session, name, v),
-                    doc=doc or f"``session.{name}``")
+def _session_fields(*names: str, **renamed: str):
+    """Class decorator: each name (and each ``attribute=field``) becomes a window attribute that
+    is the session's field of that name (the window only draws the session)."""
+    def add(cls):
+        for attr, field in [(n, n) for n in names] + list(renamed.items()):
+            setattr(cls, attr, property(lambda self, f=field: getattr(self.session, f),
+                                        lambda self, v, f=field: setattr(self.session, f, v), doc=f"``session.{field}``"))
+        return cls
+    return add
 
 
+@_session_fields("folder", "bundle_path", "images", "index", "conv_model_file", "last_numbers", "last_measured",
+                 "last_training", "last_batch", "last_error", _previews="previews", _shared="shared", _numbers="numbers")
 class MainWindow(PreviewFlow, JobActions, QMainWindow):
-    folder = _session_field("folder")
-    bundle_path = _session_field("bundle_path")
-    images = _session_field("images")
-    index = _session_field("index")
-    _previews = _session_field("previews")
-    _shared = _session_field("shared")
-    _numbers = _session_field("numbers")
-    conv_model_file = _session_field("conv_model_file")
-    last_numbers = _session_field("last_numbers")
-    last_measured = _session_field("last_measured")
-    last_training = _session_field("last_training")
-    last_batch = _session_field("last_batch")
-    last_error = _session_field("last_error")
     current = property(lambda self: self.session.current)
 
     def __init__(self, store: QSettings | None = None):
