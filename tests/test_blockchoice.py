@@ -1,5 +1,6 @@
-"""``--block auto``: the block size of lowest rate–distortion cost, checked against the rate
-the pipeline really spends (Bjøntegaard BD-rate, VCEG-M33) on scikit-image's bundled images."""
+"""``--block auto`` / ``--chroma auto``: the block size and chroma sampling of lowest
+rate–distortion cost, checked against the rate the pipeline really spends (Bjøntegaard BD-rate,
+VCEG-M33) on scikit-image's bundled images."""
 
 import numpy as np
 import pytest
@@ -64,11 +65,34 @@ def test_cli_block_auto_writes_the_chosen_block_and_says_why(tmp_path, capsys, a
     assert line.startswith(f"block {block} chosen by rate–distortion cost at step 8")
 
 
+def test_chroma_auto_keeps_full_chroma_where_it_spends_fewer_bits_at_equal_psnr():
+    # scikit-image's 'rocket' (a quarter): 4:2:0 caps its PSNR near 35 dB (red and blue detail)
+    img = SourceImage("rocket", data.rocket()[:256, :256])
+    chosen, costs = blockchoice.choose_block([img], Settings(block=8), blocks=(8,), chromas=("420", "444"))
+    curves = {c: pipeline.rd_points(img, Settings(block=8, chroma=c), STEPS, with_ssim=False) for c in ("420", "444")}
+    a, b = curves["420"], curves["444"]
+    bd = bdrate.bd_rate([p.bpp for p in a], [p.psnr for p in a], [p.bpp for p in b], [p.psnr for p in b])
+    assert {c.chroma for c in costs} == {"420", "444"}
+    assert (chosen.chroma == "444") == (bd < 0)
+
+
 def test_cli_block_auto_refuses_a_method_without_blocks(tmp_path, capsys, astronaut):
     from PIL import Image
 
     Image.fromarray(astronaut[:64, :64]).save(tmp_path / "a.png")
     assert cli.main(["encode", str(tmp_path / "a.png"), "--block", "auto", "--method", "conv",
                      "-o", str(tmp_path / "a.wbundle")]) == 2
-    assert "--block auto chooses the KLT's block" in capsys.readouterr().err
+    assert "--block/--chroma auto choose the KLT's" in capsys.readouterr().err
     assert not (tmp_path / "a.wbundle").exists()
+
+
+def test_cli_chroma_auto_writes_the_chosen_chroma_and_says_why(tmp_path, capsys):
+    from PIL import Image
+
+    Image.fromarray(data.rocket()[:128, :128]).save(tmp_path / "r.png")  # scikit-image's 'rocket'
+    out = tmp_path / "r.wbundle"
+    assert cli.main(["encode", str(tmp_path / "r.png"), "--chroma", "auto", "-o", str(out)]) == 0
+    line = capsys.readouterr().err.strip().splitlines()[-1]
+    s = bundle.parse(out.read_bytes()).settings
+    assert s.block == 8 and line.startswith(f"block 8, chroma {s.chroma} chosen by rate–distortion cost")
+    assert "8/420:" in line and "8/444:" in line

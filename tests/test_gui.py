@@ -475,12 +475,14 @@ def test_cancelling_a_conv_save_in_its_child_process_writes_nothing(qtbot, windo
     assert not list(tmp_path.glob(".never.wbundle.*.part"))
 
 
-def test_choosing_the_block_size_sets_the_panel_to_the_lowest_cost_block(qtbot, window, folder):
+def test_choosing_the_block_size_sets_the_panel_to_the_lowest_cost_block_and_chroma(qtbot, window, folder):
     from workbench import blockchoice
 
     _open(qtbot, window, folder)
+    start = window.panel.settings()
     with qtbot.waitSignal(window.jobs.finished, timeout=120000):
         assert window.choose_block()
-    expected, _ = blockchoice.choose_block(list(window.images), window.panel.settings().replace(block=8))
-    assert window.panel.settings().block == expected.block
-    assert window.status_text.text().startswith(f"Block {expected.block} chosen by rate–distortion cost")
+    expected, _ = blockchoice.choose_block(list(window.images), start, chromas=("420", "444"))
+    s = window.panel.settings()
+    assert (s.block, s.chroma) == (expected.block, expected.chroma)
+    assert window.status_text.text().startswith(f"Block {expected.block}, chroma {expected.chroma} chosen by")

@@ -1,12 +1,15 @@
-"""Choosing the KLT block size for a folder by rate–distortion cost (``--block auto``).
+"""Choosing the KLT block size and chroma sampling for a folder by rate–distortion cost
+(``--block auto``, ``--chroma auto``).
 
 A larger block lets the transform follow longer structure (a weave's period, a field's
-smooth shading) but costs more per stored basis vector and fits less well on few patches.
-Which wins depends on the folder, so each candidate block is tried on a sample of the
-folder's images at one step and the one with the lowest Lagrangian cost
-``J = squared error + lambda x bits`` (Everett's method, the usual criterion for coding-mode
-decisions) is kept. ``lambda`` is the one the KLT codec already uses to choose how many
-components to keep, so the choice is made at the operating point the images will be coded at.
+smooth shading) but costs more per stored basis vector and fits less well on few patches;
+4:4:4 chroma keeps colour detail that 4:2:0 halves, for more bits. Which wins depends on the
+folder, so each candidate is tried on a sample of the folder's images at one step and the one
+with the lowest Lagrangian cost ``J = squared error + lambda x bits`` (Everett's method, the
+usual criterion for coding-mode decisions) is kept. The error is measured on the decoded
+pixels (over R, G and B, divided by the channel count, in 8-bit levels) so that chroma
+choices compare; ``lambda`` is the one the KLT codec uses to choose how many components to
+keep, so the choice is made at the operating point the images will be coded at.
 
 With a folder basis, the basis is fitted on half of the sample and the cost is measured on the
 other half (a large block's basis fitted and judged on the same images flatters it), and the
@@ -23,7 +26,7 @@ from . import codecs
 from .codecs.klt import RD_LAMBDA
 from .errors import InputError
 from .formats.imagefiles import SourceImage
-from .pipeline import image_planes, plane_quality
+from .pipeline import image_planes, plane_quality, planes_to_pixels
 from .ratecontrol import search_step
 from .settings import BLOCK_SIZES, Settings
 
@@ -33,7 +36,8 @@ SAMPLE = 8
 @dataclass(frozen=True)
 class BlockCost:
     block: int
-    squared_error: float  # over every plane sample of the judged images, in 8-bit levels squared
+    chroma: str
+    squared_error: float  # over the judged images' pixels, per channel, in 8-bit levels squared
     bits: float
     pixels: int
     step: float
@@ -81,10 +85,19 @@ def _operating_step(img: SourceImage, settings: Settings) -> float:
     return search_step(evaluate, kind, value)[0]
 
 
-def block_costs(images: list[SourceImage], settings: Settings, total: int | None = None) -> list[BlockCost]:
-    """The cost of each candidate block on a sample of ``images`` (the whole folder holds
-    ``total`` images, by default ``len(images)``); the settings' count is kept as a fraction
-    of each block's components."""
+def _count_for(settings: Settings, block: int) -> int | None:
+    """The settings' count as the same fraction of ``block``'s components (None: all)."""
+    if settings.count is None:
+        return None
+    count = max(1, round(settings.count * block ** 2 / settings.block ** 2))
+    return None if count >= block ** 2 else count
+
+
+def block_costs(images: list[SourceImage], settings: Settings, total: int | None = None, *,
+                blocks=None, chromas=None) -> list[BlockCost]:
+    """The cost of each candidate (block x chroma) on a sample of ``images`` (the whole folder
+    holds ``total`` images, by default ``len(images)``). ``blocks`` default to
+    :func:`candidates`, ``chromas`` to the settings' own; grey folders try one chroma."""
     if settings.method != "klt":
         raise InputError(f"block choice applies to the KLT, not to {settings.method!r}")
     if not images:
@@ -92,44 +105,46 @@ def block_costs(images: list[SourceImage], settings: Settings, total: int | None
     codec = codecs.get("klt")
     sample = _sample(images, SAMPLE)
     total = total or len(images)
+    blocks = tuple(blocks or candidates(sample))
+    chromas = tuple(chromas or (settings.chroma,))
+    if all(i.channels == 1 for i in sample):
+        chromas = chromas[:1]
     step = _operating_step(sample[0], settings)
     folder = settings.basis_scope == "folder" and len(sample) >= 2
     fit, judged = (sample[::2], sample[1::2]) if folder else (None, sample)
     out = []
-    for block in candidates(sample):
-        count = None if settings.count is None else max(1, round(settings.count * block ** 2 / settings.block ** 2))
-        s = settings.replace(block=block, count=None if count is None or count >= block ** 2 else count,
-                             target=None, step=step)
-        shared, bits = None, 0.0
-        if settings.basis_scope == "folder":
-            shared, raw, _ = codec.prepare_shared([image_planes(i, s.chroma) for i in (fit or sample)], s)
-            bits = 8.0 * len(raw) * len(judged) / total
-        err, pixels = 0.0, 0
-        for img in judged:
-            planes = image_planes(img, s.chroma)
-            coded = codec.quantise(codec.analyse(planes, s, shared), step=step, count=s.count)
-            bits += 8.0 * len(codec.serialise(coded))
-            err += sum(float(np.sum((o - r) ** 2, dtype=np.float64)) for o, r in zip(planes, coded.planes))
-            pixels += img.width * img.height
-        out.append(BlockCost(block, err, bits, pixels, step))
+    for chroma in chromas:
+        for block in blocks:
+            s = settings.replace(block=block, chroma=chroma, count=_count_for(settings, block), target=None, step=step)
+            shared, bits = None, 0.0
+            if settings.basis_scope == "folder":
+                shared, raw, _ = codec.prepare_shared([image_planes(i, chroma) for i in (fit or sample)], s)
+                bits = 8.0 * len(raw) * len(judged) / total
+            err, pixels = 0.0, 0
+            for img in judged:
+                coded = codec.quantise(codec.analyse(image_planes(img, chroma), s, shared), step=step, count=s.count)
+                bits += 8.0 * len(codec.serialise(coded))
+                rec = planes_to_pixels(coded.planes, img.pixels.shape[:2], chroma, img.bits)
+                diff = (rec.astype(np.float64) - img.pixels) * (255.0 / img.peak)
+                err += float(np.dot(diff.ravel(), diff.ravel())) / img.channels
+                pixels += img.width * img.height
+            out.append(BlockCost(block, chroma, err, bits, pixels, step))
     return out
 
 
-def choose_block(images: list[SourceImage], settings: Settings,
-                 total: int | None = None) -> tuple[Settings, list[BlockCost]]:
-    """``settings`` with the block of lowest cost on ``images`` (see :func:`block_costs`),
-    and every candidate's cost."""
-    costs = block_costs(images, settings, total)
+def choose_block(images: list[SourceImage], settings: Settings, total: int | None = None, *,
+                 blocks=None, chromas=None) -> tuple[Settings, list[BlockCost]]:
+    """``settings`` with the block (and, given several ``chromas``, the chroma sampling) of
+    lowest cost on ``images`` (see :func:`block_costs`), and every candidate's cost."""
+    costs = block_costs(images, settings, total, blocks=blocks, chromas=chromas)
     best = min(costs, key=lambda c: c.cost)
-    count = settings.count
-    if count is not None:
-        count = max(1, round(count * best.block ** 2 / settings.block ** 2))
-        count = None if count >= best.block ** 2 else count
-    return settings.replace(block=best.block, count=count), costs
+    return settings.replace(block=best.block, chroma=best.chroma, count=_count_for(settings, best.block)), costs
 
 
-def describe(costs: list[BlockCost], chosen: int) -> str:
-    """One line: the chosen block and every candidate's rate and cost."""
-    parts = ", ".join(f"{c.block}: {c.bpp:.3f} bpp, cost {c.cost:.2f}" for c in costs)
-    return f"block {chosen} chosen by rate–distortion cost at step {costs[0].step:.3g} ({parts})"
-
+def describe(costs: list[BlockCost], chosen: Settings) -> str:
+    """One line: what was chosen and every candidate's rate and cost."""
+    several = len({c.chroma for c in costs}) > 1
+    name = (lambda c: f"{c.block}/{c.chroma}") if several else (lambda c: f"{c.block}")
+    parts = ", ".join(f"{name(c)}: {c.bpp:.3f} bpp, cost {c.cost:.2f}" for c in costs)
+    what = f"block {chosen.block}" + (f", chroma {chosen.chroma}" if several else "")
+    return f"{what} chosen by rate–distortion cost at step {costs[0].step:.3g} ({parts})"

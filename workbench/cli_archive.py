@@ -61,12 +61,12 @@ def _recipe_from_args(a, dst: Path) -> dict:
             raise InputError(f"--fit-basis-on: the {settings.traits.label} fits nothing on a folder")
         # the basis is stored once for the whole tree: its cost is shared by every file
         s = resolve_block(a, settings.replace(basis_scope="folder"), images, total=len(files))
-        settings = settings.replace(block=s.block, count=s.count)
+        settings = settings.replace(block=s.block, chroma=s.chroma, count=s.count)
         basis, _, _ = get(s.method).prepare_shared([pipeline.image_planes(i, s.chroma) for i in images], s)
         sha = basis_hash(basis_to_bytes(basis))
         archive.store_shared(dst, "basis", basis_file_bytes(basis, sources=[i.name for i in images]), sha)
         return archive.make_recipe(settings, "basis", sha)
-    if a.block == "auto":
+    if "auto" in (a.block, a.chroma):
         from .blockchoice import SAMPLE
 
         files, images = _sampled(a.src, SAMPLE)

@@ -27,7 +27,9 @@ def _add_codec_options(p: argparse.ArgumentParser) -> None:
     g.add_argument("--count", "--components", "--latent", dest="count", type=int, metavar="K",
                    help="what the method keeps: " + ", ".join(f"{codecs.traits(n).count_label} ({n})"
                                                              for n in codecs.names()) + " (default all)")
-    g.add_argument("--chroma", default="420", choices=["420", "444"], help="chroma sampling for colour images (default 420)")
+    g.add_argument("--chroma", default="420", choices=["420", "444", "auto"],
+                   help="chroma sampling for colour images; auto: the one of lower rate–distortion cost, as for "
+                        "--block auto (default 420)")
     g.add_argument("--basis-scope", default="image", choices=["image", "folder"],
                    help="KLT basis per image, or one for all images stored once in the bundle (default image)")
     g.add_argument("--basis", metavar="FILE", help="external .wbasis file: bundles refer to it by hash instead of carrying a basis")
@@ -58,18 +60,20 @@ def block_size(text: str):
 
 
 def resolve_block(a, settings: Settings, images, total: int | None = None) -> Settings:
-    """``settings`` with ``--block auto`` resolved on ``images`` (the folder holds ``total``),
-    saying on stderr what was chosen and why; unchanged for a fixed block."""
-    if getattr(a, "block", None) != "auto":
+    """``settings`` with ``--block auto`` and ``--chroma auto`` resolved on ``images`` (the
+    folder holds ``total``), saying on stderr what was chosen and why; unchanged otherwise."""
+    auto_block, auto_chroma = getattr(a, "block", None) == "auto", getattr(a, "chroma", None) == "auto"
+    if not (auto_block or auto_chroma):
         return settings
     from . import blockchoice
 
     if settings.method != "klt":
-        raise WorkbenchError(f"--block auto chooses the KLT's block; the {settings.traits.label} has none")
+        raise WorkbenchError(f"--block/--chroma auto choose the KLT's; the {settings.traits.label} has its own")
     if getattr(a, "basis", None):
-        raise WorkbenchError("--block auto cannot be used with --basis: the basis file fixes the block")
-    chosen, costs = blockchoice.choose_block(images, settings, total)
-    print(blockchoice.describe(costs, chosen.block), file=sys.stderr)
+        raise WorkbenchError("--block/--chroma auto cannot be used with --basis: the basis file fixes both")
+    chosen, costs = blockchoice.choose_block(images, settings, total, blocks=None if auto_block else (settings.block,),
+                                             chromas=("420", "444") if auto_chroma else None)
+    print(blockchoice.describe(costs, chosen), file=sys.stderr)
     return chosen
 
 
@@ -99,7 +103,8 @@ def settings_from_args(a) -> Settings:
         v = getattr(a, f"target_{kind}", None)
         if v is not None:
             target = (kind, v)
-    kw = dict(method=a.method, block=8 if a.block == "auto" else a.block, count=a.count, chroma=a.chroma, basis_scope=a.basis_scope,
+    kw = dict(method=a.method, block=8 if a.block == "auto" else a.block, count=a.count,
+              chroma="420" if a.chroma == "auto" else a.chroma, basis_scope=a.basis_scope,
               target=target)
     if a.step is not None:
         kw["step"] = a.step

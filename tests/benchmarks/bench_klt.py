@@ -53,21 +53,23 @@ def section_per_image():
     print("\n== Per-image basis (stored in each bundle), BD-rate by PSNR, negative = fewer bits than the codec")
     from workbench import blockchoice
 
-    rows = {"block 8": [], "block auto": []}
+    rows = {"block 8, 4:2:0": [], "block auto": [], "block+chroma auto": []}
     for name in PHOTOS:
         img = getattr(data, name)()
         src = SourceImage(name, img)
         auto, _ = blockchoice.choose_block([src], Settings())
-        for tag, s in (("block 8", Settings()), ("block auto", auto)):
+        both, _ = blockchoice.choose_block([src], Settings(), chromas=("420", "444"))
+        for tag, s in zip(rows, (Settings(), auto, both)):
             ours = pipeline.rd_points(src, s, STEPS, with_ssim=False)
             bd = bd_against(img, ours)
             rows[tag].append(bd)
             pts = ", ".join(f"{p.bpp:.2f}/{p.psnr:.1f}" for p in ours[::2])
-            print(f"{name:10s} {tag + (f' ({s.block})' if tag == 'block auto' else ''):15s} "
-                  + "  ".join(f"{k} {v:+6.1f}%" for k, v in bd.items()) + f"   (bpp/dB: {pts})")
+            label = tag + (f" ({s.block}, {s.chroma})" if "auto" in tag else "")
+            print(f"{name:10s} {label:29s} " + "  ".join(f"{k} {v:+6.1f}%" for k, v in bd.items())
+                  + f"   (bpp/dB: {pts})")
     for tag, r in rows.items():
         mean = {k: statistics.mean(x[k] for x in r) for k in r[0]}
-        print(f"{'mean':10s} {tag:15s} " + "  ".join(f"{k} {v:+6.1f}%" for k, v in mean.items()))
+        print(f"{'mean':10s} {tag:29s} " + "  ".join(f"{k} {v:+6.1f}%" for k, v in mean.items()))
     return rows
 
 
@@ -95,7 +97,7 @@ def section_folder_basis():
         half = len(imgs) // 2
         train, test = imgs[:half], imgs[half:]
         fit = [SourceImage(f"f{i}", t) for i, t in enumerate(train)]
-        auto, _ = blockchoice.choose_block(fit, Settings(basis_scope="folder"), total=10_000)
+        auto, _ = blockchoice.choose_block(fit, Settings(basis_scope="folder"), total=10_000, chromas=("420", "444"))
         for s in (Settings(basis_scope="folder"), auto):
             basis, raw, _ = codec.prepare_shared([pipeline.image_planes(f, s.chroma) for f in fit], s)
             ref = workbench.formats.basisfile.basis_hash(raw)
@@ -105,9 +107,9 @@ def section_folder_basis():
                                           with_ssim=False)
                 bds.append(bd_against(img, ours))
             mean = {k: statistics.mean(b[k] for b in bds) for k in bds[0]}
-            tag = f"block {s.block}" + (" (auto)" if s is auto else "")
+            tag = f"block {s.block} {s.chroma}" + (" (auto)" if s is auto else "")
             results[label, tag] = mean
-            print(f"{label:28s} {tag:15s} " + "  ".join(f"{k} {v:+6.1f}%" for k, v in mean.items())
+            print(f"{label:28s} {tag:20s} " + "  ".join(f"{k} {v:+6.1f}%" for k, v in mean.items())
                   + f"   ({half} fit / {len(test)} held out)")
     return results
 

@@ -66,7 +66,7 @@ class JobActions:
 
             chosen, costs = result
             self.panel.apply(chosen)
-            self.status_text.setText(blockchoice.describe(costs, chosen.block).capitalize())
+            self.status_text.setText(blockchoice.describe(costs, chosen).capitalize())
         elif kind == "batch":
             self.last_batch = result
             self.status_text.setText(
@@ -118,8 +118,9 @@ class JobActions:
         return self._start_job(job, ("save", path), text)
 
     def choose_block(self) -> bool:
-        """Try every block size on the folder and keep the one of lowest rate–distortion
-        cost at the current step (a background job; the panel then shows it)."""
+        """Try every block size (and both chroma samplings, where the method lets them be
+        chosen) on the folder and keep the pair of lowest rate–distortion cost at the current
+        step (a background job; the panel then shows it)."""
         if not self.images:
             self.notice.show_text("Nothing to choose on: open a folder first.")
             return False
@@ -133,8 +134,8 @@ class JobActions:
             from .. import blockchoice
             from ..jobs import Progress
 
-            yield Progress(0, 1, "trying each block size on the folder…")
-            return blockchoice.choose_block(images, s)
+            yield Progress(0, 1, "trying each block size and chroma sampling on the folder…")
+            return blockchoice.choose_block(images, s, chromas=None if s.traits.fixed_chroma else ("420", "444"))
 
         return self._start_job(job, ("block", ""), "choosing the block size…")
 

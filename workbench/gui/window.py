@@ -197,7 +197,7 @@ class MainWindow(PreviewFlow, JobActions, QMainWindow):
             m.addSeparator() if a is None else m.addAction(a)
         v = self.menuBar().addMenu("&View")
         v.addAction(self.act_zoom)
-        self.act_block = act("Choose the block size for this folder", "", self.choose_block)
+        self.act_block = act("Choose block size and chroma for this folder", "", self.choose_block)
         self.act_archive = act("Apply to an archive…", "save-bundle", self._ask_archive)
         self.act_archive_summary = act("Show an archive's summary…", "open-bundle", self._ask_archive_summary)
         self.menuBar().addMenu("&Tools").addActions([self.act_block, self.act_train, self.act_archive,
