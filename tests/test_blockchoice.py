@@ -96,3 +96,27 @@ def test_cli_chroma_auto_writes_the_chosen_chroma_and_says_why(tmp_path, capsys)
     s = bundle.parse(out.read_bytes()).settings
     assert s.block == 8 and line.startswith(f"block 8, chroma {s.chroma} chosen by rate–distortion cost")
     assert "8/420:" in line and "8/444:" in line
+
+
+def test_a_lone_image_is_judged_on_the_half_its_basis_was_not_fitted_on():
+    # scikit-image's stereo_motorcycle: the choice made on the left view alone, with a folder
+    # basis for a large archive, codes the right view in the fewest bits of the candidates
+    import workbench.codecs
+    from workbench.formats.basisfile import basis_hash
+
+    left, right, _ = data.stereo_motorcycle()
+    left, right = left[:256, :384], right[:256, :384]
+    base = Settings(basis_scope="folder")
+    chosen, _ = blockchoice.choose_block([SourceImage("l", left)], base, total=10_000, blocks=(8, 32),
+                                         chromas=("444",))
+    codec = workbench.codecs.get("klt")
+
+    def curve(block):
+        s = base.replace(block=block, chroma="444")
+        basis, raw, _ = codec.prepare_shared([pipeline.image_planes(SourceImage("l", left), "444")], s)
+        return pipeline.rd_points(SourceImage("r", right), s, STEPS, shared=basis, shared_ref=basis_hash(raw),
+                                  with_ssim=False)
+
+    c8, c32 = curve(8), curve(32)
+    bd = bdrate.bd_rate([p.bpp for p in c8], [p.psnr for p in c8], [p.bpp for p in c32], [p.psnr for p in c32])
+    assert chosen.block == (32 if bd < 0 else 8)

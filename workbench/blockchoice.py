@@ -12,8 +12,9 @@ choices compare; ``lambda`` is the one the KLT codec uses to choose how many com
 keep, so the choice is made at the operating point the images will be coded at.
 
 With a folder basis, the basis is fitted on half of the sample and the cost is measured on the
-other half (a large block's basis fitted and judged on the same images flatters it), and the
-stored basis counts as its share of the folder: its bytes times the sampled fraction.
+other half (a large block's basis fitted and judged on the same images flatters it; a lone
+image is cut in two for this), and the stored basis counts as its share of the folder: its
+bytes times the sampled fraction.
 """
 
 from __future__ import annotations
@@ -66,6 +67,18 @@ def candidates(images: list[SourceImage]) -> tuple[int, ...]:
     return out or (min(BLOCK_SIZES),)
 
 
+def _halves(img: SourceImage) -> tuple[list[SourceImage], list[SourceImage]]:
+    """A lone image split across its longer side: fit on one half, judge on the other."""
+    px = img.pixels
+    if px.shape[1] >= px.shape[0]:
+        w = px.shape[1] // 2
+        a, b = px[:, :w], px[:, w:]
+    else:
+        h = px.shape[0] // 2
+        a, b = px[:h], px[h:]
+    return [SourceImage(img.name + "[fit]", a)], [SourceImage(img.name + "[judged]", b)]
+
+
 def _operating_step(img: SourceImage, settings: Settings) -> float:
     """The step the images will be coded at: the settings' own, or, with a target, the step
     that meets it on ``img`` at the default block (targets depend little on the block)."""
@@ -110,8 +123,9 @@ def block_costs(images: list[SourceImage], settings: Settings, total: int | None
     if all(i.channels == 1 for i in sample):
         chromas = chromas[:1]
     step = _operating_step(sample[0], settings)
-    folder = settings.basis_scope == "folder" and len(sample) >= 2
-    fit, judged = (sample[::2], sample[1::2]) if folder else (None, sample)
+    fit, judged = None, sample
+    if settings.basis_scope == "folder":
+        fit, judged = (sample[::2], sample[1::2]) if len(sample) >= 2 else _halves(sample[0])
     out = []
     for chroma in chromas:
         for block in blocks:
@@ -119,7 +133,9 @@ def block_costs(images: list[SourceImage], settings: Settings, total: int | None
             shared, bits = None, 0.0
             if settings.basis_scope == "folder":
                 shared, raw, _ = codec.prepare_shared([image_planes(i, chroma) for i in (fit or sample)], s)
-                bits = 8.0 * len(raw) * len(judged) / total
+                # the judged images' share of the folder, counted in images of the sample's mean size
+                share = sum(i.width * i.height for i in judged) / np.mean([i.width * i.height for i in sample])
+                bits = 8.0 * len(raw) * share / total
             err, pixels = 0.0, 0
             for img in judged:
                 coded = codec.quantise(codec.analyse(image_planes(img, chroma), s, shared), step=step, count=s.count)

@@ -114,6 +114,27 @@ def section_folder_basis():
     return results
 
 
+def section_other_view():
+    print("\n== One view of a scene (scikit-image's stereo_motorcycle): basis fitted on the left view, "
+          "the right view coded with it; BD-rate by PSNR")
+    from workbench import blockchoice
+    from workbench.formats.basisfile import basis_hash
+
+    left, right, _ = data.stereo_motorcycle()
+    fit = SourceImage("left", left)
+    auto, _ = blockchoice.choose_block([fit], Settings(basis_scope="folder"), total=10_000, chromas=("420", "444"))
+    codec = workbench.codecs.get("klt")
+    out = {}
+    for s in (Settings(basis_scope="folder"), auto):
+        basis, raw, _ = codec.prepare_shared([pipeline.image_planes(fit, s.chroma)], s)
+        ours = pipeline.rd_points(SourceImage("right", right), s, STEPS, shared=basis, shared_ref=basis_hash(raw),
+                                  with_ssim=False)
+        out[s.block, s.chroma] = bd = bd_against(right, ours)
+        tag = f"block {s.block} {s.chroma}" + (" (auto)" if s is auto else "")
+        print(f"{tag:20s} " + "  ".join(f"{k} {v:+6.1f}%" for k, v in bd.items()))
+    return out
+
+
 def four_mp():
     return (resize(data.retina(), (2048, 2048), anti_aliasing=True) * 255).round().astype(np.uint8)
 
@@ -216,6 +237,7 @@ def main():
     if not a.speed:
         section_per_image()
         section_folder_basis()
+        section_other_view()
     section_speed(5 if a.quick else 11)
     section_targets(3 if a.quick else 5)
     section_memory()
