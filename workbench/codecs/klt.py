@@ -191,40 +191,42 @@ def rdo_levels(x: np.ndarray, q: np.ndarray, lam: float = RDOQ_LAMBDA) -> np.nda
     at_nz = np.flatnonzero(flat_q[n:]) + n  # component 0 is left alone
     if at_nz.size == 0:
         return q
-    kk, jj = np.divmod(at_nz, n)
-    levels = flat_q[at_nz]
-    sign = np.sign(levels)
-    m = np.abs(levels)
-    a = np.abs(x.reshape(-1)[at_nz])
-    capped = np.minimum(m, _RDOQ_MAGS - 1)
-    hist = np.bincount(kk * _RDOQ_MAGS + capped, minlength=k * _RDOQ_MAGS).reshape(k, _RDOQ_MAGS).astype(np.float64)
+    kk = at_nz // n
+    mag = np.abs(flat_q)
+    m = mag[at_nz]
+    a = np.abs(x.reshape(-1)[at_nz]).astype(np.float32, copy=False)
+    cell = kk * _RDOQ_MAGS + np.minimum(m, _RDOQ_MAGS - 1)  # row-major index into the (K, MAGS) table
+    hist = np.bincount(cell, minlength=k * _RDOQ_MAGS).reshape(k, _RDOQ_MAGS).astype(np.float64)
     hist[:, 0] = n - hist[:, 1:].sum(axis=1)
     hist += 0.5
     bits = -np.log2(hist / hist.sum(axis=1, keepdims=True))
     bits[:, 1:] += 1.0  # the sign
-    lower = m - 1
-    keep = (a - m) ** 2 + lam * bits[kk, capped]
-    drop = (a - lower) ** 2 + lam * bits[kk, np.minimum(lower, _RDOQ_MAGS - 1)]
-    m = np.where(drop < keep, lower, m)
+    table = (lam * bits).astype(np.float32).reshape(-1)
+    mf = m.astype(np.float32)
+    # dropping one level: its cell is the one before, except for capped magnitudes
+    keep = (a - mf) ** 2 + table[cell]
+    drop = (a - mf + 1) ** 2 + table[cell - (m < _RDOQ_MAGS)]
+    mag[at_nz] = np.where(drop < keep, m - 1, m)
     zero_run = np.concatenate([[0.0], np.cumsum(bits[:, 0])])  # zero_run[j]: bits of zeros in 0..j-1
-    order = np.lexsort((kk, jj))  # by patch, then component
+    alive = mag.reshape(k, n) != 0  # finding each patch's last two non-zeros is two argmax passes
+    alive[0] = True
+    cols = np.arange(n)
+    xa = x.reshape(-1)
     for _ in range(2):
-        idx = order[m[order] > 0]
-        if idx.size == 0:
-            break
-        pj, pk = jj[idx], kk[idx]
-        is_last = np.ones(idx.size, bool)
-        is_last[:-1] = pj[:-1] != pj[1:]
-        lasts = np.flatnonzero(is_last)
-        prev = np.zeros(lasts.size, np.int64)  # component of the non-zero before, or 0
-        has_prev = (lasts > 0) & (pj[np.maximum(lasts - 1, 0)] == pj[lasts])
-        prev[has_prev] = pk[lasts[has_prev] - 1]
-        at = idx[lasts]
-        lk, lm, la = kk[at], m[at], a[at]
-        saved = bits[lk, np.minimum(lm, _RDOQ_MAGS - 1)] - bits[lk, 0] + zero_run[lk] - zero_run[prev + 1]
-        added = la ** 2 - (la - lm) ** 2
-        m[at[added < lam * saved]] = 0
-    flat_q[at_nz] = sign * m
+        last = k - 1 - np.argmax(alive[::-1], axis=0)
+        alive[last, cols] = False
+        alive[0] = True
+        prev = k - 1 - np.argmax(alive[::-1], axis=0)  # the non-zero before, or component 0
+        alive[last, cols] = True
+        has = last > 0
+        lk, pk = last[has], prev[has]
+        f = lk * n + cols[has]
+        lm, la = mag[f], np.abs(xa[f])
+        saved = bits[lk, np.minimum(lm, _RDOQ_MAGS - 1)] - bits[lk, 0] + zero_run[lk] - zero_run[pk + 1]
+        kill = (la ** 2 - (la - lm) ** 2) < lam * saved
+        mag[f[kill]] = 0
+        alive.reshape(-1)[f[kill]] = False
+    flat_q[at_nz] = np.sign(flat_q[at_nz]) * mag[at_nz]
     return q
 
 
