@@ -27,8 +27,7 @@ from . import codecs
 from .codecs.klt import RD_LAMBDA
 from .errors import InputError
 from .formats.imagefiles import SourceImage
-from .pipeline import image_planes, plane_quality, planes_to_pixels
-from .ratecontrol import search_step
+from .pipeline import encode, image_planes, planes_to_pixels
 from .settings import BLOCK_SIZES, Settings
 
 SAMPLE = 8
@@ -81,21 +80,11 @@ def _halves(img: SourceImage) -> tuple[list[SourceImage], list[SourceImage]]:
 
 def _operating_step(img: SourceImage, settings: Settings) -> float:
     """The step the images will be coded at: the settings' own, or, with a target, the step
-    that meets it on ``img`` at the default block (targets depend little on the block)."""
+    the encoder's own search finds for it on ``img`` at the settings' block (targets depend
+    little on the block)."""
     if settings.target is None:
         return settings.step
-    codec = codecs.get("klt")
-    s = settings.replace(target=None)
-    a = codec.analyse(image_planes(img, s.chroma), s)
-    kind, value = settings.target
-
-    def evaluate(step):
-        coded = codec.quantise(a, step=step, count=settings.count)
-        if kind == "bpp":
-            return 8 * len(codec.serialise(coded)) / (img.width * img.height)
-        return plane_quality(kind, img, coded.planes, s.chroma)
-
-    return search_step(evaluate, kind, value)[0]
+    return encode([img], settings, measure=False).images[0].step
 
 
 def _count_for(settings: Settings, block: int) -> int | None:

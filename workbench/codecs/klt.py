@@ -182,8 +182,8 @@ def rdo_levels(x: np.ndarray, q: np.ndarray, lam: float = RDOQ_LAMBDA) -> np.nda
     lam * bits(level)``; then, twice, a patch's last non-zero level is set to zero where the
     error that adds is worth less than its bits and those of the zeros coded before it (the
     extent shrinks to the previous non-zero). Component 0 is left alone (the planar
-    predictor codes it). Only the non-zero levels are visited, so the cost follows the rate.
-    Returns ``q`` changed in place (a contiguous copy of it if it was not contiguous).
+    predictor codes it). Level costs are computed for the non-zero levels only; finding each
+    patch's last two non-zeros takes two passes over a (K, N) mask. Returns ``q`` changed in place (a contiguous copy of it if it was not contiguous).
     """
     k, n = q.shape
     q = np.ascontiguousarray(q)
