@@ -155,6 +155,18 @@ def test_quality_sheet_is_saved_from_the_window(qtbot, window, folder, tmp_path)
     assert {p.name for p in out.iterdir()} == {"bundle.wbundle", "sheet.pdf", "sheet.csv", "sheet.json", "recipe.wrecipe"}
 
 
+def test_quality_sheet_after_a_save_reuses_the_saved_bundle(qtbot, window, folder, tmp_path):
+    _open(qtbot, window, folder)
+    saved = tmp_path / "kept.wbundle"
+    with qtbot.waitSignal(window.jobs.finished, timeout=120000):
+        assert window.save_bundle(saved)
+    out = tmp_path / "report"
+    with qtbot.waitSignal(window.jobs.finished, timeout=120000):
+        assert window.save_sheet(out)
+    assert "reused from" in window.status_text.text()
+    assert (out / "bundle.wbundle").read_bytes() == saved.read_bytes()
+
+
 def test_quality_sheet_with_the_conv_encoder_is_saved_from_a_child_process(qtbot, window, tmp_path, chelsea):
     # The sheet's own worker pool then runs inside the child job (a crop of "chelsea").
     _open_with_conv(qtbot, window, tmp_path, chelsea[:64, :96])

@@ -213,3 +213,82 @@ def test_sheet_progress_rises_steadily_and_is_mostly_the_curves(tmp_path, camera
     start_curves = next(p.fraction for p in seen if p.text.startswith("rate"))
     assert start_curves < 0.2  # encoding the bundle is a small share of a sheet's work
     assert sum(p.text.startswith("curves for") for p in seen) == 2
+
+
+def _small_folder(tmp_path, camera, chelsea):
+    """Crops of scikit-image's 'camera' and 'chelsea' (one grey, one colour)."""
+    src = tmp_path / "src"
+    src.mkdir()
+    Image.fromarray(camera[:96, :128]).save(src / "cam.png")
+    Image.fromarray(chelsea[:80, :112]).save(src / "cat.png")
+    return src
+
+
+def test_a_bundle_just_saved_with_the_same_settings_is_reused_not_encoded_again(tmp_path, camera, chelsea,
+                                                                                  monkeypatch, capsys):
+    src = _small_folder(tmp_path, camera, chelsea)
+    saved = tmp_path / "saved.wbundle"
+    assert cli.main(["encode", str(src), "-o", str(saved), "--step", "6"]) == 0
+
+    def no_encode(*a, **k):
+        raise AssertionError("the sheet encoded again")
+
+    monkeypatch.setattr(pipeline, "encode_job", no_encode)
+    out = tmp_path / "out"
+    assert cli.main(["sheet", str(src), "-o", str(out), "--baselines", "jpeg", "--step", "6",
+                     "--reuse", str(saved)]) == 0
+    assert "reused" in capsys.readouterr().out
+    assert (out / "bundle.wbundle").read_bytes() == saved.read_bytes()
+    sheet = json.loads((out / "sheet.json").read_text())
+    assert sheet["bundle"]["reused_from"] == str(saved)
+    # the read-outs still come from the decoded pixels (scikit-image's PSNR as the reference)
+    _, decoded = pipeline.decode(saved.read_bytes())
+    for row, d in zip(sorted(sheet["images"], key=lambda r: r["name"]), sorted(decoded, key=lambda d: d.name)):
+        ref = read_image(src / d.name).pixels
+        assert row["psnr"] == pytest.approx(peak_signal_noise_ratio(ref, d.pixels, data_range=255), abs=1e-9)
+        assert row["step"] == pytest.approx(6.0)
+
+
+def test_a_sheet_rerun_into_its_own_folder_reuses_its_bundle(tmp_path, camera, chelsea):
+    src = _small_folder(tmp_path, camera, chelsea)
+    out = tmp_path / "out"
+    args = ["sheet", str(src), "-o", str(out), "--baselines", "jpeg", "--step", "6"]
+    assert cli.main(args) == 0
+    first = json.loads((out / "sheet.json").read_text())
+    assert first["bundle"]["reused_from"] is None
+    assert cli.main(args) == 0
+    second = json.loads((out / "sheet.json").read_text())
+    assert second["bundle"]["reused_from"] == str(out / "bundle.wbundle")
+    assert second["bundle"]["sha256"] == first["bundle"]["sha256"]
+    assert [r["bytes"] for r in second["images"]] == [r["bytes"] for r in first["images"]]
+
+
+@pytest.mark.parametrize("change", ["settings", "pixels"])
+def test_a_bundle_of_other_settings_or_other_pixels_is_not_reused(tmp_path, camera, chelsea, change):
+    src = _small_folder(tmp_path, camera, chelsea)
+    saved = tmp_path / "saved.wbundle"
+    assert cli.main(["encode", str(src), "-o", str(saved), "--step", "6"]) == 0
+    step = "6"
+    if change == "settings":
+        step = "7"
+    else:
+        px = camera[:96, :128].copy()
+        px[0, 0] ^= 1
+        Image.fromarray(px).save(src / "cam.png")
+    out = tmp_path / "out"
+    assert cli.main(["sheet", str(src), "-o", str(out), "--baselines", "jpeg", "--step", step,
+                     "--reuse", str(saved)]) == 0
+    assert json.loads((out / "sheet.json").read_text())["bundle"]["reused_from"] is None
+
+
+def test_reuse_declines_a_bundle_whose_target_a_new_encode_would_miss(chelsea):
+    from workbench.formats.imagefiles import SourceImage
+    from workbench.settings import Settings
+
+    img = SourceImage("cat.png", chelsea[:96, :128])  # at 4:2:0, far from 60 dB
+    reachable = Settings(target=("psnr", 30.0))
+    data = pipeline.encode([img], reachable).data
+    assert pipeline.reused(data, [img], reachable).images[0].target_met is True
+    beyond = Settings(target=("psnr", 60.0))
+    missed = pipeline.encode([img], beyond).data
+    assert pipeline.reused(missed, [img], beyond) is None  # a new encode gives the advice

@@ -19,6 +19,9 @@ def _sheet(sub):
                    help="comma-separated standard codecs to compare with (default all four)")
     p.add_argument("--require-psnr", type=float, metavar="DB", help="mark images below this PSNR as failing")
     p.add_argument("--require-ssim", type=float, metavar="S", help="mark images below this SSIM as failing")
+    p.add_argument("--reuse", action="append", default=[], metavar="BUNDLE",
+                   help="take the bundle from this file when it was made from the same images with the same "
+                        "settings, instead of encoding again (OUTDIR's own bundle is always checked)")
     _add_codec_options(p)
     p.set_defaults(func=cmd_sheet)
 
@@ -42,8 +45,10 @@ def cmd_sheet(a) -> int:
     sheet = run(sheet_job(images, settings, out, baseline_names=names, require_psnr=a.require_psnr,
                           require_ssim=a.require_ssim, shared=shared, shared_ref=ref, protect=sources,
                           skipped=skipped, measures=(a.measure, list(a.tolerance)) if a.measure else None,
-                          target_measures=a.target_measures), _progress())
+                          target_measures=a.target_measures, reuse=a.reuse), _progress())
     t = sheet["totals"]
+    if sheet["bundle"]["reused_from"]:
+        print(f"reused {sheet['bundle']['reused_from']} (same images, same settings) instead of encoding again")
     print(f"wrote {out}/sheet.pdf, sheet.csv, sheet.json, bundle.wbundle and recipe.wrecipe "
           f"({t['bundle_bytes']:,} bytes for {t['images']} images, {100 * t['saving_vs_raw']:.1f} % smaller than raw)")
     for n, v in sheet["folder"]["bd_rate"].items():

@@ -271,6 +271,59 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
     return EncodeResult(data, settings, results)
 
 
+def reused(data: bytes, images: list[SourceImage], settings: Settings, *, shared=None,
+           shared_ref: str | None = None) -> EncodeResult | None:
+    """What :func:`encode_job` would return for ``images`` at ``settings``, taken from an
+    existing bundle ``data`` made from them (same settings, same names and pixel checksums,
+    same external basis or model); None when it was not, or when it misses its target (a
+    new encode then says why).
+
+    An encode is deterministic, so the bundle is what a new encode would write; this only
+    decodes it.
+    """
+    try:
+        contents = bundle.parse(data)
+    except (BundleError, InputError):
+        return None
+    if contents.settings.to_dict() != settings.to_dict() or contents.basis_ref != shared_ref \
+            or (shared_ref is None) != (contents.basis_ref is None):
+        return None
+    if [(e.name, e.checksum) for e in contents.entries] != [(i.name, i.checksum()) for i in images]:
+        return None
+    codec = codecs.get(settings.method)
+    try:
+        _, decoded = run(decode_job(data, shared=shared, shared_ref=shared_ref))
+    except BundleError:
+        return None
+    results = []
+    for img, e, d in zip(images, contents.entries, decoded):
+        step, kept = codec.payload_header(e.payload)
+        rec = d.pixels if img.alpha is None else d.pixels[..., :-1].reshape(img.pixels.shape)
+        p = metrics.psnr(img.pixels, rec, data_range=img.peak)
+        q = metrics.ssim(img.pixels, rec, data_range=img.peak) if metrics.ssim_applies(img.height, img.width) \
+            else float("nan")
+        met = None
+        if settings.target is not None:
+            kind, value = settings.target
+            if kind == "bpp":
+                reached = 8 * (len(e.payload) + _overhead_bytes(img, settings, shared_ref)) / (img.width * img.height)
+                met = reached <= value
+            else:
+                met = (p if kind == "psnr" else q) >= value
+            if not met:
+                return None
+        results.append(ImageResult(img.name, img.width, img.height, img.bits, img.channels, len(e.payload),
+                                   step, kept, p, q, d.pixels, target_met=met))
+    own = [len(e.payload) + (len(e.alpha) if e.alpha else 0) for e in contents.entries]
+    overhead = len(data) - sum(own)
+    pixels = sum(r.pixels for r in results)
+    for r, b in zip(results, own):
+        r.own_bytes = b
+        r.bytes = b + overhead * r.pixels / pixels
+        r.bpp = 8 * r.bytes / r.pixels
+    return EncodeResult(data, settings, results)
+
+
 LOSSLESS_CHECK_BPP = 4.0  # from this rate on, compare the payload with the source's lossless PNG
 
 

@@ -222,8 +222,13 @@ def _finite(v):
 
 def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline_names=("jpeg", "jpeg2000", "webp", "avif"),
               require_psnr: float | None = None, require_ssim: float | None = None, shared=None, shared_ref=None,
-              protect=None, skipped=(), measures: tuple[str, list[str]] | None = None, target_measures: bool = False):
+              protect=None, skipped=(), measures: tuple[str, list[str]] | None = None, target_measures: bool = False,
+              reuse=()):
     """Generator job writing the bundle and the sheet into ``outdir``; returns the sheet dict.
+
+    A bundle already made from these images with these settings (``outdir``'s own from an
+    earlier sheet, or one of the files in ``reuse``, such as the bundle just saved) is
+    decoded instead of encoded again (:func:`workbench.pipeline.reused`).
 
     ``measures`` is the text of the measurements and tolerances (:func:`workbench.quality.measures.parse`):
     run on every original and reconstruction of the curves, giving each image's safe point;
@@ -241,18 +246,36 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
     at_decode, at_curves = 1.0 * count, 1.3 * count
     at_target = at_curves + CURVE_WEIGHT * count
     total = at_target + (TARGET_WEIGHT * count if searched else 0) + 0.5 * count
-    yield Progress(0, total, "encoding the bundle")
-    result = yield from _scaled(pipeline.encode_job(images, settings, shared=shared, shared_ref=shared_ref,
-                                                    measure=False, measures=chosen if target_measures else None,
-                                                    target_measures=target_measures), 0, at_decode, total)
+    result, reused_from = None, None
+    if not target_measures:
+        for candidate in [outdir / "bundle.wbundle", *map(Path, reuse)]:
+            yield Progress(0, total, f"checking {candidate.name} for reuse")
+            try:
+                data = candidate.read_bytes() if candidate.is_file() else None
+            except OSError:
+                data = None
+            result = None if data is None else pipeline.reused(data, images, settings, shared=shared,
+                                                                shared_ref=shared_ref)
+            if result is not None:
+                reused_from = str(candidate)
+                break
+    if result is None:
+        yield Progress(0, total, "encoding the bundle")
+        result = yield from _scaled(pipeline.encode_job(images, settings, shared=shared, shared_ref=shared_ref,
+                                                        measure=False, measures=chosen if target_measures else None,
+                                                        target_measures=target_measures), 0, at_decode, total)
     digest = hashlib.sha256(result.data).hexdigest()
-    yield Progress(at_decode, total, "decoding the saved bundle")
-    _, decoded = pipeline.decode(result.data, shared=shared, shared_ref=shared_ref)
+    if reused_from is None:
+        yield Progress(at_decode, total, "decoding the saved bundle")
+        _, decoded = pipeline.decode(result.data, shared=shared, shared_ref=shared_ref)
+        fulls = [d.pixels for d in decoded]
+    else:  # reused() decoded it already
+        fulls = [r.reconstruction for r in result.images]
     rows: list[ImageRow] = []
     crops = []
-    for img, enc, dec in zip(images, result.images, decoded):
-        px = dec.pixels[..., : img.pixels.shape[2]] if img.pixels.ndim == 3 else (
-            dec.pixels if dec.pixels.ndim == 2 else dec.pixels[..., 0])
+    for img, enc, full in zip(images, result.images, fulls):
+        px = full[..., : img.pixels.shape[2]] if img.pixels.ndim == 3 else (
+            full if full.ndim == 2 else full[..., 0])
         p = metrics.psnr(img.pixels, px, data_range=img.peak)
         s = metrics.ssim(img.pixels, px, data_range=img.peak) if metrics.ssim_applies(img.height, img.width) else float("nan")
         tiles = metrics.tile_psnr(img.pixels, px, tile=TILE, data_range=img.peak)
@@ -297,7 +320,7 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
         "versions": _versions(),
         "settings": settings.own(),
         "settings_text": settings.describe(),
-        "bundle": {"file": "bundle.wbundle", "bytes": len(result.data), "sha256": digest},
+        "bundle": {"file": "bundle.wbundle", "bytes": len(result.data), "sha256": digest, "reused_from": reused_from},
         "floors": {"psnr": require_psnr, "ssim": require_ssim},
         "totals": {"images": len(rows), "pixels": int(sum(r.width * r.height for r in rows)),
                    "raw_bytes": float(sum(r.width * r.height * (3 if img.channels == 3 else 1) * img.bits / 8

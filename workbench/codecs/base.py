@@ -32,6 +32,9 @@ class Codec(Protocol):
 
     def decode(self, payload: bytes, shapes, settings, shared=None) -> list: ...
 
+    def payload_header(self, payload: bytes) -> tuple[float, int]:
+        """``(step, count)`` a payload was coded with, read from its head alone."""
+
 
 class CodecBase:
     """Defaults for the optional parts of :class:`Codec`."""

@@ -180,6 +180,12 @@ class ConvCodec(CodecBase):
             return _HEAD.pack(c.step_index, c.kept, ADAPTIVE) + adaptive
         return _HEAD.pack(c.step_index, c.kept, LEARNED) + learned
 
+    def payload_header(self, payload: bytes) -> tuple[float, int]:
+        if len(payload) < _HEAD.size:
+            raise BundleError("image payload is truncated")
+        j, kept, _ = _HEAD.unpack_from(payload, 0)
+        return 8.0 * float(2.0 ** (j / 8)), int(kept)
+
     def decode(self, payload: bytes, shapes, settings, shared=None):
         if not isinstance(shared, Model):
             raise BundleError("this bundle needs the conv model it was made with; pass it with --model")

@@ -324,6 +324,12 @@ class KLTCodec(CodecBase):
         return payload_size, (c.step, c.kept, a.inline, tuple(a.means)), extra + [np.moveaxis(g, -1, 0) for g in c.q]
 
     # ---------------------------------------------------------------- decoding
+    def payload_header(self, payload: bytes) -> tuple[float, int]:
+        if len(payload) < _HEAD.size:
+            raise BundleError("image payload is truncated")
+        step, kept, _ = _HEAD.unpack_from(payload, 0)
+        return float(step), int(kept)
+
     def decode(self, payload: bytes, shapes, settings, shared=None) -> list[np.ndarray]:
         """Planes of one image from its payload; ``shapes`` come from the bundle metadata."""
         n_planes = len(shapes)

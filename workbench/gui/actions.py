@@ -52,13 +52,16 @@ class JobActions:
 
                 write_atomic(Path(tag[1]).with_suffix(".wrecipe"), archive.recipe_bytes(recipe),
                              protect=self._protected())
+            self.last_saved_bundle = Path(tag[1])  # a sheet of the same settings reuses it
             self.status_text.setText(f"Saved {tag[1]} ({result.size:,} bytes, {len(result.images)} image(s)) "
                                      "and its recipe")
         elif kind == "open":
             contents, decoded = result
             self._show_bundle(tag[1], contents, decoded)
         elif kind == "sheet":
-            self.status_text.setText(f"Quality sheet written to {tag[1]}")
+            reused = result["bundle"]["reused_from"]
+            self.status_text.setText(f"Quality sheet written to {tag[1]}"
+                                     + (f" (the bundle reused from {reused})" if reused else ""))
         elif kind == "train":
             self._on_trained(tag[1], result)
         elif kind == "block":
@@ -189,14 +192,15 @@ class JobActions:
             return False
         s = self.panel.settings()
         images, outdir, protect = list(self.images), Path(outdir), self._protected()
+        reuse = [p for p in [self.last_saved_bundle] if p is not None]
 
         text = "writing the quality sheet…"
         if remote.handles(s.method):  # torch stays out of this process
             return self._start_job(remote.sheet_job, ("sheet", outdir), text,
-                                   child_args=(images, s, outdir, protect, self.conv_model_file))
+                                   child_args=(images, s, outdir, protect, self.conv_model_file, reuse))
 
         def job():
-            return (yield from sheet.sheet_job(images, s, outdir, protect=protect))
+            return (yield from sheet.sheet_job(images, s, outdir, protect=protect, reuse=reuse))
 
         return self._start_job(job, ("sheet", outdir), text)
 

@@ -181,9 +181,10 @@ def save_job(images, settings: Settings, path: Path, protect, model_file=None):
     return result
 
 
-def sheet_job(images, settings: Settings, outdir: Path, protect, model_file=None):
+def sheet_job(images, settings: Settings, outdir: Path, protect, model_file=None, reuse=()):
     """The quality sheet of ``images`` into ``outdir`` (a job, for a child process)."""
     from .. import sheet
 
     shared, ref = _shared(model_file) if handles(settings.method) else (None, None)
-    return (yield from sheet.sheet_job(images, settings, outdir, shared=shared, shared_ref=ref, protect=protect))
+    return (yield from sheet.sheet_job(images, settings, outdir, shared=shared, shared_ref=ref, protect=protect,
+                                       reuse=reuse))

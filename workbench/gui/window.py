@@ -87,6 +87,7 @@ class MainWindow(PreviewFlow, JobActions, QMainWindow):
         self.session = Session()  # what is open and computed; the window draws it
         self._shown = None  # (orig, rec) arrays on screen
         self._recipes: dict = {}  # bundle path -> recipe, written once the bundle is saved
+        self.last_saved_bundle: Path | None = None  # offered to the quality sheet for reuse
         self._remote = None  # the helper process of the conv encoder (remote.py), on first use
         self._remote_lock = threading.Lock()
 
