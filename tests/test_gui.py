@@ -498,3 +498,25 @@ def test_choosing_the_block_size_sets_the_panel_to_the_lowest_cost_block_and_chr
     s = window.panel.settings()
     assert (s.block, s.chroma) == (expected.block, expected.chroma)
     assert window.status_text.text().startswith(f"Block {expected.block}, chroma {expected.chroma} chosen by")
+
+
+def test_a_wait_over_a_second_says_what_it_waits_for_and_how_far_it_is(qtbot, window, folder, monkeypatch):
+    import threading
+
+    _open(qtbot, window, folder)
+    qtbot.waitUntil(lambda: window.last_numbers is not None, timeout=30000)
+    release, real = threading.Event(), pipeline.encode
+
+    def held(images, s, **kw):  # a search held after its first trial until the test lets it go
+        kw["on_trial"](images[0].name, 1, 8.0, 33.3)
+        release.wait(60)
+        return real(images, s, **kw)
+
+    monkeypatch.setattr(pipeline, "encode", held)
+    window.panel.rate_mode.setCurrentIndex(window.panel.rate_mode.findData("psnr"))
+    window.panel.rate_value.setValue(35.0)
+    qtbot.waitUntil(lambda: "searching the step for the target" in window.waits.showing(), timeout=10000)
+    qtbot.waitUntil(lambda: "trial 1: step 8 gives 33.3 dB" in window.waits.showing(), timeout=10000)
+    release.set()
+    qtbot.waitUntil(lambda: window.waits.showing() == "", timeout=60000)
+    assert window.last_numbers.psnr >= 35.0 - 0.05

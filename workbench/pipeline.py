@@ -155,7 +155,7 @@ def _overhead_bytes(img: SourceImage, settings: Settings, shared_ref: str | None
 
 def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, shared_ref: str | None = None,
                embed: bool = False, measure: bool = True, max_pixels: int = bundle.MAX_PIXELS,
-               measures=None, target_measures: bool = False):
+               measures=None, target_measures: bool = False, on_trial=None):
     """Generator job: encode ``images`` into one bundle.
 
     Parameters
@@ -172,6 +172,9 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
     target_measures : bool
         Search each image's step for the coarsest at which every measurement's checks hold
         (bisection, as for a PSNR target; it assumes the checks fail beyond some step).
+    on_trial : callable, optional
+        Told of each trial of a target search as ``on_trial(name, trial, step, value)``
+        (for progress; it may be called from the job's thread).
 
     Returns
     -------
@@ -219,7 +222,7 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
             def passes(s):
                 rec = planes_to_pixels(at(s).planes, img.pixels.shape[:2], settings.chroma, img.bits)
                 return 1.0 if mref.judge(rec).ok else 0.0
-            step, met = search_step(passes, "pass", 0.5)
+            step, met = search_step(_told(passes, on_trial, img.name), "pass", 0.5)
         elif settings.target is not None:
             kind, value = settings.target
             overhead = 8 * _overhead_bytes(img, settings, shared_ref)
@@ -232,7 +235,7 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
 
                 def evaluate(s, ref=ref):
                     return plane_quality(kind, img, at(s).planes, settings.chroma, ref)
-            step, met = search_step(evaluate, kind, value, start=settings.step)
+            step, met = search_step(_told(evaluate, on_trial, img.name), kind, value, start=settings.step)
         coded = at(step)
         advice = None if met in (None, True) else target_advice(img, settings, evaluate(step), shared)
         payload = serialised(step)
@@ -322,6 +325,22 @@ def reused(data: bytes, images: list[SourceImage], settings: Settings, *, shared
         r.bytes = b + overhead * r.pixels / pixels
         r.bpp = 8 * r.bytes / r.pixels
     return EncodeResult(data, settings, results)
+
+
+def _told(evaluate, on_trial, name):
+    """``evaluate`` reporting each trial to ``on_trial`` (unchanged when that is None)."""
+    if on_trial is None:
+        return evaluate
+    count = 0
+
+    def told(step):
+        nonlocal count
+        value = evaluate(step)
+        count += 1
+        on_trial(name, count, step, value)
+        return value
+
+    return told
 
 
 LOSSLESS_CHECK_BPP = 4.0  # from this rate on, compare the payload with the source's lossless PNG

@@ -215,7 +215,14 @@ class PreviewFlow:
                 n, rec = self._helper().encode_one(img, s, self.conv_model_file)
                 return img, s, n, rec, None
             shared, ref = self._shared_for(s)
-            r = pipeline.encode([img], s, shared=shared, shared_ref=ref).images[0]
+            kind = s.target[0]
+            unit = {"psnr": " dB", "bpp": " bpp"}.get(kind, "")
+
+            def told(_name, trial, step, value):
+                self.waits.detail(self.target_lane, f"trial {trial}: step {step:.3g} "
+                                                    f"gives {value:.4g}{unit}")
+
+            r = pipeline.encode([img], s, shared=shared, shared_ref=ref, on_trial=told).images[0]
             n = preview.Numbers.of(r)
             return img, s, n, r.reconstruction, r.advice
 

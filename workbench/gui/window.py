@@ -24,6 +24,7 @@ from .actions import JobActions
 from .previewing import PreviewFlow
 from .panel import SidePanel
 from .views import Triptych
+from .waiting import WaitIndicator
 from .worker import JobRunner, Lane
 
 ICONS = Path(__file__).resolve().parents[2] / "icons"
@@ -173,6 +174,14 @@ class MainWindow(PreviewFlow, JobActions, QMainWindow):
         self.cancel_button.clicked.connect(self.jobs.cancel)
         sb = self.statusBar()
         sb.addWidget(self.status_text, 1)
+        self.waits = WaitIndicator(self)
+        for lane, text in ((self.fit_lane, "fitting the transform"), (self.preview_lane, "working out the read-outs"),
+                           (self.target_lane, "searching the step for the target"),
+                           (self.render_lane, "drawing the views"), (self.measure_lane, "measuring"),
+                           (self.folder_lane, "reading the folder"), (self.model_lane, "loading the model")):
+            self.waits.watch(lane, text)
+        sb.addPermanentWidget(self.waits.label)
+        sb.addPermanentWidget(self.waits.bar)
         sb.addPermanentWidget(self.progress)
         sb.addPermanentWidget(self.cancel_button)
 
