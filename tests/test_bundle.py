@@ -198,8 +198,25 @@ def test_alpha_survives_every_codec_and_depth_exactly(method, kind, astronaut, c
     assert np.array_equal(out[..., -1], alpha)
 
 
-def test_version_3_bundles_with_the_old_chunk_tags_still_decode(small_bundle):
-    chunks = container.unpack(small_bundle, bundle.MAGIC, (bundle.VERSION,), "b")
-    rename = dict(zip(bundle.TAGS[bundle.VERSION], bundle.TAGS[3]))
-    old = container.pack(bundle.MAGIC, 3, [(rename.get(t, t), b) for t, b in chunks])
-    assert np.array_equal(workbench.decompress(old)["s"], workbench.decompress(small_bundle)["s"])
+@pytest.mark.parametrize("version", [3, 4])
+def test_older_bundles_with_one_stage_tokens_and_old_chunk_tags_still_decode(version, monkeypatch, astronaut):
+    from workbench.codecs import klt
+
+    img = SourceImage("s", astronaut[:64, :80])
+    with monkeypatch.context() as m:  # what the writer of that version wrote
+        m.setattr(klt, "TOKEN_SPLIT", None)
+        m.setattr(bundle, "VERSION", version)
+        if version == 3:
+            m.setitem(bundle.TAGS, 3, (b"IMGD", b"ALFA"))
+        made = pipeline.encode([img], Settings(step=4))
+    old = made.data
+    assert int.from_bytes(old[8:10], "little") == version
+    assert old != pipeline.encode([img], Settings(step=4)).data  # the current format differs
+    assert np.array_equal(workbench.decompress(old)["s"], made.images[0].reconstruction)
+
+
+def test_a_header_version_that_disagrees_with_the_metadata_is_refused(small_bundle):
+    bad = bytearray(small_bundle)
+    bad[8] = 4
+    with pytest.raises(BundleError, match="version"):
+        bundle.parse(bytes(bad))

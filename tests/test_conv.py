@@ -72,6 +72,22 @@ def test_round_trip_equals_in_process_reconstruction(tiny_model, small_images):
     assert out["cam"].ndim == 2 and out["cat"].shape == (96, 128, 3)
 
 
+def test_older_bundles_with_one_stage_adaptive_tokens_still_decode(tiny_model, small_images, monkeypatch):
+    from workbench.codecs import conv
+    from workbench.formats import bundle
+
+    _, model, sha, _ = tiny_model
+    with monkeypatch.context() as m:  # what format 4 wrote, with the adaptive coder chosen
+        m.setattr(conv, "TOKEN_SPLIT", None)
+        m.setattr(bundle, "VERSION", 4)
+        m.setattr(conv.symbols, "encode_fixed", lambda *a: b"\0" * (1 << 20))
+        made = pipeline.encode(small_images, Settings(method="conv", step=8.0), shared=model, shared_ref=sha)
+    assert {e.payload[3] for e in bundle.parse(made.data).entries} == {conv.ADAPTIVE_ONE_STAGE}
+    out = workbench.decompress(made.data, basis=model, basis_ref=sha)
+    for r in made.images:
+        assert np.array_equal(out[r.name], r.reconstruction)
+
+
 def test_embedded_model_travels_with_the_bundle(tiny_model, small_images):
     _, model, sha, _ = tiny_model
     result = pipeline.encode(small_images[:1], Settings(method="conv"), shared=model, shared_ref=sha, embed=True)

@@ -58,37 +58,67 @@ FAMILIES = (("dc", N_DC_CLASSES), ("ext", N_EXT_CLASSES), ("low", N_GROUPS * N_A
 # Every context starts from the same prior: most coefficients are zero or small, and a
 # starting point near that saves each fresh context from learning it symbol by symbol.
 PRIOR = np.array([64, 32, 16, 8, 4, 2])
+SPLIT = 8  # tokens from here on are coded in a second stage (see _Models)
 _AC_CLASS = np.searchsorted(AC_EDGES, np.arange(AC_EDGES[-1] + 1), side="right").astype(np.int32)
 
 
 class _Models:
-    """Adaptive count tables for every context family of every grid kind in one stream."""
+    """Adaptive count tables for every context family of every grid kind in one stream.
 
-    def __init__(self, kinds):
+    With ``split`` a token is coded in two stages: ``min(token, split)`` under a table of
+    ``split + 1`` entries, then, for tokens at or above ``split``, ``token - split`` under a
+    second table of the same context. Most tokens are small, and the coder's work per
+    symbol grows with the size of its table (1.7x faster at 9 entries than at 38, measured
+    with constriction). Without ``split`` (streams of format 4 and before) one table holds
+    every token.
+    """
+
+    def __init__(self, kinds, split: int | None = SPLIT):
         self.offset = {}
         n = 0
         for family, size in FAMILIES:  # family-major, so one call touches one contiguous slice
             for kind in sorted(set(kinds)):
                 self.offset[kind, family] = n
                 n += size
-        self.counts = np.ones((n, ALPHABET), dtype=np.int64)
+        self.split = split
+        width = ALPHABET if split is None else split + 1
+        self.counts = np.ones((n, width), dtype=np.int64)
         self.counts[:, :PRIOR.size] = PRIOR
+        if split is not None:
+            self.counts[:, split] = ALPHABET - split  # the escape starts as the tokens it stands for
+            self.tail = np.ones((n, ALPHABET - split), dtype=np.int64)
+            self._tail_probs = self.tail.astype(np.float32)
         self._probs = self.counts.astype(np.float32)
 
     def probabilities(self, ctx: np.ndarray) -> np.ndarray:
         return self._probs[ctx]
 
+    def tail_probabilities(self, ctx: np.ndarray) -> np.ndarray:
+        return self._tail_probs[ctx]
+
     def update(self, ctx: np.ndarray, tok: np.ndarray) -> None:
-        # Only the rows between the smallest and largest context are touched: each call
-        # draws on one or two families, a small slice of the table.
-        lo, hi = int(ctx.min()), int(ctx.max()) + 1
-        counts = self.counts[lo:hi]
-        counts += INCREMENT * np.bincount((ctx - lo) * ALPHABET + tok, minlength=(hi - lo) * ALPHABET).reshape(-1, ALPHABET)
-        over = counts.sum(axis=1) > COUNT_LIMIT
-        while over.any():  # one call may add many symbols; halve until every row is back in range
-            counts[over] = (counts[over] + 1) // 2
-            over = counts.sum(axis=1) > COUNT_LIMIT
-        self._probs[lo:hi] = counts  # exact in float32: every count is below 2**17
+        if self.split is None:
+            _add(self.counts, self._probs, ctx, tok)
+            return
+        _add(self.counts, self._probs, ctx, np.minimum(tok, self.split))
+        big = tok >= self.split
+        if big.any():
+            _add(self.tail, self._tail_probs, ctx[big], tok[big] - self.split)
+
+
+def _add(counts: np.ndarray, probs: np.ndarray, ctx: np.ndarray, tok: np.ndarray) -> None:
+    """Count ``tok`` under ``ctx``, halving rows past COUNT_LIMIT; ``probs`` mirrors ``counts``."""
+    # Only the rows between the smallest and largest context are touched: each call
+    # draws on one or two families, a small slice of the table.
+    width = counts.shape[1]
+    lo, hi = int(ctx.min()), int(ctx.max()) + 1
+    rows = counts[lo:hi]
+    rows += INCREMENT * np.bincount((ctx - lo) * width + tok, minlength=(hi - lo) * width).reshape(-1, width)
+    over = rows.sum(axis=1) > COUNT_LIMIT
+    while over.any():  # one call may add many symbols; halve until every row is back in range
+        rows[over] = (rows[over] + 1) // 2
+        over = rows.sum(axis=1) > COUNT_LIMIT
+    probs[lo:hi] = rows  # exact in float32: every count is below 2**17
 
 
 def _bands(rows: int) -> list[tuple[int, int]]:
@@ -325,7 +355,7 @@ def _check_kinds(shapes, kinds):
         raise ValueError(f"need one kind per grid, got {len(kinds)} kinds for {len(shapes)} grids")
 
 
-def encode_grids(grids: list[np.ndarray], kinds: list[int]) -> bytes:
+def encode_grids(grids: list[np.ndarray], kinds: list[int], split: int | None = SPLIT) -> bytes:
     """Entropy-code coefficient grids.
 
     Parameters
@@ -335,6 +365,9 @@ def encode_grids(grids: list[np.ndarray], kinds: list[int]) -> bytes:
     kinds : list of int
         Model family of each grid (0 luma/grey, 1 chroma, 2 basis vectors): grids of one
         kind share adaptive models, so Cr learns from what Cb taught them.
+    split : int or None
+        Tokens from here on are coded in a second stage (:class:`_Models`); None for the
+        one-stage streams of older files.
 
     Returns
     -------
@@ -347,16 +380,18 @@ def encode_grids(grids: list[np.ndarray], kinds: list[int]) -> bytes:
         if q.ndim != 3 or q.shape[2] < 1:
             raise ValueError(f"coefficient grid must be 3-D with at least one component, got shape {q.shape}")
     _check_kinds(qs, kinds)
-    models = _Models(kinds)
+    models = _Models(kinds, split)
     w = Writer()
     _traverse([_Grid(q.shape, kind, models, q) for q, kind in zip(qs, kinds)], models, _Encoding(w))
     return w.finish()
 
 
-def decode_grids(data: bytes, shapes: list[tuple[int, int, int]], kinds: list[int]) -> list[np.ndarray]:
-    """Inverse of :func:`encode_grids`; ``shapes`` and ``kinds`` come from the bundle metadata."""
+def decode_grids(data: bytes, shapes: list[tuple[int, int, int]], kinds: list[int],
+                 split: int | None = SPLIT) -> list[np.ndarray]:
+    """Inverse of :func:`encode_grids`; ``shapes`` and ``kinds`` come from the bundle metadata,
+    ``split`` from the payload."""
     _check_kinds(shapes, kinds)
-    models = _Models(kinds)
+    models = _Models(kinds, split)
     grids = [_Grid(tuple(s), kind, models) for s, kind in zip(shapes, kinds)]
     _traverse(grids, models, _Decoding(Reader(data)))
     return [np.moveaxis(g.q, 0, -1) for g in grids]  # (rows, cols, K) views

@@ -11,8 +11,9 @@ the default step and the rate-control range of the KLT meaningful here.
 Only the first ``kept`` latent channels are coded (nested-dropout order). Two coders
 are tried and the smaller stream is kept (the byte says which): 0, the model's own
 learned per-channel tables (integers stored in the model file, so decoding elsewhere
-gives the same latents); 1, the adaptive context coder of the KLT
-(:mod:`workbench.codecs.coefcode`), which also exploits spatial context. The pixels then come
+gives the same latents); 2, the adaptive context coder of the KLT
+(:mod:`workbench.codecs.coefcode`), which also exploits spatial context (1: the same with
+its tokens in one stage, as older files have it). The pixels then come
 from the same torch decoder.
 The model works on full-resolution Y, Cb, Cr planes scaled to [0, 1] (grey images: Y
 with neutral chroma; only Y is kept on decoding).
@@ -34,7 +35,8 @@ from .base import CodecBase
 
 DEFAULT_MODEL = Path(__file__).resolve().parents[1] / "models" / "default.wmodel"
 _HEAD = struct.Struct("<bHB")
-LEARNED, ADAPTIVE = 0, 1
+LEARNED, ADAPTIVE, ADAPTIVE_ONE_STAGE = 0, 2, 1  # 1: the adaptive coder's tokens in one stage (older files)
+TOKEN_SPLIT = coefcode.SPLIT  # what this version writes
 STEP_INDEX_RANGE = (-64, 64)
 
 
@@ -175,9 +177,10 @@ class ConvCodec(CodecBase):
         m = c.analysis.model.data
         counts = [m.counts(ch, c.step_index) for ch in range(c.kept)]
         learned = symbols.encode_fixed(list(c.q), counts)
-        adaptive = coefcode.encode_grids([np.ascontiguousarray(c.q.transpose(1, 2, 0))], [3])
+        adaptive = coefcode.encode_grids([np.ascontiguousarray(c.q.transpose(1, 2, 0))], [3], TOKEN_SPLIT)
         if len(adaptive) < len(learned):
-            return _HEAD.pack(c.step_index, c.kept, ADAPTIVE) + adaptive
+            coder = ADAPTIVE if TOKEN_SPLIT is not None else ADAPTIVE_ONE_STAGE
+            return _HEAD.pack(c.step_index, c.kept, coder) + adaptive
         return _HEAD.pack(c.step_index, c.kept, LEARNED) + learned
 
     def payload_header(self, payload: bytes) -> tuple[float, int]:
@@ -193,15 +196,16 @@ class ConvCodec(CodecBase):
             raise BundleError("image payload is truncated")
         j, kept, coder = _HEAD.unpack_from(payload, 0)
         if not (STEP_INDEX_RANGE[0] <= j <= STEP_INDEX_RANGE[1]) or not (1 <= kept <= shared.channels) \
-                or coder not in (LEARNED, ADAPTIVE):
+                or coder not in (LEARNED, ADAPTIVE, ADAPTIVE_ONE_STAGE):
             raise BundleError(f"image payload has invalid step index {j}, channel count {kept} or coder {coder}")
         from .conv_model import STRIDE
 
         h, w = shapes[0]
         lh, lw = -(-h // STRIDE), -(-w // STRIDE)
         body = payload[_HEAD.size:]
-        if coder == ADAPTIVE:
-            q = coefcode.decode_grids(body, [(lh, lw, kept)], [3])[0].transpose(2, 0, 1)
+        if coder != LEARNED:
+            split = coefcode.SPLIT if coder == ADAPTIVE else None
+            q = coefcode.decode_grids(body, [(lh, lw, kept)], [3], split)[0].transpose(2, 0, 1)
         else:
             counts = [shared.data.counts(ch, j) for ch in range(kept)]
             q = np.stack(symbols.decode_fixed(body, [lh * lw] * kept, counts)).reshape(kept, lh, lw)

@@ -2,9 +2,12 @@
 
 Per image payload (little-endian)::
 
-    step f32 | kept u16 | inline u8 | plane means i16 x planes
+    step f32 | kept u16 | flags u8 | plane means i16 x planes
     [inline basis: precision u8 x kept | u32 length | vector stream]
     coefficient stream (see :mod:`workbench.codecs.coefcode`)
+
+``flags``: bit 0 an inline basis follows, bit 1 tokens are coded in two stages (always set
+by this version; files without it decode as before).
 
 ``kept`` is the number of leading components that carry any non-zero coefficient in this
 image (at most the requested count): trailing all-zero components cost neither basis
@@ -26,6 +29,8 @@ from ..errors import BundleError
 from .base import CodecBase
 
 _HEAD = struct.Struct("<fHB")
+TWO_STAGE = 2  # payload flag: tokens in two stages
+TOKEN_SPLIT = coefcode.SPLIT  # what this version writes (None: one stage, as format 4 and before)
 MAX_STEP = 1e5
 
 
@@ -150,11 +155,12 @@ def rd_kept(q: list[np.ndarray], bits: np.ndarray | None, n: int) -> int:
 
 def payload(step, kept, inline, means, ints, bits, q) -> bytes:
     """The image payload (layout in the module docstring) of grids ``q`` (rows, cols, K)."""
-    parts = [_HEAD.pack(step, kept, int(inline)), struct.pack(f"<{len(means)}h", *means)]
+    flags = int(inline) | (TWO_STAGE if TOKEN_SPLIT is not None else 0)
+    parts = [_HEAD.pack(step, kept, flags), struct.pack(f"<{len(means)}h", *means)]
     if inline:
-        vec = coefcode.encode_grids([ints.reshape(1, kept, -1)], [2])
+        vec = coefcode.encode_grids([ints.reshape(1, kept, -1)], [2], TOKEN_SPLIT)
         parts += [bits.astype(np.uint8).tobytes(), struct.pack("<I", len(vec)), vec]
-    parts.append(coefcode.encode_grids(q, [0] + [1] * (len(q) - 1)))
+    parts.append(coefcode.encode_grids(q, [0] + [1] * (len(q) - 1), TOKEN_SPLIT))
     return b"".join(parts)
 
 
@@ -337,11 +343,14 @@ class KLTCodec(CodecBase):
         pos = _HEAD.size + 2 * n_planes
         if len(payload) < pos:
             raise BundleError("image payload is truncated")
-        step, kept, inline = _HEAD.unpack_from(payload, 0)
+        step, kept, flags = _HEAD.unpack_from(payload, 0)
         means = struct.unpack_from(f"<{n_planes}h", payload, _HEAD.size)
         if not (np.isfinite(step) and 0 < step <= MAX_STEP):
             raise BundleError(f"image payload has an invalid step {step!r}")
-        if not 1 <= kept <= settings.kept or inline not in (0, 1):
+        if flags > (1 | TWO_STAGE):
+            raise BundleError(f"image payload has unknown flags {flags}")
+        inline, split = flags & 1, (coefcode.SPLIT if flags & TWO_STAGE else None)
+        if not 1 <= kept <= settings.kept:
             raise BundleError(f"image payload claims {kept} components (settings allow {settings.kept})")
         if inline:
             if len(payload) < pos + kept + 4:
@@ -353,7 +362,7 @@ class KLTCodec(CodecBase):
             pos += kept + 4
             if pos + vlen > len(payload):
                 raise BundleError("image payload is truncated in its basis")
-            ints = coefcode.decode_grids(payload[pos : pos + vlen], [(1, kept, n)], [2])[0].reshape(kept, n)
+            ints = coefcode.decode_grids(payload[pos : pos + vlen], [(1, kept, n)], [2], split)[0].reshape(kept, n)
             pos += vlen
             synthesis = klt_basis.dequantise_vectors(ints, bits)
         else:
@@ -364,7 +373,7 @@ class KLTCodec(CodecBase):
             synthesis = shared.vectors[:, :kept].T
         grid = [tiling.grid_shape(s, block) + (kept,) for s in shapes]
         kinds = [0] + [1] * (n_planes - 1)
-        q = coefcode.decode_grids(payload[pos:], grid, kinds)
+        q = coefcode.decode_grids(payload[pos:], grid, kinds, split)
         return synthesise(q, synthesis, float(step), means, shapes, block)
 
 

@@ -42,13 +42,20 @@ class Writer:
         self.raw: list[np.ndarray] = []
 
     def put(self, models, ctx: np.ndarray, values: np.ndarray, n_signed: int | None = None) -> None:
-        """Code ``values`` under the contexts ``ctx`` of adaptive ``models`` (``probabilities(ctx)``
-        and ``update(ctx, tokens)``, as :class:`workbench.codecs.coefcode._Models`); the first ``n_signed`` (all by default)
-        carry a sign, the rest are magnitudes."""
+        """Code ``values`` under the contexts ``ctx`` of adaptive ``models`` (``probabilities(ctx)``,
+        ``update(ctx, tokens)`` and, where ``models.split`` is set, ``tail_probabilities(ctx)`` for
+        the tokens from ``split`` on, as :class:`workbench.codecs.coefcode._Models`); the first
+        ``n_signed`` (all by default) carry a sign, the rest are magnitudes."""
         mag = np.abs(values)
         tok, nbits = _tokens(mag)
         if tok.size:
-            self.enc.encode(tok.astype(np.int32), _FAMILY, models.probabilities(ctx))
+            split = models.split
+            head = tok if split is None else np.minimum(tok, split)
+            self.enc.encode(head.astype(np.int32), _FAMILY, models.probabilities(ctx))
+            if split is not None:
+                big = tok >= split
+                if big.any():
+                    self.enc.encode((tok[big] - split).astype(np.int32), _FAMILY, models.tail_probabilities(ctx[big]))
             models.update(ctx, tok)
         signed = values if n_signed is None else values[:n_signed]
         self.raw.append((signed[signed != 0] < 0).astype(np.uint8))
@@ -108,6 +115,11 @@ class Reader:
             return np.zeros(0, np.int64)
         try:
             tok = np.asarray(self.dec.decode(_FAMILY, models.probabilities(ctx)), dtype=np.int64)
+            split = models.split
+            if split is not None:
+                big = np.flatnonzero(tok == split)
+                if big.size:
+                    tok[big] += np.asarray(self.dec.decode(_FAMILY, models.tail_probabilities(ctx[big])), dtype=np.int64)
         except Exception as exc:
             raise BundleError(f"coefficient stream is not decodable ({exc})") from None
         models.update(ctx, tok)

@@ -26,9 +26,10 @@ from .names import name_problem
 from ..settings import Settings
 
 MAGIC = b"WKBUNDLE"
-VERSION = 4  # 2: coefficient streams coded in lockstep (coefcode); 3: first pass as a row hierarchy; 4: chunk tags
+VERSION = 5  # 2: coefficient streams coded in lockstep (coefcode); 3: first pass as a row hierarchy; 4: chunk tags;
+# 5: tokens in two stages (each payload says which way it was coded, so 3 and 4 still decode)
 # (image payload, alpha) chunk tags by version
-TAGS = {3: (b"IMGD", b"ALFA"), 4: (b"CODE", b"OPAQ")}
+TAGS = {3: (b"IMGD", b"ALFA"), 4: (b"CODE", b"OPAQ"), 5: (b"CODE", b"OPAQ")}
 MAX_SIDE = 65536
 MAX_IMAGE_PIXELS = 1 << 27  # one image
 MAX_PIXELS = 1 << 28  # default budget for all images of one bundle together (raise it per call)
@@ -129,7 +130,8 @@ def parse(data: bytes, *, max_pixels: int = MAX_PIXELS) -> Contents:
     from it, and the declared pixels are held to ``max_pixels`` (see :func:`check_images`).
     """
     chunks = container.unpack(data, MAGIC, tuple(TAGS), "workbench bundle")
-    image_tag, alpha_tag = TAGS[int.from_bytes(bytes(data[8:10]), "little")]
+    version = int.from_bytes(bytes(data[8:10]), "little")
+    image_tag, alpha_tag = TAGS[version]
     if not chunks or chunks[0][0] != b"META":
         raise BundleError("bundle has no metadata chunk")
     meta = container.unpack_json(chunks[0][1], "bundle")
@@ -138,6 +140,8 @@ def parse(data: bytes, *, max_pixels: int = MAX_PIXELS) -> Contents:
     unknown = set(meta) - _TOP_KEYS
     if unknown:
         raise BundleError(f"bundle metadata has unknown fields {sorted(unknown)[:5]}")
+    if meta.get("version") != version:  # the metadata's copy is under a CRC, the header's is not
+        raise BundleError(f"bundle metadata says version {meta.get('version')!r}, its header {version}")
     try:
         settings = Settings.from_dict(_field(meta, "settings", dict, "bundle"))
     except InputError as exc:
