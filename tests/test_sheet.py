@@ -157,8 +157,11 @@ def test_ctrl_c_ends_a_sheet_with_one_line_no_outputs_and_no_children(tmp_path, 
     for i in range(6):
         Image.fromarray(np.roll(big, 61 * i, axis=0)).save(src / f"f{i}.png")
     out = tmp_path / "o"
+    # A terminal's default Ctrl-C, even where this suite itself was started in the background
+    # (a shell's background job inherits SIGINT ignored, and Python then leaves it ignored).
     proc = subprocess.Popen([sys.executable, "-m", "workbench", "sheet", str(src), "-o", str(out)],
-                            stderr=subprocess.PIPE, text=True, start_new_session=True)
+                            stderr=subprocess.PIPE, text=True, start_new_session=True,
+                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
     time.sleep(6)  # past the start, into encoding or the curves' worker pool
     os.killpg(proc.pid, signal.SIGINT)  # as a terminal's Ctrl-C does: the whole process group
     err = proc.communicate(timeout=120)[1]
