@@ -263,13 +263,7 @@ def encode_job(images: list[SourceImage], settings: Settings, *, shared=None, sh
         alphas.append(None if img.alpha is None else encode_alpha(img.alpha))
     data = bundle.assemble(_meta(settings, images, shared_ref), shared_bytes, payloads, alphas)
     bundle.parse(data, max_pixels=max_pixels)  # the decoder's own reading, before anyone writes the bytes
-    own = [len(p) + (len(a) if a else 0) for p, a in zip(payloads, alphas)]
-    overhead = len(data) - sum(own)
-    pixels = sum(r.pixels for r in results)
-    for r, b in zip(results, own):
-        r.own_bytes = b
-        r.bytes = b + overhead * r.pixels / pixels
-        r.bpp = 8 * r.bytes / r.pixels
+    _share_bytes(results, [len(p) + (len(a) if a else 0) for p, a in zip(payloads, alphas)], len(data))
     yield Progress(total, total, "done")
     return EncodeResult(data, settings, results)
 
@@ -288,8 +282,7 @@ def reused(data: bytes, images: list[SourceImage], settings: Settings, *, shared
         contents = bundle.parse(data)
     except (BundleError, InputError):
         return None
-    if contents.settings.to_dict() != settings.to_dict() or contents.basis_ref != shared_ref \
-            or (shared_ref is None) != (contents.basis_ref is None):
+    if contents.settings.to_dict() != settings.to_dict() or contents.basis_ref != shared_ref:
         return None
     if [(e.name, e.checksum) for e in contents.entries] != [(i.name, i.checksum()) for i in images]:
         return None
@@ -317,14 +310,18 @@ def reused(data: bytes, images: list[SourceImage], settings: Settings, *, shared
                 return None
         results.append(ImageResult(img.name, img.width, img.height, img.bits, img.channels, len(e.payload),
                                    step, kept, p, q, d.pixels, target_met=met))
-    own = [len(e.payload) + (len(e.alpha) if e.alpha else 0) for e in contents.entries]
-    overhead = len(data) - sum(own)
+    _share_bytes(results, [len(e.payload) + (len(e.alpha) if e.alpha else 0) for e in contents.entries], len(data))
+    return EncodeResult(data, settings, results)
+
+
+def _share_bytes(results: list[ImageResult], own: list[int], size: int) -> None:
+    """Each result's own bytes, and its rate with the bundle's shared bytes split by pixels."""
+    overhead = size - sum(own)
     pixels = sum(r.pixels for r in results)
     for r, b in zip(results, own):
         r.own_bytes = b
         r.bytes = b + overhead * r.pixels / pixels
         r.bpp = 8 * r.bytes / r.pixels
-    return EncodeResult(data, settings, results)
 
 
 def _told(evaluate, on_trial, name):
