@@ -29,7 +29,8 @@ def small_images():
 @pytest.fixture(scope="module")
 def tiny_model(tmp_path_factory, small_images):
     path = tmp_path_factory.mktemp("m") / "tiny.wmodel"
-    record = run(train_job(small_images, path, TrainConfig(latent=8, hidden=16, max_steps=20, seed=3)))
+    cfg = TrainConfig(latent=8, hidden=16, side=0, side_hidden=0, max_steps=20, seed=3)
+    record = run(train_job(small_images, path, cfg))
     model, sha = get("conv").load_model(path)
     return path, model, sha, record
 
@@ -137,7 +138,7 @@ def test_weights_that_are_not_plain_tensors_are_refused(tiny_model):
 
 def test_training_for_a_handful_of_steps_lowers_the_loss(small_images, tmp_path):
     # Loss = rate + lambda * distortion on fixed validation crops, before and after 30 steps.
-    cfg = TrainConfig(latent=8, hidden=16, max_steps=30, seed=5, lam=0.01)
+    cfg = TrainConfig(latent=8, hidden=16, side=0, side_hidden=0, max_steps=30, seed=5, lam=0.01)
     rec = run(train_job(small_images, tmp_path / "m.wmodel", cfg))
     first, last = rec["history"][0], rec["history"][-1]
 
@@ -148,21 +149,22 @@ def test_training_for_a_handful_of_steps_lowers_the_loss(small_images, tmp_path)
 
 
 def test_training_is_deterministic_with_a_seed(small_images, tmp_path):
-    cfg = TrainConfig(latent=4, hidden=8, max_steps=4, seed=9)
+    cfg = TrainConfig(latent=4, hidden=8, side=0, side_hidden=0, max_steps=4, seed=9)
     a = run(train_job(small_images, tmp_path / "a.wmodel", cfg))
     b = run(train_job(small_images, tmp_path / "b.wmodel", cfg))
     assert a["sha256"] == b["sha256"]
 
 
 def test_resume_continues_from_the_checkpoint(small_images, tmp_path):
-    cfg = TrainConfig(latent=4, hidden=8, max_steps=3, seed=2)
+    cfg = TrainConfig(latent=4, hidden=8, side=0, side_hidden=0, max_steps=3, seed=2)
     run(train_job(small_images, tmp_path / "r.wmodel", cfg))
     again = run(train_job(small_images, tmp_path / "r.wmodel", cfg, resume=True))
     assert again["steps"] == 6 and (tmp_path / "r.wmodel.state").exists()
 
 
 def test_a_stopped_training_still_leaves_a_usable_model(small_images, tmp_path):
-    job = train_job(small_images, tmp_path / "s.wmodel", TrainConfig(latent=4, hidden=8, max_steps=50))
+    cfg = TrainConfig(latent=4, hidden=8, side=0, side_hidden=0, max_steps=50)
+    job = train_job(small_images, tmp_path / "s.wmodel", cfg)
     for _ in range(5):
         next(job)
     job.close()  # what Cancel and Ctrl-C do

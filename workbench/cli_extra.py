@@ -76,8 +76,10 @@ def _train(sub):
     p = sub.add_parser("train", help="train the conv encoder on a folder (CPU)")
     p.add_argument("inputs", nargs="+", metavar="INPUT")
     p.add_argument("-o", "--output", required=True, metavar="MODEL.wmodel")
-    p.add_argument("--latent", type=int, default=96, metavar="C", help="latent channels (default 96)")
+    p.add_argument("--latent", type=int, default=192, metavar="C", help="latent channels (default 192)")
     p.add_argument("--hidden", type=int, default=64, help="channels inside the network (default 64)")
+    p.add_argument("--side", type=int, default=48, metavar="S",
+                   help="side-latent channels of the hyperprior entropy model, 0 for none (default 48)")
     p.add_argument("--distortion-weight", dest="lam", type=float, default=0.08, metavar="W",
                    help="weight of distortion against rate: larger = higher quality (default 0.08)")
     p.add_argument("--minutes", type=float, default=10.0, metavar="M", help="training time budget (default 10)")
@@ -95,8 +97,8 @@ def cmd_train(a) -> int:
     from .jobs import run
     from .training import TrainConfig, train_job
 
-    if not (1 <= a.latent <= 1024 and 1 <= a.hidden <= 1024):
-        raise InputError("--latent and --hidden must be between 1 and 1024")
+    if not (1 <= a.latent <= 1024 and 1 <= a.hidden <= 1024 and 0 <= a.side <= 1024):
+        raise InputError("--latent and --hidden must be between 1 and 1024, --side between 0 and 1024")
     if not (a.lam > 0 and a.minutes > 0):
         raise InputError("--distortion-weight and --minutes must be positive")
     out = Path(a.output)
@@ -104,8 +106,8 @@ def cmd_train(a) -> int:
         raise InputError(f"{out}: refusing to overwrite a source image")
     images, _ = _read_inputs(a.inputs)
     start = None if a.start_from == "none" else a.start_from
-    cfg = TrainConfig(latent=a.latent, hidden=a.hidden, lam=a.lam, minutes=a.minutes, seed=a.seed,
-                      max_steps=a.steps, start_from=start)
+    cfg = TrainConfig(latent=a.latent, hidden=a.hidden, side=a.side, side_hidden=a.hidden if a.side else 0,
+                      lam=a.lam, minutes=a.minutes, seed=a.seed, max_steps=a.steps, start_from=start)
     r = run(train_job(images, out, cfg, resume=a.resume), _progress())
     last = r["history"][-1]
     print(f"wrote {out} after {r['steps']} steps (held-out {last['heldout_psnr']:.2f} dB at {last['heldout_bpp']:.3f} bpp), "

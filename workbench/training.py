@@ -29,8 +29,12 @@ WARMUP = 300
 
 @dataclass(frozen=True)
 class TrainConfig:
-    latent: int = 96
+    # The defaults are the shipped model's architecture, so fine-tuning starts from it.
+    latent: int = 192
     hidden: int = 64
+    side: int = 48  # hyperprior side-latent channels (0: a per-channel factorized entropy model)
+    side_hidden: int = 64
+    crop: int = CROP  # training crops' side in pixels
     lam: float = 0.08
     minutes: float = 10.0
     seed: int = 0
@@ -47,13 +51,13 @@ def _planes01(img: SourceImage) -> np.ndarray:
     return (np.stack(planes) / 255.0).astype(np.float32)
 
 
-def _crop(rng, x):
+def _crop(rng, x, size: int = CROP):
     _, h, w = x.shape
-    if h < CROP or w < CROP:
-        x = np.pad(x, ((0, 0), (0, max(0, CROP - h)), (0, max(0, CROP - w))), mode="edge")
+    if h < size or w < size:
+        x = np.pad(x, ((0, 0), (0, max(0, size - h)), (0, max(0, size - w))), mode="edge")
         _, h, w = x.shape
-    y0, x0 = rng.integers(0, h - CROP + 1), rng.integers(0, w - CROP + 1)
-    c = x[:, y0:y0 + CROP, x0:x0 + CROP]
+    y0, x0 = rng.integers(0, h - size + 1), rng.integers(0, w - size + 1)
+    c = x[:, y0:y0 + size, x0:x0 + size]
     if rng.random() < 0.5:
         c = c[:, :, ::-1]
     if rng.random() < 0.5:
@@ -124,9 +128,10 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
     train = [d for i, d in enumerate(data) if i not in val_idx] or data
     val_src = [d for i, d in enumerate(data) if i in val_idx] or data
     vrng = np.random.default_rng(config.seed + 1)
-    val = torch.from_numpy(np.stack([_crop(vrng, val_src[i % len(val_src)]) for i in range(VAL_CROPS)]))
+    val = torch.from_numpy(np.stack([_crop(vrng, val_src[i % len(val_src)], config.crop)
+                                    for i in range(VAL_CROPS)]))
 
-    net = conv_model.Autoencoder(conv_model.Arch(config.hidden, config.latent))
+    net = conv_model.Autoencoder(conv_model.Arch(config.hidden, config.latent, config.side, config.side_hidden))
     started_from = None
     if config.start_from and not (resume and out.exists()):
         # Fine-tuning a model that already knows images converges far faster on a CPU
@@ -138,6 +143,12 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
             base = Model(read_model(src))
             if base.arch == net.arch:
                 net.load_state_dict(base.net.state_dict())
+                started_from = base.sha256
+            elif base.arch.hidden == net.arch.hidden and base.arch.latent <= net.arch.latent:
+                # A wider model (more latents, or a hyperprior added) starts as the smaller
+                # one where they overlap and as the KLT of the training data elsewhere.
+                net.init_from_klt(_klt_patches(train, rng))
+                _graft(net, base.net.state_dict())
                 started_from = base.sha256
             elif config.start_from != "shipped":
                 raise InputError(f"{src}: its architecture {base.arch} differs from the one asked for {net.arch}")
@@ -185,10 +196,14 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
             x_hat = net.decoder(q).clamp(0, 1)
             mse = float(torch.mean((x_hat - val) ** 2))
             keep = torch.ones(1, config.latent, 1, 1)
-            bits = float(net.likelihood_bits(q, torch.ones(1, 1, 1, 1), keep).sum())
+            one = torch.ones(1, 1, 1, 1)
+            if config.side:
+                bits = float(net.hyper_bits(y, q, one, keep, None).sum())
+            else:
+                bits = float(net.likelihood_bits(q, one, keep).sum())
         net.train()
         psnr = 10 * np.log10(1.0 / max(mse, 1e-12))
-        bpp = bits / (val.shape[0] * CROP * CROP)
+        bpp = bits / (val.shape[0] * config.crop ** 2)
         history.append({"step": step, "heldout_psnr": round(psnr, 3), "heldout_bpp": round(bpp, 4)})
         return psnr, bpp
 
@@ -205,7 +220,8 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
             warm = min(1.0, (step - step0 + 1) / WARMUP)
             for g in opt.param_groups:
                 g["lr"] = config.lr * g["scale"] * warm * (0.1 + 0.45 * (1 + np.cos(np.pi * frac)))
-            batch = torch.from_numpy(np.stack([_crop(rng, train[rng.integers(len(train))]) for _ in range(BATCH)]))
+            batch = torch.from_numpy(np.stack([_crop(rng, train[rng.integers(len(train))], config.crop)
+                                              for _ in range(BATCH)]))
             loss, b, mse = conv_model.train_step(net, batch, config.lam, gen)
             opt.zero_grad()
             if torch.isfinite(loss):
@@ -232,6 +248,19 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
     return {"model": str(out), "sha256": sha, "steps": step, "history": history}
 
 
+def _graft(net, state: dict) -> None:
+    """Copy ``state`` into ``net`` where names match, each tensor into the leading corner of
+    the larger one (the first latents of a wider model)."""
+    import torch
+
+    own = net.state_dict()
+    with torch.no_grad():
+        for k, v in state.items():
+            if k in own and own[k].dim() == v.dim() and all(a >= b for a, b in zip(own[k].shape, v.shape)):
+                own[k][tuple(slice(0, n) for n in v.shape)].copy_(v)
+    net.load_state_dict(own)
+
+
 def _info(config, step, history, images):
-    return {"steps": step, "lambda": config.lam, "seed": config.seed, "crop": CROP, "batch": BATCH,
+    return {"steps": step, "lambda": config.lam, "seed": config.seed, "crop": config.crop, "batch": BATCH,
             "history": history[-200:], "images": [i.name for i in images][:500]}

@@ -4,6 +4,12 @@ Per image payload::
 
     step index i8 (latent quantiser step 2**(i/8)) | kept u16 | coder u8 | latent stream
 
+and, for a model with a hyperprior (coder 3), the latent stream is
+``side length u32 | side stream | latents``: the side latents under the model's per-channel
+tables, then each latent under the Laplace table and around the whole-step mean that the
+integer hyper-synthesis gives (:mod:`workbench.codecs.hyperprior`), so encoder and decoder
+derive the same distributions on any machine.
+
 The workbench's step (in 8-bit grey levels) maps to a latent step of ``step / 8``: the
 model is trained so that one latent unit is worth roughly eight grey levels, which keeps
 the default step and the rate-control range of the KLT meaningful here.
@@ -28,14 +34,17 @@ from pathlib import Path
 
 import numpy as np
 
-from . import coefcode, symbols
+from . import coefcode, hyperprior, symbols
 from ..errors import BundleError, InputError
-from ..formats.modelfile import ModelData, parse_model, read_model
+from ..formats.modelfile import TABLE_MAX, TABLE_MIN, ModelData, parse_model, read_model
 from .base import CodecBase
 
-DEFAULT_MODEL = Path(__file__).resolve().parents[1] / "models" / "default.wmodel"
+MODELS = Path(__file__).resolve().parents[1] / "models"
+DEFAULT_MODEL = MODELS / "conv-v1.wmodel"
+EARLIER_MODELS = ()  # shipped before; kept so their bundles decode
 _HEAD = struct.Struct("<bHB")
-LEARNED, ADAPTIVE, ADAPTIVE_ONE_STAGE = 0, 2, 1  # 1: the adaptive coder's tokens in one stage (older files)
+_SIDE = struct.Struct("<I")
+LEARNED, ADAPTIVE, ADAPTIVE_ONE_STAGE, HYPER = 0, 2, 1, 3  # 1: the adaptive coder's tokens in one stage (older files)
 TOKEN_SPLIT = coefcode.SPLIT  # what this version writes
 STEP_INDEX_RANGE = (-64, 64)
 
@@ -60,10 +69,21 @@ class Model:
         from .conv_model import for_inference
 
         self.net = for_inference(net)
+        self.hyper = bool(self.arch.side)
+        if self.hyper:
+            # Exact: a float32 times 8 and rounding are the same everywhere.
+            zl = np.asarray(data.weights["hyper.z_log_scale"], np.float64)
+            self.side_tables = np.clip(np.round(8 * zl).astype(np.int64), TABLE_MIN, TABLE_MAX) - TABLE_MIN
 
     @property
     def channels(self) -> int:
         return self.arch.latent
+
+    def prior(self, z: np.ndarray, shape) -> tuple[np.ndarray, np.ndarray]:
+        """Integer (mean16, log8) of every latent element from side latents ``z``, cropped to
+        the latent grid ``shape``."""
+        m16, l8 = hyperprior.int_synthesis(self.data.weights, "hyper.", z, self.channels)
+        return m16[:, :shape[0], :shape[1]], l8[:, :shape[0], :shape[1]]
 
 
 @lru_cache(maxsize=4)
@@ -73,6 +93,11 @@ def _load_default() -> Model:
     return Model(read_model(DEFAULT_MODEL))
 
 
+@lru_cache(maxsize=4)
+def _load_earlier(path: Path) -> Model:
+    return Model(read_model(path))
+
+
 @dataclass
 class Analysis:
     latents: np.ndarray
@@ -80,6 +105,8 @@ class Analysis:
     grey: bool
     model: Model
     settings: object
+    side: np.ndarray | None = None  # integer side latents (hyperprior models)
+    prior: tuple | None = None  # their integer (mean16, log8), the same at every step
 
 
 @dataclass
@@ -140,8 +167,15 @@ class ConvCodec(CodecBase):
         try:
             m = _load_default()
         except InputError:
-            return None
-        return m if m.sha256 == ref else None
+            m = None
+        if m is not None and m.sha256 == ref:
+            return m
+        for path in EARLIER_MODELS:
+            if path.exists():
+                e = _load_earlier(path)
+                if e.sha256 == ref:
+                    return e
+        return None
 
     def prepare_shared(self, plane_sets, settings):
         m, ref = self.default_model()
@@ -164,7 +198,13 @@ class ConvCodec(CodecBase):
         grey = len(planes) == 1
         stack = [planes[0]] + ([np.full(shape, 128.0)] * 2 if grey else list(planes[1:]))
         x = (np.stack(stack) / 255.0).astype(np.float32)
-        return Analysis(encode_array(model.net, x), shape, grey, model, settings)
+        y = encode_array(model.net, x)
+        if not model.hyper:
+            return Analysis(y, shape, grey, model, settings)
+        from .conv_model import side_latents
+
+        z = side_latents(model.net, y)
+        return Analysis(y, shape, grey, model, settings, z, model.prior(z, y.shape[1:]))
 
     def quantise(self, a: Analysis, *, step: float, count: int | None) -> Coded:
         j = _step_index(step / 8.0)
@@ -174,7 +214,15 @@ class ConvCodec(CodecBase):
         return Coded(8.0 * s, j, q, kept, a)
 
     def serialise(self, c: Coded) -> bytes:
-        m = c.analysis.model.data
+        a = c.analysis
+        if a.model.hyper:
+            tabs = a.model.data.tables
+            side = symbols.encode_fixed(list(a.side), [tabs[t] for t in a.model.side_tables])
+            table, offset = hyperprior.table_and_offset(a.prior[0][:c.kept], a.prior[1][:c.kept], c.step_index,
+                                                        TABLE_MIN, TABLE_MAX)
+            body = symbols.encode_grouped(c.q - offset, table - TABLE_MIN, tabs)
+            return _HEAD.pack(c.step_index, c.kept, HYPER) + _SIDE.pack(len(side)) + side + body
+        m = a.model.data
         counts = [m.counts(ch, c.step_index) for ch in range(c.kept)]
         learned = symbols.encode_fixed(list(c.q), counts)
         adaptive = coefcode.encode_grids([np.ascontiguousarray(c.q.transpose(1, 2, 0))], [3], TOKEN_SPLIT)
@@ -196,20 +244,38 @@ class ConvCodec(CodecBase):
             raise BundleError("image payload is truncated")
         j, kept, coder = _HEAD.unpack_from(payload, 0)
         if not (STEP_INDEX_RANGE[0] <= j <= STEP_INDEX_RANGE[1]) or not (1 <= kept <= shared.channels) \
-                or coder not in (LEARNED, ADAPTIVE, ADAPTIVE_ONE_STAGE):
+                or coder not in (LEARNED, ADAPTIVE, ADAPTIVE_ONE_STAGE, HYPER) or (coder == HYPER) != shared.hyper:
             raise BundleError(f"image payload has invalid step index {j}, channel count {kept} or coder {coder}")
         from .conv_model import STRIDE
 
         h, w = shapes[0]
         lh, lw = -(-h // STRIDE), -(-w // STRIDE)
         body = payload[_HEAD.size:]
-        if coder != LEARNED:
+        if coder == HYPER:
+            q = self._decode_hyper(body, shared, j, kept, (lh, lw))
+        elif coder != LEARNED:
             split = coefcode.SPLIT if coder == ADAPTIVE else None
             q = coefcode.decode_grids(body, [(lh, lw, kept)], [3], split)[0].transpose(2, 0, 1)
         else:
             counts = [shared.data.counts(ch, j) for ch in range(kept)]
             q = np.stack(symbols.decode_fixed(body, [lh * lw] * kept, counts)).reshape(kept, lh, lw)
         return _synthesise(shared, q, float(2.0 ** (j / 8)), (h, w), len(shapes) == 1)
+
+    @staticmethod
+    def _decode_hyper(body: bytes, model: Model, j: int, kept: int, grid) -> np.ndarray:
+        if len(body) < _SIDE.size or _SIDE.unpack_from(body)[0] > len(body) - _SIDE.size:
+            raise BundleError("image payload's side stream is truncated")
+        n = _SIDE.unpack_from(body)[0]
+        side_shape = (-(-grid[0] // hyperprior.DOWN), -(-grid[1] // hyperprior.DOWN))
+        tabs = model.data.tables
+        z = symbols.decode_fixed(body[_SIDE.size:_SIDE.size + n], [side_shape[0] * side_shape[1]] * model.arch.side,
+                                 [tabs[t] for t in model.side_tables])
+        z = np.stack(z).reshape((model.arch.side,) + side_shape)
+        if np.abs(z).max(initial=0) > 1 << 16:
+            raise BundleError("image payload's side latents are out of range")
+        m16, l8 = model.prior(z, grid)
+        table, offset = hyperprior.table_and_offset(m16[:kept], l8[:kept], j, TABLE_MIN, TABLE_MAX)
+        return symbols.decode_grouped(body[_SIDE.size + n:], table - TABLE_MIN, tabs) + offset
 
 
 CODEC = ConvCodec()

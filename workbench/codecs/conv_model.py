@@ -33,9 +33,14 @@ LN2 = math.log(2.0)
 class Arch:
     hidden: int = 64
     latent: int = 96
+    side: int = 0  # side-latent channels of the hyperprior; 0: per-channel factorized model only
+    side_hidden: int = 0
 
     def to_dict(self) -> dict:
-        return {"hidden": self.hidden, "latent": self.latent}
+        d = {"hidden": self.hidden, "latent": self.latent}
+        if self.side:
+            d.update(side=self.side, side_hidden=self.side_hidden)
+        return d
 
 
 class GDN(nn.Module):
@@ -75,6 +80,10 @@ class Autoencoder(nn.Module):
             nn.init.zeros_(last.weight)
             nn.init.zeros_(last.bias)
         self.log_scale = nn.Parameter(torch.zeros(c))  # log2 of each channel's Laplace scale
+        if arch.side:
+            from . import hyperprior
+
+            self.hyper = hyperprior.make(c, arch.side_hidden, arch.side)
 
     # The linear paths hold unit-norm basis vectors and apply the fixed scale here, so that
     # Adam's steps (which ignore a parameter's scale) move them by a fraction of their size.
@@ -120,6 +129,29 @@ class Autoencoder(nn.Module):
         p = torch.clamp(upper - lower, min=1e-9)
         return (-torch.log2(p) * keep).sum(dim=(1, 2, 3))
 
+    def hyper_bits(self, y: torch.Tensor, y_tilde: torch.Tensor, s: torch.Tensor, keep: torch.Tensor,
+                   z_noise: torch.Tensor | None) -> torch.Tensor:
+        """Bits of each image's noisy latents under the hyperprior (Laplace of the predicted
+        mean and scale, in quantiser units) plus the bits of its side latents (``z_noise``
+        uniform noise in training, None to round)."""
+        z = self.hyper.analyse(_pad_grid(y, 4))
+        z_tilde = z + z_noise[..., :z.shape[2], :z.shape[3]] if z_noise is not None else torch.round(z)
+        mean, log_scale = self.hyper.synthesise(z_tilde)
+        mean, log_scale = mean[..., :y.shape[2], :y.shape[3]], log_scale[..., :y.shape[2], :y.shape[3]]
+        b = torch.exp2(log_scale.clamp(-12.0, 16.0)) / s
+        m = mean / s
+        p = torch.clamp(_laplace_cdf(y_tilde - m + 0.5, b) - _laplace_cdf(y_tilde - m - 0.5, b), min=1e-9)
+        bits_y = (-torch.log2(p) * keep).sum(dim=(1, 2, 3))
+        bz = (2.0 ** self.hyper.z_log_scale)[None, :, None, None]
+        pz = torch.clamp(_laplace_cdf(z_tilde + 0.5, bz) - _laplace_cdf(z_tilde - 0.5, bz), min=1e-9)
+        return bits_y + (-torch.log2(pz)).sum(dim=(1, 2, 3))
+
+
+def _pad_grid(y: torch.Tensor, mult: int) -> torch.Tensor:
+    """``y`` edge-padded so its grid is a multiple of ``mult`` (the side latents' grid)."""
+    ph, pw = (-y.shape[2]) % mult, (-y.shape[3]) % mult
+    return F.pad(y, (0, pw, 0, ph), mode="replicate") if ph or pw else y
+
 
 def _laplace_cdf(x, b):
     return 0.5 + 0.5 * torch.sign(x) * (1 - torch.exp(-x.abs() / b))
@@ -139,7 +171,11 @@ def train_step(model: Autoencoder, x: torch.Tensor, lam: float, gen: torch.Gener
                          torch.randint(1, c + 1, (nb,), generator=gen))
     keep = (torch.arange(c)[None, :] < keep_n[:, None]).float()[:, :, None, None]
     x_hat = model.decoder(y_tilde * s * keep)
-    bpp = model.likelihood_bits(y_tilde, s, keep) / (h * w)
+    if model.arch.side:
+        zn = torch.rand((nb, model.arch.side, -(-h // (STRIDE * 4)), -(-w // (STRIDE * 4))), generator=gen) - 0.5
+        bpp = model.hyper_bits(y, y_tilde, s, keep, zn) / (h * w)
+    else:
+        bpp = model.likelihood_bits(y_tilde, s, keep) / (h * w)
     mse = ((x_hat - x) ** 2).mean(dim=(1, 2, 3))
     loss = (bpp + lam / s.reshape(-1) ** 2 * 255.0**2 * mse).mean()
     return loss, bpp.mean().detach(), mse.mean().detach()
@@ -203,3 +239,12 @@ def decode_array(model: Autoencoder, y: np.ndarray, shape: tuple[int, int]) -> n
     """(3, H, W) float32 reconstruction of latents, in tiles, cropped to ``shape``."""
     out = _tiled(_channels_last(model.decoder), y, 3, TILE // STRIDE, MARGIN // STRIDE, STRIDE, 1)
     return out[:, : shape[0], : shape[1]]
+
+
+@torch.inference_mode()
+def side_latents(model: Autoencoder, y: np.ndarray) -> np.ndarray:
+    """Integer side latents (S, ceil(h/4), ceil(w/4)) of latents ``y`` (C, h, w): the
+    hyper-analysis, rounded. Runs in float on the encoder only; the decoder receives them."""
+    t = _pad_grid(torch.from_numpy(np.ascontiguousarray(y))[None], 4)
+    z = model.hyper.analyse(t.contiguous(memory_format=torch.channels_last)).contiguous()
+    return torch.round(z)[0].numpy().astype(np.int64)

@@ -175,3 +175,33 @@ def encode_fixed(channels: list[np.ndarray], counts: list[np.ndarray]) -> bytes:
 def decode_fixed(data: bytes, sizes: list[int], counts: list[np.ndarray]) -> list[np.ndarray]:
     rd = Reader(data)
     return [rd.get_fixed(c.astype(np.float64), n) for n, c in zip(sizes, counts)]
+
+
+def _groups(table: np.ndarray):
+    """Positions of ``table`` (any shape) grouped by value: ``(values, order, starts)``, the
+    groups in increasing value, positions within a group in C order."""
+    flat = table.reshape(-1)
+    order = np.argsort(flat, kind="stable")
+    values, starts = np.unique(flat[order], return_index=True)
+    return values, order, np.append(starts, flat.size)
+
+
+def encode_grouped(values: np.ndarray, table: np.ndarray, tables: np.ndarray) -> bytes:
+    """Signed ``values`` each coded under ``tables[table]`` (same shapes): one coder call per
+    distinct table, in a order the decoder rebuilds from ``table`` alone."""
+    w = Writer()
+    flat = np.asarray(values, np.int64).reshape(-1)
+    idx, order, starts = _groups(table)
+    for t, a, b in zip(idx, starts[:-1], starts[1:]):
+        w.put_fixed(tables[t].astype(np.float64), flat[order[a:b]])
+    return w.finish()
+
+
+def decode_grouped(data: bytes, table: np.ndarray, tables: np.ndarray) -> np.ndarray:
+    """Inverse of :func:`encode_grouped`, shaped like ``table``."""
+    rd = Reader(data)
+    out = np.zeros(table.size, np.int64)
+    idx, order, starts = _groups(table)
+    for t, a, b in zip(idx, starts[:-1], starts[1:]):
+        out[order[a:b]] = rd.get_fixed(tables[t].astype(np.float64), int(b - a))
+    return out.reshape(table.shape)

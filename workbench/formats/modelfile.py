@@ -81,10 +81,12 @@ def parse_model(data: bytes) -> ModelData:
     if not isinstance(meta, dict) or meta.get("kind") != "conv-model":
         raise BundleError("model file metadata is not a conv model description")
     arch = meta.get("arch")
-    if not (isinstance(arch, dict) and set(arch) == {"hidden", "latent"}
+    if not (isinstance(arch, dict) and set(arch) in ({"hidden", "latent"}, {"hidden", "latent", "side", "side_hidden"})
             and all(type(arch[k]) is int for k in arch)  # not bool, not float
-            and 1 <= arch["hidden"] <= MAX_HIDDEN and 1 <= arch["latent"] <= MAX_CHANNELS):
-        raise BundleError("model file has an invalid architecture (exactly 'hidden' and 'latent', whole numbers)")
+            and 1 <= arch["hidden"] <= MAX_HIDDEN and 1 <= arch["latent"] <= MAX_CHANNELS
+            and 0 <= arch.get("side", 0) <= MAX_CHANNELS and 0 <= arch.get("side_hidden", 0) <= MAX_HIDDEN):
+        raise BundleError("model file has an invalid architecture ('hidden' and 'latent', optionally 'side' and "
+                          "'side_hidden', whole numbers)")
     si = meta.get("scale_index")
     if not (isinstance(si, list) and len(si) == arch["latent"] and all(isinstance(v, int) and abs(v) < 10_000 for v in si)):
         raise BundleError("model file has invalid entropy-model scales")

@@ -27,7 +27,7 @@ class TrainOptions(QDialog):
         self.lam.setValue(0.08)
         self.latent = QSpinBox()
         self.latent.setRange(4, 256)
-        self.latent.setValue(96)
+        self.latent.setValue(192)
         self.path = default_path
         self.path_label = QLabel(str(default_path))
         f.addRow("Time budget", self.minutes)

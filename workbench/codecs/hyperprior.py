@@ -1,0 +1,158 @@
+"""A mean-scale hyperprior for the conv encoder's latents, with an integer synthesis.
+
+The hyper-analysis maps the latents ``y`` to a small side latent ``z`` at a quarter of the
+latent grid; ``z`` is coded with a per-channel factorized Laplace model; the hyper-synthesis
+maps ``z`` back to a mean and a log2 scale for every latent element, and each latent is coded
+under a Laplace of that scale around that mean (Ballé, Minnen, Singh, Hwang & Johnston,
+"Variational image compression with a scale hyperprior", ICLR 2018; the mean: Minnen,
+Ballé & Toderici, "Joint autoregressive and hierarchical priors for learned image
+compression", NeurIPS 2018).
+
+A decoder must rebuild exactly the distributions the encoder used, or the whole stream
+after the first disagreement is lost. The hyper-synthesis therefore runs as an integer
+network (Ballé, Johnston & Minnen, "Integer networks for data compression with
+latent-variable models", ICLR 2019): weights rounded to integers with a power-of-two scale,
+activations floored to integers, every product and sum an integer far below 2**53, so the
+float64 matrix products that evaluate it are exact whatever order the BLAS library adds in.
+Its outputs are a mean in 1/16 latent units and a log2 scale in 1/8 octaves, both
+integers; the coder turns them into a table index and a whole-step mean offset with
+integer arithmetic only (:func:`table_and_offset`).
+
+Training uses the float network of the same shape (:class:`Hyper`); :func:`int_synthesis`
+evaluates the integer one from the same float32 weights (rounding a float32 times a power of
+two is exact IEEE arithmetic, so every machine derives the same integers).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+DOWN = 4  # z lives on a grid 4x coarser than the latents
+Y_SCALE = 1.0 / 16.0  # latents are scaled into a convenient range before the hyper-analysis
+MEAN_FRAC = 4  # the mean comes out in 1/16 latent units
+LOG_FRAC = 3  # the log2 scale in 1/8 octaves (the entropy tables' spacing)
+WEIGHT_BITS = 12  # integer weights lie within +-2**12
+ACT_FRAC = 8  # hidden activations carry 8 fractional bits
+ACT_MAX = (1 << 24) - 1  # products and sums stay below 2**53 (24 + 12 + 11 bits)
+OUT_CLIP = 1 << 16
+# round(2**30 * 2**(-b/8)) for b = 0..7, written out so no platform's pow() is involved.
+_INV_BITS = 30
+_INV_STEP = (1073741824, 984625594, 902905651, 827968132, 759250125, 696235434, 638450708, 585461881)
+
+
+def _torch_hyper(latent: int, hidden: int, side: int):
+    import torch
+    from torch import nn
+
+    class Hyper(nn.Module):
+        """Float hyper-analysis and hyper-synthesis, the shapes :func:`int_synthesis` mirrors."""
+
+        def __init__(self):
+            super().__init__()
+            self.latent, self.hidden, self.side = latent, hidden, side
+            self.h_a = nn.Sequential(nn.Conv2d(latent, hidden, 3, padding=1), nn.ReLU(),
+                                     nn.Conv2d(hidden, hidden, 5, stride=2, padding=2), nn.ReLU(),
+                                     nn.Conv2d(hidden, side, 5, stride=2, padding=2))
+            self.s1 = nn.Conv2d(side, 4 * hidden, 3, padding=1)
+            self.s2 = nn.Conv2d(hidden, 4 * hidden, 3, padding=1)
+            self.s3 = nn.Conv2d(hidden, 2 * latent, 1)
+            # Start predicting "mean 0, scale 1": the factorized model's neighbourhood.
+            nn.init.zeros_(self.s3.weight)
+            nn.init.zeros_(self.s3.bias)
+            self.z_log_scale = nn.Parameter(torch.zeros(side))
+
+        def analyse(self, y):
+            return self.h_a(y * Y_SCALE)
+
+        def synthesise(self, z):
+            """(mean in latent units, log2 scale) of each latent element."""
+            f = torch.nn.functional
+            h = f.pixel_shuffle(f.relu(self.s1(z)), 2)
+            h = f.pixel_shuffle(f.relu(self.s2(h)), 2)
+            out = self.s3(h)
+            return out[:, :self.latent], out[:, self.latent:]
+
+    return Hyper()
+
+
+def make(latent: int, hidden: int, side: int):
+    """A float :class:`Hyper` module for ``latent`` channels (torch)."""
+    return _torch_hyper(latent, hidden, side)
+
+
+# ------------------------------------------------------------------ integer synthesis
+
+def _int_weights(w: np.ndarray, b: np.ndarray, in_frac: int):
+    """Integer weights and bias of one layer and the weights' fractional bits."""
+    w = np.asarray(w, np.float32)
+    peak = float(np.max(np.abs(w))) if w.size else 0.0
+    # frexp is exact: peak = m * 2**e with 0.5 <= m < 1, so |w| * 2**(bits - e) <= 2**bits.
+    e = int(np.frexp(np.float32(peak))[1]) if peak > 0 else 0
+    frac = WEIGHT_BITS - e
+    wi = np.round(w.astype(np.float64) * 2.0 ** frac)
+    bi = np.round(np.asarray(b, np.float32).astype(np.float64) * 2.0 ** (frac + in_frac))
+    return wi, bi, frac
+
+
+def _conv_int(x: np.ndarray, wi: np.ndarray, bi: np.ndarray) -> np.ndarray:
+    """Exact integer convolution (stride 1, zero padding k//2) of (C, H, W) float64 integers."""
+    o, c, k, _ = wi.shape
+    _, h, w = x.shape
+    if k == 1:
+        cols = x.reshape(c, h * w).T
+    else:
+        p = k // 2
+        xp = np.pad(x, ((0, 0), (p, p), (p, p)))
+        win = np.lib.stride_tricks.sliding_window_view(xp, (k, k), axis=(1, 2))  # (C, H, W, k, k)
+        cols = win.transpose(1, 2, 0, 3, 4).reshape(h * w, c * k * k)
+    out = cols @ wi.reshape(o, -1).T + bi
+    return out.T.reshape(o, h, w)
+
+
+def _shuffle(x: np.ndarray) -> np.ndarray:
+    """torch.nn.functional.pixel_shuffle with factor 2 on (4C, H, W)."""
+    c4, h, w = x.shape
+    c = c4 // 4
+    return x.reshape(c, 2, 2, h, w).transpose(0, 3, 1, 4, 2).reshape(c, 2 * h, 2 * w)
+
+
+def _requant(acc: np.ndarray, frac: int, out_frac: int, lo: float, hi: float) -> np.ndarray:
+    # Division by a power of two and floor are exact on float64 integers.
+    return np.clip(np.floor(acc / 2.0 ** (frac - out_frac)), lo, hi)
+
+
+def int_synthesis(weights: dict, prefix: str, z: np.ndarray, latent: int) -> tuple[np.ndarray, np.ndarray]:
+    """Integer hyper-synthesis of integer side latents ``z`` (S, h, w).
+
+    Returns ``(mean16, log8)``: int64 arrays (latent, 4h, 4w), the mean in 1/16 latent units
+    and the log2 scale in 1/8 octaves, the same on every machine.
+    """
+    x = np.asarray(z, np.float64)
+    frac_in = 0
+    for name in ("s1", "s2"):
+        wi, bi, f = _int_weights(weights[f"{prefix}{name}.weight"], weights[f"{prefix}{name}.bias"], frac_in)
+        acc = _conv_int(x, wi, bi)
+        x = _shuffle(_requant(acc, f + frac_in, ACT_FRAC, 0, ACT_MAX))
+        frac_in = ACT_FRAC
+    wi, bi, f = _int_weights(weights[f"{prefix}s3.weight"], weights[f"{prefix}s3.bias"], frac_in)
+    out = np.empty((2 * latent,) + x.shape[1:], np.float64)
+    rows = max(1, (1 << 22) // max(1, x.shape[2] * 2 * latent))  # bounded memory on large images
+    for r in range(0, x.shape[1], rows):
+        out[:, r:r + rows] = _conv_int(x[:, r:r + rows], wi, bi)
+    total = f + frac_in
+    mean16 = np.clip(np.floor(out[:latent] / 2.0 ** (total - MEAN_FRAC) + 0.5), -OUT_CLIP, OUT_CLIP)
+    log8 = np.clip(np.floor(out[latent:] / 2.0 ** (total - LOG_FRAC) + 0.5), -OUT_CLIP, OUT_CLIP)
+    return mean16.astype(np.int64), log8.astype(np.int64)
+
+
+def table_and_offset(mean16: np.ndarray, log8: np.ndarray, step_index: int, tmin: int, tmax: int):
+    """Table index (clipped to ``tmin..tmax``) and whole-step mean offset at latent step
+    ``2**(step_index/8)``, by integer arithmetic: the scale in steps is ``log8 - step_index``
+    eighth-octaves; the mean in steps is ``mean16 / 16 * 2**(-step_index/8)`` rounded."""
+    a, b = divmod(int(step_index), 8)
+    table = np.clip(log8 - step_index, tmin, tmax)
+    num = mean16.astype(np.int64) * _INV_STEP[b]  # exact in float64 too: |mean16| <= 2**16, so below 2**46
+    den = 2.0 ** (MEAN_FRAC + _INV_BITS + a)
+    offset = np.floor((num.astype(np.float64) + den / 2) / den).astype(np.int64)
+    return table.astype(np.int64), offset
+
