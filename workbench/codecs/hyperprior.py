@@ -124,7 +124,7 @@ def _requant(acc: np.ndarray, frac: int, out_frac: int, lo: float, hi: float) ->
 def int_synthesis(weights: dict, prefix: str, z: np.ndarray, latent: int) -> tuple[np.ndarray, np.ndarray]:
     """Integer hyper-synthesis of integer side latents ``z`` (S, h, w).
 
-    Returns ``(mean16, log8)``: int64 arrays (latent, 4h, 4w), the mean in 1/16 latent units
+    Returns ``(mean16, log8)``: int32 arrays (latent, 4h, 4w), the mean in 1/16 latent units
     and the log2 scale in 1/8 octaves, the same on every machine.
     """
     x = np.asarray(z, np.float64)
@@ -135,14 +135,25 @@ def int_synthesis(weights: dict, prefix: str, z: np.ndarray, latent: int) -> tup
         x = _shuffle(_requant(acc, f + frac_in, ACT_FRAC, 0, ACT_MAX))
         frac_in = ACT_FRAC
     wi, bi, f = _int_weights(weights[f"{prefix}s3.weight"], weights[f"{prefix}s3.bias"], frac_in)
-    out = np.empty((2 * latent,) + x.shape[1:], np.float64)
-    rows = max(1, (1 << 22) // max(1, x.shape[2] * 2 * latent))  # bounded memory on large images
-    for r in range(0, x.shape[1], rows):
-        out[:, r:r + rows] = _conv_int(x[:, r:r + rows], wi, bi)
     total = f + frac_in
-    mean16 = np.clip(np.floor(out[:latent] / 2.0 ** (total - MEAN_FRAC) + 0.5), -OUT_CLIP, OUT_CLIP)
-    log8 = np.clip(np.floor(out[latent:] / 2.0 ** (total - LOG_FRAC) + 0.5), -OUT_CLIP, OUT_CLIP)
-    return mean16.astype(np.int64), log8.astype(np.int64)
+    # The last layer is a 1x1 convolution: a matrix product per row band, requantised in
+    # place (multiplying by a power of two and flooring are exact on float64 integers).
+    c, h, w = x.shape
+    wm = wi.reshape(wi.shape[0], -1).T
+    scale = np.array([2.0 ** (MEAN_FRAC - total)] * latent + [2.0 ** (LOG_FRAC - total)] * latent)
+    out = np.empty((h * w, 2 * latent), np.int32)
+    flat = x.reshape(c, h * w)
+    band = max(1, (1 << 21) // (2 * latent))
+    for r in range(0, h * w, band):
+        acc = flat[:, r:r + band].T @ wm
+        acc += bi
+        acc *= scale
+        acc += 0.5
+        np.floor(acc, out=acc)
+        np.clip(acc, -OUT_CLIP, OUT_CLIP, out=acc)
+        out[r:r + band] = acc
+    out = out.T.reshape(2 * latent, h, w)
+    return out[:latent], out[latent:]
 
 
 def table_and_offset(mean16: np.ndarray, log8: np.ndarray, step_index: int, tmin: int, tmax: int):
@@ -151,8 +162,8 @@ def table_and_offset(mean16: np.ndarray, log8: np.ndarray, step_index: int, tmin
     eighth-octaves; the mean in steps is ``mean16 / 16 * 2**(-step_index/8)`` rounded."""
     a, b = divmod(int(step_index), 8)
     table = np.clip(log8 - step_index, tmin, tmax)
-    num = mean16.astype(np.int64) * _INV_STEP[b]  # exact in float64 too: |mean16| <= 2**16, so below 2**46
-    den = 2.0 ** (MEAN_FRAC + _INV_BITS + a)
-    offset = np.floor((num.astype(np.float64) + den / 2) / den).astype(np.int64)
+    num = mean16.astype(np.int64) * _INV_STEP[b]  # |mean16| <= 2**16: below 2**46
+    shift = MEAN_FRAC + _INV_BITS + a  # 26..42 over the step range; >> floors
+    offset = (num + (1 << (shift - 1))) >> shift
     return table.astype(np.int64), offset
 
