@@ -4,7 +4,6 @@ with no edit anywhere else."""
 
 import json
 
-import numpy as np
 import pytest
 from PIL import Image
 from skimage.metrics import peak_signal_noise_ratio

@@ -6,7 +6,7 @@ import signal
 import numpy as np
 import pytest
 
-from workbench import codecs, pipeline, preview
+from workbench import codecs, preview
 from workbench.errors import InputError
 from workbench.formats.imagefiles import SourceImage
 from workbench.gui.remote import PreviewProcess

@@ -133,6 +133,7 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
 
     net = conv_model.Autoencoder(conv_model.Arch(config.hidden, config.latent, config.side, config.side_hidden))
     started_from = None
+    hyper_loaded = False
     if config.start_from and not (resume and out.exists()):
         # Fine-tuning a model that already knows images converges far faster on a CPU
         # than starting from random weights; architectures must match.
@@ -144,6 +145,7 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
             if base.arch == net.arch:
                 net.load_state_dict(base.net.state_dict())
                 started_from = base.sha256
+                hyper_loaded = True
             elif base.arch.hidden == net.arch.hidden and base.arch.latent <= net.arch.latent:
                 # A wider model (more latents, or a hyperprior added) starts as the smaller
                 # one where they overlap and as the KLT of the training data elsewhere.
@@ -156,6 +158,8 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
             raise InputError(f"{src}: no such model file to start from")
     if started_from is None and not (resume and out.exists()):
         net.init_from_klt(_klt_patches(train, rng))
+    if net.arch.side and not (resume and out.exists()) and not hyper_loaded:
+        net.init_hyper_from_factorized()
     linear = {id(p) for p in net.linear_parameters()}
     opt = torch.optim.Adam([{"params": [p for p in net.parameters() if id(p) not in linear], "scale": 1.0},
                             {"params": net.linear_parameters(), "scale": 0.1}], lr=config.lr)

@@ -20,7 +20,6 @@ import tempfile
 import time
 from pathlib import Path
 
-import numpy as np
 from PIL import Image
 from skimage import data
 

@@ -59,6 +59,35 @@ class GDN(nn.Module):
         return x * norm if self.inverse else x / norm
 
 
+class Hyper(nn.Module):
+    """The hyperprior's float networks (:mod:`workbench.codecs.hyperprior` evaluates the
+    synthesis in integers): analysis y -> z at a quarter of the latent grid; synthesis z ->
+    (mean in latent units, log2 scale) of every latent, by two 3x3 convolutions each followed
+    by a 2x pixel shuffle, then a 1x1 convolution."""
+
+    Y_SCALE = 1.0 / 16.0  # latents scaled into a convenient range for the analysis
+
+    def __init__(self, latent: int, hidden: int, side: int):
+        super().__init__()
+        self.latent = latent
+        self.h_a = nn.Sequential(nn.Conv2d(latent, hidden, 3, padding=1), nn.ReLU(),
+                                 nn.Conv2d(hidden, hidden, 5, stride=2, padding=2), nn.ReLU(),
+                                 nn.Conv2d(hidden, side, 5, stride=2, padding=2))
+        self.s1 = nn.Conv2d(side, 4 * hidden, 3, padding=1)
+        self.s2 = nn.Conv2d(hidden, 4 * hidden, 3, padding=1)
+        self.s3 = nn.Conv2d(hidden, 2 * latent, 1)
+        self.z_log_scale = nn.Parameter(torch.zeros(side))  # factorized Laplace of the side latents
+
+    def analyse(self, y):
+        return self.h_a(y * self.Y_SCALE)
+
+    def synthesise(self, z):
+        h = F.pixel_shuffle(F.relu(self.s1(z)), 2)
+        h = F.pixel_shuffle(F.relu(self.s2(h)), 2)
+        out = self.s3(h)
+        return out[:, :self.latent], out[:, self.latent:]
+
+
 def _conv(i, o):
     return nn.Conv2d(i, o, 5, stride=2, padding=2)
 
@@ -81,9 +110,7 @@ class Autoencoder(nn.Module):
             nn.init.zeros_(last.bias)
         self.log_scale = nn.Parameter(torch.zeros(c))  # log2 of each channel's Laplace scale
         if arch.side:
-            from . import hyperprior
-
-            self.hyper = hyperprior.make(c, arch.side_hidden, arch.side)
+            self.hyper = Hyper(c, arch.side_hidden, arch.side)
 
     # The linear paths hold unit-norm basis vectors and apply the fixed scale here, so that
     # Adam's steps (which ignore a parameter's scale) move them by a fraction of their size.
@@ -119,6 +146,15 @@ class Autoencoder(nn.Module):
         # Laplace scale b = std / sqrt(2) for each latent channel.
         std = np.sqrt(np.maximum(vals[order], 1e-6)) / 8.0
         self.log_scale.copy_(torch.from_numpy(np.log2(std / np.sqrt(2.0)).astype(np.float32)))
+
+    @torch.no_grad()
+    def init_hyper_from_factorized(self) -> None:
+        """Make a fresh hyperprior predict, everywhere, the per-channel factorized model's
+        scales (mean 0): it starts no worse than that model, so its early rate gradients do
+        not push the encoder around while it learns."""
+        self.hyper.s3.weight.zero_()
+        self.hyper.s3.bias.zero_()
+        self.hyper.s3.bias[self.arch.latent:] = self.log_scale
 
     def likelihood_bits(self, y_tilde: torch.Tensor, s: torch.Tensor, keep: torch.Tensor) -> torch.Tensor:
         """Bits of each image's noisy latents (quantiser units) under Laplace(0, b_c / s);

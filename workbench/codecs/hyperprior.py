@@ -18,7 +18,7 @@ Its outputs are a mean in 1/16 latent units and a log2 scale in 1/8 octaves, bot
 integers; the coder turns them into a table index and a whole-step mean offset with
 integer arithmetic only (:func:`table_and_offset`).
 
-Training uses the float network of the same shape (:class:`Hyper`); :func:`int_synthesis`
+Training uses the float network of the same shape (``conv_model.Hyper``); :func:`int_synthesis`
 evaluates the integer one from the same float32 weights (rounding a float32 times a power of
 two is exact IEEE arithmetic, so every machine derives the same integers).
 """
@@ -28,7 +28,6 @@ from __future__ import annotations
 import numpy as np
 
 DOWN = 4  # z lives on a grid 4x coarser than the latents
-Y_SCALE = 1.0 / 16.0  # latents are scaled into a convenient range before the hyper-analysis
 MEAN_FRAC = 4  # the mean comes out in 1/16 latent units
 LOG_FRAC = 3  # the log2 scale in 1/8 octaves (the entropy tables' spacing)
 WEIGHT_BITS = 12  # integer weights lie within +-2**12
@@ -38,46 +37,6 @@ OUT_CLIP = 1 << 16
 # round(2**30 * 2**(-b/8)) for b = 0..7, written out so no platform's pow() is involved.
 _INV_BITS = 30
 _INV_STEP = (1073741824, 984625594, 902905651, 827968132, 759250125, 696235434, 638450708, 585461881)
-
-
-def _torch_hyper(latent: int, hidden: int, side: int):
-    import torch
-    from torch import nn
-
-    class Hyper(nn.Module):
-        """Float hyper-analysis and hyper-synthesis, the shapes :func:`int_synthesis` mirrors."""
-
-        def __init__(self):
-            super().__init__()
-            self.latent, self.hidden, self.side = latent, hidden, side
-            self.h_a = nn.Sequential(nn.Conv2d(latent, hidden, 3, padding=1), nn.ReLU(),
-                                     nn.Conv2d(hidden, hidden, 5, stride=2, padding=2), nn.ReLU(),
-                                     nn.Conv2d(hidden, side, 5, stride=2, padding=2))
-            self.s1 = nn.Conv2d(side, 4 * hidden, 3, padding=1)
-            self.s2 = nn.Conv2d(hidden, 4 * hidden, 3, padding=1)
-            self.s3 = nn.Conv2d(hidden, 2 * latent, 1)
-            # Start predicting "mean 0, scale 1": the factorized model's neighbourhood.
-            nn.init.zeros_(self.s3.weight)
-            nn.init.zeros_(self.s3.bias)
-            self.z_log_scale = nn.Parameter(torch.zeros(side))
-
-        def analyse(self, y):
-            return self.h_a(y * Y_SCALE)
-
-        def synthesise(self, z):
-            """(mean in latent units, log2 scale) of each latent element."""
-            f = torch.nn.functional
-            h = f.pixel_shuffle(f.relu(self.s1(z)), 2)
-            h = f.pixel_shuffle(f.relu(self.s2(h)), 2)
-            out = self.s3(h)
-            return out[:, :self.latent], out[:, self.latent:]
-
-    return Hyper()
-
-
-def make(latent: int, hidden: int, side: int):
-    """A float :class:`Hyper` module for ``latent`` channels (torch)."""
-    return _torch_hyper(latent, hidden, side)
 
 
 # ------------------------------------------------------------------ integer synthesis
