@@ -197,3 +197,13 @@ def test_laplace_tables_follow_the_distribution():
 def test_klt_and_conv_share_the_registry():
     assert set(workbench.codecs.names()) >= {"klt", "conv"}
     assert get("conv").name == "conv" and get("klt").name == "klt"
+
+
+def test_bundles_made_with_an_earlier_shipped_model_decode_without_it(small_images):
+    from workbench.codecs import conv
+
+    for path in conv.EARLIER_MODELS:
+        model, sha = get("conv").load_model(path)
+        made = pipeline.encode(small_images[:1], Settings(method="conv"), shared=model, shared_ref=sha)
+        out = workbench.decompress(made.data)  # no model given: the package still has it
+        assert np.array_equal(out["cat"], made.images[0].reconstruction)

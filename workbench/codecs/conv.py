@@ -15,9 +15,10 @@ model is trained so that one latent unit is worth roughly eight grey levels, whi
 the default step and the rate-control range of the KLT meaningful here.
 
 Only the first ``kept`` latent channels are coded (nested-dropout order). Two coders
-are tried and the smaller stream is kept (the byte says which): 0, the model's own
-learned per-channel tables (integers stored in the model file, so decoding elsewhere
-gives the same latents); 2, the adaptive context coder of the KLT
+are tried and the smaller stream is kept (the byte says which): the model's own entropy
+model (3, the hyperprior, where the model has one; else 0, its learned per-channel tables:
+integers stored in the model file, so decoding elsewhere gives the same latents); or 2, the
+adaptive context coder of the KLT
 (:mod:`workbench.codecs.coefcode`), which also exploits spatial context (1: the same with
 its tokens in one stage, as older files have it). The pixels then come
 from the same torch decoder.
@@ -215,21 +216,23 @@ class ConvCodec(CodecBase):
 
     def serialise(self, c: Coded) -> bytes:
         a = c.analysis
+        adaptive = coefcode.encode_grids([np.ascontiguousarray(c.q.transpose(1, 2, 0))], [3], TOKEN_SPLIT)
+        coder = ADAPTIVE if TOKEN_SPLIT is not None else ADAPTIVE_ONE_STAGE
         if a.model.hyper:
             tabs = a.model.data.tables
             side = symbols.encode_fixed(list(a.side), [tabs[t] for t in a.model.side_tables])
             table, offset = hyperprior.table_and_offset(a.prior[0][:c.kept], a.prior[1][:c.kept], c.step_index,
                                                         TABLE_MIN, TABLE_MAX)
-            body = symbols.encode_grouped(c.q - offset, table - TABLE_MIN, tabs)
-            return _HEAD.pack(c.step_index, c.kept, HYPER) + _SIDE.pack(len(side)) + side + body
-        m = a.model.data
-        counts = [m.counts(ch, c.step_index) for ch in range(c.kept)]
-        learned = symbols.encode_fixed(list(c.q), counts)
-        adaptive = coefcode.encode_grids([np.ascontiguousarray(c.q.transpose(1, 2, 0))], [3], TOKEN_SPLIT)
-        if len(adaptive) < len(learned):
-            coder = ADAPTIVE if TOKEN_SPLIT is not None else ADAPTIVE_ONE_STAGE
+            body = _SIDE.pack(len(side)) + side + symbols.encode_grouped(c.q - offset, table - TABLE_MIN, tabs)
+            own = HYPER
+        else:
+            counts = [a.model.data.counts(ch, c.step_index) for ch in range(c.kept)]
+            body, own = symbols.encode_fixed(list(c.q), counts), LEARNED
+        # The model's own entropy model, or the adaptive context coder where it does better
+        # (a model early in its training, or images unlike its training set).
+        if len(adaptive) < len(body):
             return _HEAD.pack(c.step_index, c.kept, coder) + adaptive
-        return _HEAD.pack(c.step_index, c.kept, LEARNED) + learned
+        return _HEAD.pack(c.step_index, c.kept, own) + body
 
     def payload_header(self, payload: bytes) -> tuple[float, int]:
         if len(payload) < _HEAD.size:
@@ -244,7 +247,7 @@ class ConvCodec(CodecBase):
             raise BundleError("image payload is truncated")
         j, kept, coder = _HEAD.unpack_from(payload, 0)
         if not (STEP_INDEX_RANGE[0] <= j <= STEP_INDEX_RANGE[1]) or not (1 <= kept <= shared.channels) \
-                or coder not in (LEARNED, ADAPTIVE, ADAPTIVE_ONE_STAGE, HYPER) or (coder == HYPER) != shared.hyper:
+                or coder not in (LEARNED, ADAPTIVE, ADAPTIVE_ONE_STAGE, HYPER) or (coder == HYPER and not shared.hyper):
             raise BundleError(f"image payload has invalid step index {j}, channel count {kept} or coder {coder}")
         from .conv_model import STRIDE
 
