@@ -62,3 +62,19 @@ def test_the_apps_panel_offers_it_with_its_own_fields(plain, qtbot, tmp_path):
     panel.method.setCurrentIndex(i)
     assert panel.settings().method == "plain" and not panel.block.isEnabled() and not panel.scope.isEnabled()
     assert panel.count_label.text() == "Planes kept"
+
+
+def test_a_dask_cluster_learns_the_new_codec_too(plain, photo, tmp_path):
+    # Dask's workers are started by the cluster, not by our pool's initializer: each task
+    # carries the run-time registrations.
+    from dask.distributed import LocalCluster
+
+    from workbench import archive
+    from workbench.jobs import run
+
+    recipe = archive.make_recipe(Settings(method="plain", step=1.0, chroma="444"))
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1",
+                      dashboard_address=None) as cluster:
+        run(archive.batch_job(photo, tmp_path / "dst", recipe, scheduler=cluster.scheduler_address))
+    rows = archive.rows(tmp_path / "dst")
+    assert [r["status"] for r in rows] == ["done"]

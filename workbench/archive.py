@@ -301,8 +301,12 @@ class _runner:
             client = Client(self.scheduler, timeout=30)
             self._close.append(client.close)
 
+        from . import codecs, jobs
+
+        extra = codecs.extras()  # methods registered at run time, which the workers must know too
+
         def run(fn, args):
-            futures = [client.submit(fn, *a, pure=False) for a in args]
+            futures = [client.submit(jobs.call_with_codecs, extra, fn, *a, pure=False) for a in args]
             for f in as_completed(futures):
                 yield f.result()
         return run

@@ -130,6 +130,13 @@ def _register(extra_codecs) -> None:
             codecs.register(name, traits)
 
 
+def call_with_codecs(extra_codecs, fn, *args):
+    """``fn(*args)`` after registering ``extra_codecs``: how a task reaches a Dask worker,
+    which no initializer of ours starts."""
+    _register(extra_codecs)
+    return fn(*args)
+
+
 def run_in_child(conn, cancel, factory, args, extra_codecs=None) -> None:
     """Body of a child process that runs ``factory(*args)``, a job, for :func:`start_child`.
 
