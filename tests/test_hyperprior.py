@@ -161,7 +161,7 @@ def test_a_truncated_side_stream_gives_the_clear_error(hyper_model, images, monk
 def test_side_latents_cover_the_latent_grid(hyper_model):
     model, _, _ = hyper_model
     y = torch.zeros(1, model.channels, 9, 13)
-    z = model.net.hyper.analyse(_pad_grid(y, hyperprior.DOWN))
+    z = model.net.hyper.analyse(_pad_grid(y, hyperprior.DOWN), model.net.log_scale)
     assert tuple(z.shape[2:]) == (3, 4)
 
 
