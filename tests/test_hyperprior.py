@@ -177,3 +177,16 @@ def test_a_wider_model_starts_as_the_smaller_one_where_they_overlap(images, tmp_
     assert np.array_equal(wb["analysis.weight"][:6], wa["analysis.weight"])
     assert np.array_equal(wb["encoder_deep.4.weight"][:6], wa["encoder_deep.4.weight"])
     assert b.arch.side == 2 and b.data.info["started_from"] == a.sha256
+
+
+def test_adapting_the_synthesis_only_keeps_the_encoder(images, tmp_path, hyper_model):
+    model, _, _ = hyper_model
+    src = tmp_path / "base.wmodel"
+    src.write_bytes(model.data.raw)
+    cfg = TrainConfig(latent=12, hidden=16, side=4, side_hidden=8, max_steps=5, seed=6, start_from=str(src),
+                      adapt="synthesis")
+    run(train_job(images, tmp_path / "tuned.wmodel", cfg))
+    tuned, _ = get("conv").load_model(tmp_path / "tuned.wmodel")
+    before, after = model.data.weights, tuned.data.weights
+    assert all(np.array_equal(before[k], after[k]) for k in before if k.startswith(("analysis.", "encoder_deep.")))
+    assert not np.array_equal(before["synthesis.weight"], after["synthesis.weight"])

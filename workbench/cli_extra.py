@@ -83,6 +83,9 @@ def _train(sub):
     p.add_argument("--distortion-weight", dest="lam", type=float, default=0.08, metavar="W",
                    help="weight of distortion against rate: larger = higher quality (default 0.08)")
     p.add_argument("--minutes", type=float, default=10.0, metavar="M", help="training time budget (default 10)")
+    p.add_argument("--adapt", choices=("all", "synthesis"), default="all",
+                   help="what fine-tuning changes: all weights (default), or the decoder and entropy model only "
+                        "(the encoder stays the starting model's)")
     p.add_argument("--steps", type=int, help="stop after this many steps instead (for quick checks)")
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--resume", action="store_true", help="continue from MODEL.wmodel and its .state file")
@@ -107,7 +110,7 @@ def cmd_train(a) -> int:
     images, _ = _read_inputs(a.inputs)
     start = None if a.start_from == "none" else a.start_from
     cfg = TrainConfig(latent=a.latent, hidden=a.hidden, side=a.side, side_hidden=a.hidden if a.side else 0,
-                      lam=a.lam, minutes=a.minutes, seed=a.seed, max_steps=a.steps, start_from=start)
+                      lam=a.lam, minutes=a.minutes, seed=a.seed, max_steps=a.steps, start_from=start, adapt=a.adapt)
     r = run(train_job(images, out, cfg, resume=a.resume), _progress())
     last = r["history"][-1]
     print(f"wrote {out} after {r['steps']} steps (held-out {last['heldout_psnr']:.2f} dB at {last['heldout_bpp']:.3f} bpp), "

@@ -35,6 +35,7 @@ class TrainConfig:
     side: int = 48  # hyperprior side-latent channels (0: a per-channel factorized entropy model)
     side_hidden: int = 64
     crop: int = CROP  # training crops' side in pixels
+    adapt: str = "all"  # "all" weights, or "synthesis": the decoder and the entropy model only
     lam: float = 0.08
     minutes: float = 10.0
     seed: int = 0
@@ -160,9 +161,18 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
         net.init_from_klt(_klt_patches(train, rng))
     if net.arch.side and not (resume and out.exists()) and not hyper_loaded:
         net.init_hyper_from_factorized()
+    if config.adapt == "synthesis":
+        # The encoder keeps its weights (the latents it makes stay those of the starting
+        # model); the decoder and the entropy model adapt, and a step costs no backward pass
+        # through the encoder.
+        for p in list(net.analysis.parameters()) + list(net.encoder_deep.parameters()):
+            p.requires_grad_(False)
+    elif config.adapt != "all":
+        raise InputError(f"adapt must be 'all' or 'synthesis', got {config.adapt!r}")
+    trainable = [p for p in net.parameters() if p.requires_grad]
     linear = {id(p) for p in net.linear_parameters()}
-    opt = torch.optim.Adam([{"params": [p for p in net.parameters() if id(p) not in linear], "scale": 1.0},
-                            {"params": net.linear_parameters(), "scale": 0.1}], lr=config.lr)
+    opt = torch.optim.Adam([{"params": [p for p in trainable if id(p) not in linear], "scale": 1.0},
+                            {"params": [p for p in trainable if id(p) in linear], "scale": 0.1}], lr=config.lr)
     step0, history = 0, []
     if resume and out.exists():
         m = Model(read_model(out))
