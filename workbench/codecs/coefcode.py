@@ -98,15 +98,15 @@ class _Models:
 
     def update(self, ctx: np.ndarray, tok: np.ndarray) -> None:
         if self.split is None:
-            _add(self.counts, self._probs, ctx, tok)
+            add_counts(self.counts, self._probs, ctx, tok)
             return
-        _add(self.counts, self._probs, ctx, np.minimum(tok, self.split))
+        add_counts(self.counts, self._probs, ctx, np.minimum(tok, self.split))
         big = tok >= self.split
         if big.any():
-            _add(self.tail, self._tail_probs, ctx[big], tok[big] - self.split)
+            add_counts(self.tail, self._tail_probs, ctx[big], tok[big] - self.split)
 
 
-def _add(counts: np.ndarray, probs: np.ndarray, ctx: np.ndarray, tok: np.ndarray) -> None:
+def add_counts(counts: np.ndarray, probs: np.ndarray, ctx: np.ndarray, tok: np.ndarray) -> None:
     """Count ``tok`` under ``ctx``, halving rows past COUNT_LIMIT; ``probs`` mirrors ``counts``."""
     # Only the rows between the smallest and largest context are touched: each call
     # draws on one or two families, a small slice of the table.
@@ -139,7 +139,7 @@ def _dc_from_residual(res: np.ndarray) -> np.ndarray:
     return np.cumsum(np.cumsum(res, axis=0), axis=1)
 
 
-def _line(a: np.ndarray) -> np.ndarray:
+def line_sum(a: np.ndarray) -> np.ndarray:
     """TL + 2T + TR along the last axis of magnitudes ``a`` (edges replicated)."""
     s = 2 * a
     s[..., 1:] += a[..., :-1]
@@ -178,7 +178,7 @@ def _code_rows(phase, models: _Models, io) -> None:
             c_dc, c_ext = np.array([[N_DC_CLASSES - 1]]), np.array([[N_EXT_CLASSES - 1]])
         else:
             below = np.where(rows + d < g.rows, rows + d, rows - d)
-            s = _line(np.abs(np.stack([g.res[rows - d], g.ext[rows - d]]))) + _line(
+            s = line_sum(np.abs(np.stack([g.res[rows - d], g.ext[rows - d]]))) + line_sum(
                 np.abs(np.stack([g.res[below], g.ext[below]])))
             c_dc = np.searchsorted(DC_EDGES, (s[0] + 1) // 2, side="right")
             c_ext = np.searchsorted(EXT_EDGES, (s[1] + 1) // 2, side="right")

@@ -45,7 +45,10 @@ DEFAULT_MODEL = MODELS / "conv-v1.wmodel"
 EARLIER_MODELS = ()  # shipped before; kept so their bundles decode
 _HEAD = struct.Struct("<bHB")
 _SIDE = struct.Struct("<I")
-LEARNED, ADAPTIVE, ADAPTIVE_ONE_STAGE, HYPER = 0, 2, 1, 3  # 1: the adaptive coder's tokens in one stage (older files)
+LEARNED, ADAPTIVE, ADAPTIVE_ONE_STAGE, HYPER, HYPER_ADAPTIVE = 0, 2, 1, 3, 4
+# 1: the adaptive coder's tokens in one stage (older files); 3: the hyperprior's fixed tables
+# (development models only); 4: the hyperprior's tables adapted to the image (what is written)
+CODERS = (LEARNED, ADAPTIVE_ONE_STAGE, ADAPTIVE, HYPER, HYPER_ADAPTIVE)
 TOKEN_SPLIT = coefcode.SPLIT  # what this version writes
 STEP_INDEX_RANGE = (-64, 64)
 
@@ -223,8 +226,8 @@ class ConvCodec(CodecBase):
             side = symbols.encode_fixed(list(a.side), [tabs[t] for t in a.model.side_tables])
             table, offset = hyperprior.table_and_offset(a.prior[0][:c.kept], a.prior[1][:c.kept], c.step_index,
                                                         TABLE_MIN, TABLE_MAX)
-            body = _SIDE.pack(len(side)) + side + symbols.encode_grouped(c.q - offset, table - TABLE_MIN, tabs)
-            own = HYPER
+            body = _SIDE.pack(len(side)) + side + hyperprior.encode_latents(c.q - offset, table - TABLE_MIN, tabs)
+            own = HYPER_ADAPTIVE
         else:
             counts = [a.model.data.counts(ch, c.step_index) for ch in range(c.kept)]
             body, own = symbols.encode_fixed(list(c.q), counts), LEARNED
@@ -247,15 +250,15 @@ class ConvCodec(CodecBase):
             raise BundleError("image payload is truncated")
         j, kept, coder = _HEAD.unpack_from(payload, 0)
         if not (STEP_INDEX_RANGE[0] <= j <= STEP_INDEX_RANGE[1]) or not (1 <= kept <= shared.channels) \
-                or coder not in (LEARNED, ADAPTIVE, ADAPTIVE_ONE_STAGE, HYPER) or (coder == HYPER and not shared.hyper):
+                or coder not in CODERS or (coder in (HYPER, HYPER_ADAPTIVE) and not shared.hyper):
             raise BundleError(f"image payload has invalid step index {j}, channel count {kept} or coder {coder}")
         from .conv_model import STRIDE
 
         h, w = shapes[0]
         lh, lw = -(-h // STRIDE), -(-w // STRIDE)
         body = payload[_HEAD.size:]
-        if coder == HYPER:
-            q = self._decode_hyper(body, shared, j, kept, (lh, lw))
+        if coder in (HYPER, HYPER_ADAPTIVE):
+            q = self._decode_hyper(body, shared, j, kept, (lh, lw), coder == HYPER_ADAPTIVE)
         elif coder != LEARNED:
             split = coefcode.SPLIT if coder == ADAPTIVE else None
             q = coefcode.decode_grids(body, [(lh, lw, kept)], [3], split)[0].transpose(2, 0, 1)
@@ -265,7 +268,7 @@ class ConvCodec(CodecBase):
         return _synthesise(shared, q, float(2.0 ** (j / 8)), (h, w), len(shapes) == 1)
 
     @staticmethod
-    def _decode_hyper(body: bytes, model: Model, j: int, kept: int, grid) -> np.ndarray:
+    def _decode_hyper(body: bytes, model: Model, j: int, kept: int, grid, adapted: bool) -> np.ndarray:
         if len(body) < _SIDE.size or _SIDE.unpack_from(body)[0] > len(body) - _SIDE.size:
             raise BundleError("image payload's side stream is truncated")
         n = _SIDE.unpack_from(body)[0]
@@ -278,7 +281,10 @@ class ConvCodec(CodecBase):
             raise BundleError("image payload's side latents are out of range")
         m16, l8 = model.prior(z, grid)
         table, offset = hyperprior.table_and_offset(m16[:kept], l8[:kept], j, TABLE_MIN, TABLE_MAX)
-        return symbols.decode_grouped(body[_SIDE.size + n:], table - TABLE_MIN, tabs) + offset
+        rest = body[_SIDE.size + n:]
+        if adapted:
+            return hyperprior.decode_latents(rest, table - TABLE_MIN, tabs) + offset
+        return symbols.decode_grouped(rest, table - TABLE_MIN, tabs) + offset
 
 
 CODEC = ConvCodec()
