@@ -173,3 +173,19 @@ def test_rdoq_saves_bits_at_equal_psnr_against_plain_rounding(monkeypatch, astro
     bd = bdrate.bd_rate([p.bpp for p in plain], [p.psnr for p in plain],
                         [p.bpp for p in with_rdoq], [p.psnr for p in with_rdoq])
     assert bd < -1.0
+
+
+def test_the_same_image_gives_the_same_bundle_whatever_the_blas_thread_count(camera):
+    # A batch worker limits BLAS to one thread (archive._one_core); the app's child process
+    # does not. A threaded product sums in a thread-dependent order, which once changed
+    # the basis's last bits and the bundle by 49 bytes between the two.
+    from threadpoolctl import threadpool_limits
+
+    from workbench import pipeline
+    from workbench.formats.imagefiles import SourceImage
+
+    img = [SourceImage("c", camera)]
+    threaded = pipeline.encode(img, pipeline.Settings()).data
+    with threadpool_limits(1):
+        serial = pipeline.encode(img, pipeline.Settings()).data
+    assert serial == threaded

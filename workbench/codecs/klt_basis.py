@@ -8,6 +8,7 @@ that error equals the sum of the discarded eigenvalues (Eckart & Young, 1936; Mi
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -39,6 +40,25 @@ class Basis:
         return np.cumsum(ev) / total if total > 0 else np.ones_like(ev)
 
 
+@functools.cache
+def _blas():
+    from threadpoolctl import ThreadpoolController
+
+    return ThreadpoolController()
+
+
+def serial_blas():
+    """A context in which BLAS and LAPACK run on one thread.
+
+    A threaded matrix product sums in an order that depends on the thread count, so the
+    same folder gave a basis differing in the last bits, and a bundle 49 bytes longer,
+    in a process whose BLAS had been limited to one thread (a batch worker) than in one
+    that had not. A basis fit is small next to the coding, so it runs serially everywhere:
+    the same input gives the same bytes in every process.
+    """
+    return _blas().limit(limits=1, user_api="blas")
+
+
 CHUNK = 1 << 16  # rows per float32 product: ~1e-5 relative error, ample for a basis
 
 
@@ -58,9 +78,10 @@ class CovarianceAccumulator:
         self.count += x.shape[0]
         # float32 input is multiplied in float32 (twice as fast) in slices short enough that
         # each partial sum stays accurate, and the slices are summed in float64.
-        for i in range(0, x.shape[0], CHUNK):
-            c = x[i : i + CHUNK]
-            self.outer += c.T @ c
+        with serial_blas():
+            for i in range(0, x.shape[0], CHUNK):
+                c = x[i : i + CHUNK]
+                self.outer += c.T @ c
 
     def second_moment(self) -> np.ndarray:
         """Mean outer product of the patches as given (one patch is enough)."""
@@ -80,7 +101,8 @@ def basis_from_covariance(cov: np.ndarray, block: int) -> Basis:
     if cov.shape != (n, n) or not np.all(np.isfinite(cov)):
         raise InputError(f"covariance must be a finite {n}x{n} matrix, got shape {cov.shape}")
     cov = 0.5 * (cov + cov.T)
-    vals, vecs = np.linalg.eigh(cov)
+    with serial_blas():
+        vals, vecs = np.linalg.eigh(cov)
     order = np.argsort(vals, kind="stable")[::-1]
     vals, vecs = vals[order], vecs[:, order]
     idx = np.argmax(np.abs(vecs), axis=0)
