@@ -60,6 +60,7 @@ def main(argv=None):
     ap = argparse.ArgumentParser()
     ap.add_argument("--minutes", type=float, default=120.0)
     ap.add_argument("--distortion-weight", dest="lam", type=float, default=0.08)
+    ap.add_argument("--lr", type=float, default=1e-3, help="peak learning rate (a resumed run may lower it)")
     ap.add_argument("-o", "--output", default=str(HERE / "default.wmodel"))
     ap.add_argument("--start-from", default=str(HERE / FIRST_MODEL),
                     help="model to widen from (default: the first shipped model); 'none' for the KLT")
@@ -67,7 +68,7 @@ def main(argv=None):
     a = ap.parse_args(argv)
     images = training_images()
     start = None if a.start_from == "none" else a.start_from
-    cfg = TrainConfig(minutes=a.minutes, lam=a.lam, seed=2026, start_from=start, latent=192, hidden=64,
+    cfg = TrainConfig(minutes=a.minutes, lam=a.lam, lr=a.lr, seed=2026, start_from=start, latent=192, hidden=64,
                       side=48, side_hidden=64, crop=128, checkpoint_seconds=300)
     last = [0.0]
 
