@@ -1,6 +1,8 @@
 """The conv encoder's hyperprior: an integer synthesis that every machine evaluates alike,
 exact round trips, and a rate model that tracks what is coded."""
 
+import types
+
 import numpy as np
 import pytest
 
@@ -110,10 +112,13 @@ def test_table_index_is_the_scale_in_eighth_octaves_of_the_step():
 def test_hyperprior_bundles_decode_to_the_in_process_reconstruction(hyper_model, images, monkeypatch):
     model, sha, _ = hyper_model
     for step in (2.0, 8.0, 30.0):
-        with monkeypatch.context() as m:  # the adaptive coder, which a young model may lose to, out of the way
-            m.setattr(conv.coefcode, "encode_grids", lambda *a: b"\0" * (1 << 20))
+        with monkeypatch.context() as m:
+            # the latents' adaptive coder, which a young model may lose to, out of the way
+            # (the residual layer below the knee keeps it)
+            m.setattr(conv, "coefcode", types.SimpleNamespace(**{**vars(conv.coefcode),
+                                                                 "encode_grids": lambda *a: b"\0" * (1 << 20)}))
             result = pipeline.encode(images, Settings(method="conv", step=step), shared=model, shared_ref=sha)
-        assert {e.payload[3] for e in bundle.parse(result.data).entries} == {conv.HYPER_ADAPTIVE}
+        assert {e.payload[3] & ~conv.RESIDUAL for e in bundle.parse(result.data).entries} == {conv.HYPER_ADAPTIVE}
         out = workbench.decompress(result.data, basis=model, basis_ref=sha)
         for r in result.images:
             assert np.array_equal(out[r.name], r.reconstruction)
@@ -123,7 +128,7 @@ def test_streams_under_the_fixed_hyperprior_tables_still_decode(hyper_model, ima
     # Coder 3 (fixed tables) was written by development models before the adapted coder.
     model, _, _ = hyper_model
     planes = pipeline.image_planes(images[0], "444")
-    cd = conv.CODEC.quantise(conv.CODEC.analyse(planes, Settings(method="conv"), model), step=8.0, count=None)
+    cd = conv.CODEC.quantise(conv.CODEC.analyse(planes, Settings(method="conv"), model), step=16.0, count=None)
     lo, hi = modelfile.TABLE_MIN, modelfile.TABLE_MAX
     table, offset = hyperprior.table_and_offset(cd.analysis.prior[0], cd.analysis.prior[1], cd.step_index, lo, hi)
     tabs = model.data.tables
@@ -171,7 +176,7 @@ def test_fewer_kept_latents_cost_fewer_bytes_under_the_hyperprior(hyper_model, i
     assert sizes[0] < sizes[1] < sizes[2]
 
 
-def test_coded_size_tracks_the_models_rate_estimate(hyper_model, images):
+def test_coded_size_tracks_the_models_rate_estimate(hyper_model, images, monkeypatch):
     # The training objective's rate (Ballé et al. 2018: -log2 of the discretised density) and
     # the bytes the range coder writes should agree to within the coder's rounding of the
     # mean and the scale, plus the streams' small headers.
@@ -184,6 +189,7 @@ def test_coded_size_tracks_the_models_rate_estimate(hyper_model, images):
         q = torch.round(y)
         keep = torch.ones(1, model.channels, 1, 1)
         estimate = float(model.net.hyper_bits(y, q, torch.ones(1, 1, 1, 1), keep, None)[0])
+    monkeypatch.setattr(conv, "RESIDUAL_KNEE", 0.0)  # the latents alone, at a latent step of 1
     cd = conv.CODEC.quantise(conv.CODEC.analyse(planes, Settings(method="conv"), model), step=8.0, count=None)
     lo, hi = modelfile.TABLE_MIN, modelfile.TABLE_MAX
     table, offset = hyperprior.table_and_offset(cd.analysis.prior[0], cd.analysis.prior[1], cd.step_index, lo, hi)
@@ -196,10 +202,19 @@ def test_coded_size_tracks_the_models_rate_estimate(hyper_model, images):
 def test_a_truncated_side_stream_gives_the_clear_error(hyper_model, images, monkeypatch):
     model, sha, _ = hyper_model
     monkeypatch.setattr(conv.coefcode, "encode_grids", lambda *a: b"\0" * (1 << 20))
-    payload = bundle.parse(pipeline.encode(images[:1], Settings(method="conv"), shared=model,
+    payload = bundle.parse(pipeline.encode(images[:1], Settings(method="conv", step=16.0), shared=model,
                                                      shared_ref=sha).data).entries[0].payload
     with pytest.raises(BundleError, match="side stream"):
         conv.CODEC.decode(payload[:6], [(128, 160)] * 3, Settings(method="conv"), model)
+
+
+def test_a_truncated_latent_stream_before_a_residual_layer_gives_the_clear_error(hyper_model, images):
+    model, sha, _ = hyper_model
+    payload = bundle.parse(pipeline.encode(images[:1], Settings(method="conv", step=4.0), shared=model,
+                                           shared_ref=sha).data).entries[0].payload
+    assert payload[3] & conv.RESIDUAL
+    with pytest.raises(BundleError, match="latent stream is truncated"):
+        conv.CODEC.decode(payload[:12], [(128, 160)] * 3, Settings(method="conv"), model)
 
 
 def test_side_latents_cover_the_latent_grid(hyper_model):

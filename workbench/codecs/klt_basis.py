@@ -143,6 +143,14 @@ def dct2_matrix(n: int) -> np.ndarray:
     return m
 
 
+@functools.cache
+def dct_basis(block: int) -> Basis:
+    """The separable 2-D DCT-II of ``block`` x ``block`` patches as a fixed :class:`Basis`
+    (vectors in row-major patch order; the eigenvalues, unknown, are set to one)."""
+    d = dct2_matrix(block)
+    return Basis(np.kron(d, d), np.ones(block * block), block)
+
+
 # ------------------------------------------------------------- compact storage
 
 
