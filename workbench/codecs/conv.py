@@ -63,9 +63,10 @@ STEP_INDEX_RANGE = (-64, 64)
 RESIDUAL = 0x80  # coder-byte flag: a residual layer follows the latents
 # Below this step the latents stop getting finer and the residual layer takes over. On the
 # four held-out photographs (astronaut, coffee, chelsea, rocket) with the second shipped
-# model, the latents alone cost more than a DCT-coded residual above about 36 dB; knees of
-# 8, 11 and 16 gave mean BD-rates vs JPEG of -20.8, -21.5 and -21.7 %, 11 the steadiest
-# per image (-23.0, -23.6, -21.3, -18.1).
+# model, the latents alone cost more than a DCT-coded residual above about 36 dB. Mean
+# BD-rate vs JPEG (with the latent deadzone below) for knees of 8, 11, 16, 22 and 32:
+# -22.2, -23.1, -23.4, -22.9, -21.2 %; the best knee differs per image (chelsea 11 or
+# less, rocket 22).
 RESIDUAL_KNEE = 11.0
 _RESIDUAL_SETTINGS = None
 
