@@ -40,6 +40,11 @@ class TrainConfig:
     minutes: float = 10.0
     seed: int = 0
     lr: float = 1e-3
+    # Latent steps trained on, log-uniform (the workbench's step is 8 times the latent step).
+    # Below the residual layer's knee (conv.RESIDUAL_KNEE / 8) the latents are not refined
+    # further, so training time spent there is lost; the shipped model's first 16,646
+    # steps drew from 0.18 .. 2.8.
+    step_range: tuple = (1.0, 8.0)
     checkpoint_seconds: float = 60.0
     max_steps: int | None = None
     start_from: str | None = "shipped"  # "shipped", a .wmodel path, or None for random weights
@@ -236,7 +241,7 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
                 g["lr"] = config.lr * g["scale"] * warm * (0.1 + 0.45 * (1 + np.cos(np.pi * frac)))
             batch = torch.from_numpy(np.stack([_crop(rng, train[rng.integers(len(train))], config.crop)
                                               for _ in range(BATCH)]))
-            loss, b, mse = conv_model.train_step(net, batch, config.lam, gen)
+            loss, b, mse = conv_model.train_step(net, batch, config.lam, gen, config.step_range)
             opt.zero_grad()
             if torch.isfinite(loss):
                 loss.backward()

@@ -202,14 +202,17 @@ def _laplace_cdf(x, b):
     return 0.5 + 0.5 * torch.sign(x) * (1 - torch.exp(-x.abs() / b))
 
 
-def train_step(model: Autoencoder, x: torch.Tensor, lam: float, gen: torch.Generator):
-    """Loss = bits per pixel + (lam / s^2) * 255^2 * MSE per image, with a random latent step s
-    and nested dropout. Scaling lambda with 1/s^2 keeps each step at its own rate–distortion
-    balance (distortion grows as the step squared), so one model serves every step."""
+def train_step(model: Autoencoder, x: torch.Tensor, lam: float, gen: torch.Generator,
+               steps: tuple[float, float] = (2 ** -2.5, 2 ** 1.5)):
+    """Loss = bits per pixel + (lam / s^2) * 255^2 * MSE per image, with a latent step s drawn
+    log-uniformly from ``steps`` and nested dropout. Scaling lambda with 1/s^2 keeps each
+    step at its own rate–distortion balance (distortion grows as the step squared), so one
+    model serves every step."""
     nb, _, h, w = x.shape
     c = model.arch.latent
     y = model.encoder(x)
-    s = torch.exp2(torch.rand(nb, 1, 1, 1, generator=gen) * 4.0 - 2.5)  # latent steps 0.18 .. 2.8
+    lo, hi = np.log2(steps[0]), np.log2(steps[1])
+    s = torch.exp2(torch.rand(nb, 1, 1, 1, generator=gen) * float(hi - lo) + float(lo))
     noise = torch.rand(y.shape, generator=gen) - 0.5
     y_tilde = y / s + noise
     keep_n = torch.where(torch.rand(nb, generator=gen) < 0.5, torch.full((nb,), c),

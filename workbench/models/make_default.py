@@ -61,6 +61,8 @@ def main(argv=None):
     ap.add_argument("--minutes", type=float, default=120.0)
     ap.add_argument("--distortion-weight", dest="lam", type=float, default=0.08)
     ap.add_argument("--lr", type=float, default=1e-3, help="peak learning rate (a resumed run may lower it)")
+    ap.add_argument("--step-range", nargs=2, type=float, default=(1.0, 8.0), metavar=("LO", "HI"),
+                    help="latent steps trained on (log-uniform)")
     ap.add_argument("-o", "--output", default=str(HERE / "default.wmodel"))
     ap.add_argument("--start-from", default=str(HERE / FIRST_MODEL),
                     help="model to widen from (default: the first shipped model); 'none' for the KLT")
@@ -68,7 +70,7 @@ def main(argv=None):
     a = ap.parse_args(argv)
     images = training_images()
     start = None if a.start_from == "none" else a.start_from
-    cfg = TrainConfig(minutes=a.minutes, lam=a.lam, lr=a.lr, seed=2026, start_from=start, latent=192, hidden=64,
+    cfg = TrainConfig(minutes=a.minutes, lam=a.lam, lr=a.lr, step_range=tuple(a.step_range), seed=2026, start_from=start, latent=192, hidden=64,
                       side=48, side_hidden=64, crop=128, checkpoint_seconds=300)
     last = [0.0]
 
