@@ -78,5 +78,5 @@ def test_block_klt_at_default_settings_needs_fewer_bits_than_jpeg(tmp_path):
 
 def test_shipped_conv_model_needs_no_more_bits_than_jpeg(tmp_path):
     pytest.importorskip("torch")
-    bd = _bd_per_photo(tmp_path, (1.0, 1.6, 2.5, 4.0, 6.5), method="conv")
+    bd = _bd_per_photo(tmp_path, (4.0, 8.0, 13.0, 22.0, 32.0), method="conv")
     assert np.mean(list(bd.values())) <= 0.0, bd
