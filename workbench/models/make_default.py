@@ -61,7 +61,7 @@ def main(argv=None):
     ap.add_argument("--minutes", type=float, default=120.0)
     ap.add_argument("--distortion-weight", dest="lam", type=float, default=0.08)
     ap.add_argument("--lr", type=float, default=1e-3, help="peak learning rate (a resumed run may lower it)")
-    ap.add_argument("--step-range", nargs=2, type=float, default=(1.0, 8.0), metavar=("LO", "HI"),
+    ap.add_argument("--step-range", nargs=2, type=float, default=(2 ** -2.5, 2 ** 1.5), metavar=("LO", "HI"),
                     help="latent steps trained on (log-uniform)")
     ap.add_argument("-o", "--output", default=str(HERE / "default.wmodel"))
     ap.add_argument("--start-from", default=str(HERE / FIRST_MODEL),
