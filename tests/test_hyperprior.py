@@ -32,8 +32,9 @@ def hyper_model(tmp_path_factory, images):
     path = tmp_path_factory.mktemp("h") / "hyper.wmodel"
     cfg = TrainConfig(latent=12, hidden=16, side=4, side_hidden=8, max_steps=40, seed=4)
     record = run(train_job(images, path, cfg))
-    model, sha = get("conv").load_model(path)
-    return model, sha, record
+    # The hyperprior's stream is tried whatever the training measured (see the latent-coder tests).
+    model = conv.Model(modelfile.read_model(path), coder="both")
+    return model, model.sha256, record
 
 
 def _reference_synthesis(weights, z, latent):
@@ -249,3 +250,27 @@ def test_adapting_the_synthesis_only_keeps_the_encoder(images, tmp_path, hyper_m
     before, after = model.data.weights, tuned.data.weights
     assert all(np.array_equal(before[k], after[k]) for k in before if k.startswith(("analysis.", "encoder_deep.")))
     assert not np.array_equal(before["synthesis.weight"], after["synthesis.weight"])
+
+
+def test_a_trained_model_records_which_latent_coder_paid_on_its_validation_crops(hyper_model, images, tmp_path):
+    # The record equals a direct comparison of both coders' streams on crops of the images.
+    from workbench.training import CALIBRATION_STEPS, _planes01, latent_coder
+
+    model, _, _ = hyper_model
+    crops = np.stack([_planes01(i)[:, :64, :64] for i in images])
+    total = {"hyperprior": 0, "context": 0}
+    for x in crops:
+        a = conv.CODEC.analyse([p * 255.0 for p in x.astype(np.float64)], None, model)
+        for step in CALIBRATION_STEPS:
+            for k, n in conv.stream_sizes(conv.CODEC.quantise(a, step=step, count=None)).items():
+                total[k] += n
+    expected = "hyperprior" if total["hyperprior"] < total["context"] else "context"
+    assert latent_coder(model.data.raw, crops) == expected
+
+
+def test_a_model_whose_record_says_context_is_coded_without_its_hyperprior(hyper_model, images):
+    model, _, _ = hyper_model
+    ctx = conv.Model(model.data, coder="context")
+    a = conv.CODEC.analyse(pipeline.image_planes(images[0], "444"), None, ctx)
+    assert a.side is None and a.prior is None
+    assert set(conv.stream_sizes(conv.CODEC.quantise(a, step=16.0, count=None))) == {"context"}

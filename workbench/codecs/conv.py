@@ -83,7 +83,7 @@ def _residual_settings():
 class Model:
     """A loaded model: torch modules in eval mode plus its entropy tables."""
 
-    def __init__(self, data: ModelData):
+    def __init__(self, data: ModelData, coder: str | None = None):
         import torch
 
         from .conv_model import Arch, Autoencoder
@@ -101,6 +101,10 @@ class Model:
 
         self.net = for_inference(net)
         self.hyper = bool(self.arch.side)
+        # Whether the encoder tries the hyperprior's stream: a trained model records which
+        # latent coder paid on its validation crops (training.latent_coder); "both" for
+        # models without that record, and for the measurement itself.
+        self.uses_hyper = self.hyper and (coder or data.info.get("latent_coder", "both")) != "context"
         if self.hyper:
             # Exact: a float32 times 8 and rounding are the same everywhere.
             zl = np.asarray(data.weights["hyper.z_log_scale"], np.float64)
@@ -139,6 +143,17 @@ class Analysis:
     side: np.ndarray | None = None  # integer side latents (hyperprior models)
     prior: tuple | None = None  # their integer (mean16, log8), the same at every step
     source: list | None = None  # the planes coded (for a residual layer)
+    _tables: dict | None = None  # step index -> the prior's (table, offset) at that step
+
+    def tables_at(self, j: int, kept: int):
+        """The hyperprior's (table, whole-step offset) of the first ``kept`` channels at step
+        index ``j``, computed once per step (quantise and serialise both need them)."""
+        if self._tables is None:
+            self._tables = {}
+        if j not in self._tables:
+            self._tables = {j: hyperprior.table_and_offset(self.prior[0], self.prior[1], j, TABLE_MIN, TABLE_MAX)}
+        table, offset = self._tables[j]
+        return table[:kept], offset[:kept]
 
 
 @dataclass
@@ -181,14 +196,17 @@ LATENT_DEADZONE = 0.40
 def _levels(a: Analysis, kept: int, j: int, s: float) -> np.ndarray:
     """Latent levels at latent step ``s`` (index ``j``): deadzone rounding about the mean
     the decoder predicts (zero for a model without a hyperprior)."""
-    x = a.latents[:kept] / np.float32(s)
+    x = a.latents[:kept] * np.float32(1.0 / s)
     if a.prior is None:
-        off = 0
+        off = None
     else:
-        _, off = hyperprior.table_and_offset(a.prior[0][:kept], a.prior[1][:kept], j, TABLE_MIN, TABLE_MAX)
-        x = x - off
+        off = a.tables_at(j, kept)[1]
+        x -= off.astype(np.float32)  # |offset| < 2**24: exact in float32
     x += np.copysign(np.float32(LATENT_DEADZONE), x)
-    return np.trunc(x).astype(np.int64) + off
+    q = np.trunc(x, out=x).astype(np.int64)
+    if off is not None:
+        q += off
+    return q
 
 
 def _step_index(step: float) -> int:
@@ -253,7 +271,7 @@ class ConvCodec(CodecBase):
         stack = [planes[0]] + ([np.full(shape, 128.0)] * 2 if grey else list(planes[1:]))
         x = (np.stack(stack) / 255.0).astype(np.float32)
         y = encode_array(model.net, x)
-        if not model.hyper:
+        if not model.uses_hyper:
             return Analysis(y, shape, grey, model, settings, source=list(planes))
         from .conv_model import side_latents
 
@@ -287,24 +305,10 @@ class ConvCodec(CodecBase):
             + klt.CODEC.serialise(c.residual)
 
     def _serialise_latents(self, c: Coded) -> bytes:
-        a = c.analysis
-        adaptive = coefcode.encode_grids([np.ascontiguousarray(c.q.transpose(1, 2, 0))], [3], TOKEN_SPLIT)
-        coder = ADAPTIVE if TOKEN_SPLIT is not None else ADAPTIVE_ONE_STAGE
-        if a.model.hyper:
-            tabs = a.model.data.tables
-            side = symbols.encode_fixed(list(a.side), [tabs[t] for t in a.model.side_tables])
-            table, offset = hyperprior.table_and_offset(a.prior[0][:c.kept], a.prior[1][:c.kept], c.step_index,
-                                                        TABLE_MIN, TABLE_MAX)
-            body = _SIDE.pack(len(side)) + side + hyperprior.encode_latents(c.q - offset, table - TABLE_MIN, tabs)
-            own = HYPER_ADAPTIVE
-        else:
-            counts = [a.model.data.counts(ch, c.step_index) for ch in range(c.kept)]
-            body, own = symbols.encode_fixed(list(c.q), counts), LEARNED
         # The model's own entropy model, or the adaptive context coder where it does better
         # (a model early in its training, or images unlike its training set).
-        if len(adaptive) < len(body):
-            return _HEAD.pack(c.step_index, c.kept, coder) + adaptive
-        return _HEAD.pack(c.step_index, c.kept, own) + body
+        coder, body = min(_latent_streams(c).values(), key=lambda cb: len(cb[1]))
+        return _HEAD.pack(c.step_index, c.kept, coder) + body
 
     def payload_header(self, payload: bytes) -> tuple[float, int]:
         if len(payload) < _HEAD.size:
@@ -366,6 +370,29 @@ class ConvCodec(CodecBase):
         if adapted:
             return hyperprior.decode_latents(rest, table - TABLE_MIN, tabs) + offset
         return symbols.decode_grouped(rest, table - TABLE_MIN, tabs) + offset
+
+
+def _latent_streams(c: Coded) -> dict:
+    """``{kind: (coder byte, stream)}`` of the latent coders this model tries: ``context``
+    (the adaptive context coder), and ``hyperprior`` or ``tables`` (the model's own)."""
+    a = c.analysis
+    out = {"context": (ADAPTIVE if TOKEN_SPLIT is not None else ADAPTIVE_ONE_STAGE,
+                       coefcode.encode_grids([np.ascontiguousarray(c.q.transpose(1, 2, 0))], [3], TOKEN_SPLIT))}
+    if a.model.uses_hyper:
+        tabs = a.model.data.tables
+        side = symbols.encode_fixed(list(a.side), [tabs[t] for t in a.model.side_tables])
+        table, offset = a.tables_at(c.step_index, c.kept)
+        out["hyperprior"] = (HYPER_ADAPTIVE, _SIDE.pack(len(side)) + side
+                             + hyperprior.encode_latents(c.q - offset, table - TABLE_MIN, tabs))
+    elif not a.model.hyper:
+        counts = [a.model.data.counts(ch, c.step_index) for ch in range(c.kept)]
+        out["tables"] = (LEARNED, symbols.encode_fixed(list(c.q), counts))
+    return out
+
+
+def stream_sizes(c: Coded) -> dict:
+    """Bytes of each latent coder's stream for ``c`` (see :func:`_latent_streams`)."""
+    return {k: len(body) for k, (_, body) in _latent_streams(c).items()}
 
 
 def _split_residual(payload: bytes) -> tuple[bytes, bytes]:

@@ -9,6 +9,12 @@ model (``conv-v1.wmodel``: 96 latents, no hyperprior, 12,532 steps from the KLT 
 data and seed, made by this script's first version). ``--resume`` continues a run from its
 checkpoint (the model file and its ``.state`` beside it) with a fresh ``--minutes`` budget;
 the training record inside the model lists every step's held-out figures.
+
+The shipped ``default.wmodel`` is ``make_default --minutes 100`` (16,646 steps on a shared
+2-core CPU; peak learning rate 1e-3, latent steps 0.18 to 2.8), then ``make_default --resume
+--minutes 0``, which trains no further and records which latent coder pays on the
+validation crops (``training.latent_coder``: the adaptive context coder, so the encoder
+skips the hyperprior's stream).
 """
 
 from __future__ import annotations
