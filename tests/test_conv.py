@@ -235,3 +235,25 @@ def test_a_psnr_target_of_42_db_is_met_on_a_held_out_photograph(astronaut):
     r = pipeline.encode([SourceImage("astronaut", astronaut)], Settings(method="conv", target=("psnr", 42.0)))
     assert r.images[0].target_met
     assert peak_signal_noise_ratio(astronaut, r.images[0].reconstruction) >= 42.0
+
+
+def test_rate_and_psnr_are_continuous_across_the_residual_knee(astronaut):
+    # Just below the knee the residual layer's step is very coarse, so it adds almost
+    # nothing; a jump here would leave targets between the two sides unreachable.
+    from workbench.codecs import conv
+
+    img = [SourceImage("a", astronaut[128:384, 128:384])]
+    below, above = (pipeline.encode(img, Settings(method="conv", step=s)) for s in
+                    (conv.RESIDUAL_KNEE * 0.99, conv.RESIDUAL_KNEE))
+    assert abs(below.images[0].psnr - above.images[0].psnr) < 0.1
+    assert abs(below.size - above.size) < 0.02 * above.size
+
+
+def test_a_residual_payload_reports_the_step_it_was_asked_for(astronaut):
+    from workbench.codecs import conv
+    from workbench.formats import bundle
+
+    made = pipeline.encode([SourceImage("a", astronaut[:128, :128])], Settings(method="conv", step=5.0))
+    payload = bundle.parse(made.data).entries[0].payload
+    assert payload[3] & conv.RESIDUAL
+    assert conv.CODEC.payload_header(payload)[0] == pytest.approx(5.0, rel=1e-5)
