@@ -14,7 +14,7 @@ The shipped ``default.wmodel`` is ``make_default --minutes 100`` (16,646 steps o
 2-core CPU; peak learning rate 1e-3, latent steps 0.18 to 2.8), then ``make_default --resume
 --minutes 0``, which trains no further and records which latent coder pays on the
 validation crops (``training.latent_coder``: the adaptive context coder, so the encoder
-skips the hyperprior's stream).
+skips the hyperprior's stream). The first run's log is ``.training/default-v2.log``.
 """
 
 from __future__ import annotations
