@@ -146,6 +146,9 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
 
     if not images:
         raise InputError("no readable images to train on")
+    lo, hi = config.step_range
+    if not (0 < lo <= hi < float("inf")):
+        raise InputError(f"the training step range must be 0 < LO <= HI, got {lo!r} .. {hi!r}")
     out = Path(out)
     torch.manual_seed(config.seed)
     torch.set_num_threads(max(1, torch.get_num_threads()))

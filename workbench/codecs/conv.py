@@ -90,16 +90,13 @@ def step_from_residual(b: float) -> float:
         mid = 0.5 * (lo + hi)
         lo, hi = (mid, hi) if residual_step(mid) < b else (lo, mid)
     return 0.5 * (lo + hi)
-_RESIDUAL_SETTINGS = None
 
 
+@lru_cache(maxsize=1)
 def _residual_settings():
-    global _RESIDUAL_SETTINGS
-    if _RESIDUAL_SETTINGS is None:
-        from ..settings import Settings
+    from ..settings import Settings
 
-        _RESIDUAL_SETTINGS = Settings(method="klt", block=8, chroma="444")
-    return _RESIDUAL_SETTINGS
+    return Settings(method="klt", block=8, chroma="444")
 
 
 class Model:
@@ -165,17 +162,15 @@ class Analysis:
     side: np.ndarray | None = None  # integer side latents (hyperprior models)
     prior: tuple | None = None  # their integer (mean16, log8), the same at every step
     source: list | None = None  # the planes coded (for a residual layer)
-    _tables: dict | None = None  # step index -> the prior's (table, offset) at that step
+    _tables: tuple | None = None  # (step index, the prior's table, offset) of the last step asked for
     _residual: tuple | None = None  # ((step index, kept), base planes, residual's klt analysis)
 
     def tables_at(self, j: int, kept: int):
         """The hyperprior's (table, whole-step offset) of the first ``kept`` channels at step
         index ``j``, computed once per step (quantise and serialise both need them)."""
-        if self._tables is None:
-            self._tables = {}
-        if j not in self._tables:
-            self._tables = {j: hyperprior.table_and_offset(self.prior[0], self.prior[1], j, TABLE_MIN, TABLE_MAX)}
-        table, offset = self._tables[j]
+        if self._tables is None or self._tables[0] != j:
+            self._tables = (j,) + hyperprior.table_and_offset(self.prior[0], self.prior[1], j, TABLE_MIN, TABLE_MAX)
+        _, table, offset = self._tables
         return table[:kept], offset[:kept]
 
 
@@ -306,7 +301,7 @@ class ConvCodec(CodecBase):
         # With fewer latents than the model has, the latents alone are coded, so that the
         # latent-size slider shows what they carry.
         residual = step < RESIDUAL_KNEE and a.source is not None and kept == a.model.channels
-        j = _step_index(max(step, RESIDUAL_KNEE) / 8.0 if residual else step / 8.0)
+        j = _step_index((RESIDUAL_KNEE if residual else step) / 8.0)
         s = float(2.0 ** (j / 8))
         c = Coded(8.0 * s, j, _levels(a, kept, j, s), kept, a)
         if residual:

@@ -76,8 +76,9 @@ def main(argv=None):
     a = ap.parse_args(argv)
     images = training_images()
     start = None if a.start_from == "none" else a.start_from
-    cfg = TrainConfig(minutes=a.minutes, lam=a.lam, lr=a.lr, step_range=tuple(a.step_range), seed=2026, start_from=start, latent=192, hidden=64,
-                      side=48, side_hidden=64, crop=128, checkpoint_seconds=300)
+    cfg = TrainConfig(minutes=a.minutes, lam=a.lam, lr=a.lr, step_range=tuple(a.step_range), seed=2026,
+                      start_from=start, latent=192, hidden=64, side=48, side_hidden=64, crop=128,
+                      checkpoint_seconds=300)
     last = [0.0]
 
     def show(p):
@@ -85,7 +86,12 @@ def main(argv=None):
             last[0] = p.done
             print(f"{p.done / 60:5.1f} min  {p.text}", flush=True)
 
-    r = run(train_job(images, a.output, cfg, resume=a.resume), show)
+    from workbench.errors import InputError
+
+    try:
+        r = run(train_job(images, a.output, cfg, resume=a.resume), show)
+    except InputError as exc:
+        sys.exit(f"make_default: {exc}")
     print(f"wrote {a.output}: {r['steps']} steps, last validation {r['history'][-1]}")
 
 
