@@ -214,15 +214,15 @@ def rdo_levels(x: np.ndarray, q: np.ndarray, lam: float = RDOQ_LAMBDA) -> np.nda
     drop = (a - mf + 1) ** 2 + table[cell - (m < _RDOQ_MAGS)]
     mag[at_nz] = np.where(drop < keep, m - 1, m)
     zero_run = np.concatenate([[0.0], np.cumsum(bits[:, 0])])  # zero_run[j]: bits of zeros in 0..j-1
-    alive = mag.reshape(k, n) != 0  # finding each patch's last two non-zeros is two argmax passes
+    alive = mag.reshape(k, n) != 0  # finding each patch's last two non-zeros is two passes
     alive[0] = True
     cols = np.arange(n)
     xa = x.reshape(-1)
     for _ in range(2):
-        last = k - 1 - np.argmax(alive[::-1], axis=0)
+        last = _last_true(alive)
         alive[last, cols] = False
         alive[0] = True
-        prev = k - 1 - np.argmax(alive[::-1], axis=0)  # the non-zero before, or component 0
+        prev = _last_true(alive)  # the non-zero before, or component 0
         alive[last, cols] = True
         has = last > 0
         lk, pk = last[has], prev[has]
@@ -234,6 +234,15 @@ def rdo_levels(x: np.ndarray, q: np.ndarray, lam: float = RDOQ_LAMBDA) -> np.nda
         alive.reshape(-1)[f[kill]] = False
     flat_q[at_nz] = np.sign(flat_q[at_nz]) * mag[at_nz]
     return q
+
+
+def _last_true(alive: np.ndarray) -> np.ndarray:
+    """Per column of the (K, N) bool ``alive``, the index of its last True row (0 if none).
+
+    A row-wise maximum of ``alive * index``: numpy's argmax along axis 0 copies the array to
+    reduce along its last axis, 8x slower at K = 64 (measured on a 4-MP plane)."""
+    idx = np.arange(alive.shape[0], dtype=np.uint16 if alive.shape[0] <= 65535 else np.uint32)
+    return np.max(alive * idx[:, None], axis=0).astype(np.intp)
 
 
 def deadzone_quantise(c: np.ndarray, step: float, offset: float) -> np.ndarray:
