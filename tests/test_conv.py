@@ -156,6 +156,31 @@ def test_training_is_deterministic_with_a_seed(small_images, tmp_path):
     assert a["sha256"] == b["sha256"]
 
 
+def test_colour_augmentation_keeps_the_luma_and_leaves_grey_grey():
+    # In YCbCr (ITU-R BT.601) hue and saturation live in the (Cb, Cr) plane around its
+    # centre: turning and scaling that plane must leave Y, and a grey pixel, as they were.
+    from skimage import data
+
+    from workbench.training import _planes01, _recolour
+
+    x = _planes01(SourceImage("astronaut", data.astronaut()))[:, :64, :64]
+    x[:, :8, :8] = [[[0.3]], [[0.5]], [[0.5]]]  # a grey corner
+    out = _recolour(np.random.default_rng(3), x)
+    assert np.array_equal(out[0], x[0])
+    assert np.allclose(out[1:, :8, :8], 0.5, atol=1e-6)
+    assert not np.allclose(out[1:], x[1:], atol=0.01)
+    assert out.min() >= 0 and out.max() <= 1
+
+
+def test_augmented_training_is_seeded_and_recorded_in_the_model(small_images, tmp_path):
+    cfg = TrainConfig(latent=4, hidden=8, side=0, side_hidden=0, max_steps=3, seed=4, augment=True)
+    a = run(train_job(small_images, tmp_path / "a.wmodel", cfg))
+    b = run(train_job(small_images, tmp_path / "b.wmodel", cfg))
+    assert a["sha256"] == b["sha256"]
+    info = modelfile.read_model(tmp_path / "a.wmodel").info
+    assert info["augment"] is True
+
+
 def test_resume_continues_from_the_checkpoint(small_images, tmp_path):
     cfg = TrainConfig(latent=4, hidden=8, side=0, side_hidden=0, max_steps=3, seed=2)
     run(train_job(small_images, tmp_path / "r.wmodel", cfg))

@@ -49,6 +49,10 @@ class TrainConfig:
     checkpoint_seconds: float = 60.0
     max_steps: int | None = None
     start_from: str | None = "shipped"  # "shipped", a .wmodel path, or None for random weights
+    # Colour augmentation: each crop's chroma turned by a random hue angle and scaled by a
+    # random saturation, so a folder with few colour photographs still shows the model many
+    # colours (the planes are YCbCr, so only Cb and Cr move and the luma is untouched).
+    augment: bool = False
 
 
 def _planes01(img: SourceImage) -> np.ndarray:
@@ -70,6 +74,20 @@ def _crop(rng, x, size: int = CROP):
     if rng.random() < 0.5:
         c = c[:, ::-1, :]
     return np.ascontiguousarray(c)
+
+
+def _recolour(rng, c: np.ndarray) -> np.ndarray:
+    """``c`` (3, h, w) YCbCr in [0, 1] with its (Cb, Cr) turned by a hue angle in [-pi, pi)
+    and scaled by a saturation in [0.5, 1.6], clipped back to [0, 1]."""
+    a = rng.uniform(-np.pi, np.pi)
+    g = float(np.exp(rng.uniform(np.log(0.5), np.log(1.6))))
+    cb, cr = c[1] - 0.5, c[2] - 0.5
+    co, si = np.cos(a) * g, np.sin(a) * g
+    out = np.empty_like(c)
+    out[0] = c[0]
+    out[1] = np.clip(0.5 + co * cb - si * cr, 0.0, 1.0)
+    out[2] = np.clip(0.5 + si * cb + co * cr, 0.0, 1.0)
+    return out
 
 
 def _klt_patches(train, rng, n: int = 40000) -> np.ndarray:
@@ -268,8 +286,10 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
             warm = min(1.0, (step - step0 + 1) / WARMUP)
             for g in opt.param_groups:
                 g["lr"] = config.lr * g["scale"] * warm * (0.1 + 0.45 * (1 + np.cos(np.pi * frac)))
-            batch = torch.from_numpy(np.stack([_crop(rng, train[rng.integers(len(train))], config.crop)
-                                              for _ in range(BATCH)]))
+            crops = [_crop(rng, train[rng.integers(len(train))], config.crop) for _ in range(BATCH)]
+            if config.augment:
+                crops = [_recolour(rng, c) for c in crops]
+            batch = torch.from_numpy(np.stack(crops))
             loss, b, mse = conv_model.train_step(net, batch, config.lam, gen, config.step_range)
             opt.zero_grad()
             if torch.isfinite(loss):
@@ -311,4 +331,5 @@ def _graft(net, state: dict) -> None:
 
 def _info(config, step, history, images):
     return {"steps": step, "lambda": config.lam, "seed": config.seed, "crop": config.crop, "batch": BATCH,
+            "augment": config.augment,
             "history": history[-200:], "images": [i.name for i in images][:500]}

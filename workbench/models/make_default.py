@@ -30,7 +30,7 @@ ROOT = HERE.parents[1]
 FIRST_MODEL = "conv-v1.wmodel"  # the first shipped model (96 latents, no hyperprior), kept so its bundles decode
 HELD_OUT = {"astronaut", "coffee", "chelsea", "rocket", "cat"}
 OPEN_IMAGES = ["camera", "hubble_deep_field", "immunohistochemistry", "retina", "brick", "grass", "gravel",
-               "colorwheel", "moon", "page", "text", "coins", "clock", "horse", "logo"]
+               "colorwheel", "moon", "page", "text", "coins", "clock", "horse", "logo", "cell", "microaneurysms"]
 
 
 def training_images():
@@ -49,6 +49,7 @@ def training_images():
         if a.ndim == 3 and a.shape[2] == 4:
             a = a[..., :3]
         out.append(SourceImage(name, a.astype(np.uint8)))
+    out.extend(_registry_photographs())
     sys.path.insert(0, str(ROOT / "sample_images"))
     import make_samples
 
@@ -56,6 +57,31 @@ def training_images():
     for i in range(6):
         out.append(SourceImage(f"loom{i}", make_samples.fabric(rng, defect=i == 3)))
         out.append(SourceImage(f"drone{i}", make_samples.aerial(rng)))
+    return out
+
+
+def _registry_photographs():
+    """Open photographs bundled with two packages from PyPI, used when installed (the
+    ``train`` extra): scikit-learn's two sample photographs (CC BY 2.0, per the README beside
+    them) and PyWavelets' grey ``aero`` and ``ascent``."""
+    from workbench.formats.imagefiles import SourceImage
+
+    out = []
+    try:
+        from sklearn.datasets import load_sample_image
+
+        for name in ("china.jpg", "flower.jpg"):
+            out.append(SourceImage(name.split(".")[0], np.asarray(load_sample_image(name), np.uint8)))
+    except ImportError:
+        pass
+    try:
+        import pywt.data
+
+        for name in ("aero", "ascent"):
+            a = np.asarray(getattr(pywt.data, name)())
+            out.append(SourceImage(name, np.clip(a, 0, 255).astype(np.uint8)))
+    except ImportError:
+        pass
     return out
 
 
@@ -73,11 +99,14 @@ def main(argv=None):
     ap.add_argument("--start-from", default=str(HERE / FIRST_MODEL),
                     help="model to widen from (default: the first shipped model); 'none' for the KLT")
     ap.add_argument("--resume", action="store_true", help="continue the checkpoint at --output")
+    ap.add_argument("--no-augment", dest="augment", action="store_false",
+                    help="train on the crops' own colours only (default: random hue and saturation)")
     a = ap.parse_args(argv)
     images = training_images()
+    print("training on", len(images), "images:", " ".join(i.name for i in images), flush=True)
     start = None if a.start_from == "none" else a.start_from
     cfg = TrainConfig(minutes=a.minutes, lam=a.lam, lr=a.lr, step_range=tuple(a.step_range), seed=2026,
-                      start_from=start, latent=192, hidden=64, side=48, side_hidden=64, crop=128,
+                      start_from=start, augment=a.augment, latent=192, hidden=64, side=48, side_hidden=64, crop=128,
                       checkpoint_seconds=300)
     last = [0.0]
 
