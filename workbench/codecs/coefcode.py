@@ -62,6 +62,18 @@ SPLIT = 8  # tokens from here on are coded in a second stage (see _Models)
 _AC_CLASS = np.searchsorted(AC_EDGES, np.arange(AC_EDGES[-1] + 1), side="right").astype(np.int32)
 
 
+def _classifier(edges: np.ndarray):
+    """``f(v)`` = ``np.searchsorted(edges, v, side="right")`` for integers ``v >= 0``, by table
+    lookup: a binary search per value cost the decoder a tenth of its time at 4 MP."""
+    table = np.searchsorted(edges, np.arange(edges[-1] + 1), side="right").astype(np.int64)
+    top = int(edges[-1])
+    return lambda v: table.take(np.minimum(v, top))
+
+
+_dc_class, _ext_class, _k_group = (_classifier(e) for e in (DC_EDGES, EXT_EDGES, K_EDGES))
+_own_class, _gap_class = _classifier(TAIL_OWN_EDGES), _classifier(TAIL_GAP_EDGES)
+
+
 class _Models:
     """Adaptive count tables for every context family of every grid kind in one stream.
 
@@ -91,10 +103,10 @@ class _Models:
         self._probs = self.counts.astype(np.float32)
 
     def probabilities(self, ctx: np.ndarray) -> np.ndarray:
-        return self._probs[ctx]
+        return self._probs.take(ctx, axis=0)  # 7x faster than fancy indexing for (N, 9) rows
 
     def tail_probabilities(self, ctx: np.ndarray) -> np.ndarray:
-        return self._tail_probs[ctx]
+        return self._tail_probs.take(ctx, axis=0)
 
     def update(self, ctx: np.ndarray, tok: np.ndarray) -> None:
         if self.split is None:
@@ -180,8 +192,8 @@ def _code_rows(phase, models: _Models, io) -> None:
             below = np.where(rows + d < g.rows, rows + d, rows - d)
             s = line_sum(np.abs(np.stack([g.res[rows - d], g.ext[rows - d]]))) + line_sum(
                 np.abs(np.stack([g.res[below], g.ext[below]])))
-            c_dc = np.searchsorted(DC_EDGES, (s[0] + 1) // 2, side="right")
-            c_ext = np.searchsorted(EXT_EDGES, (s[1] + 1) // 2, side="right")
+            c_dc = _dc_class((s[0] + 1) // 2)
+            c_ext = _ext_class((s[1] + 1) // 2)
         shape = (rows.size, g.cols)
         dc.append(np.broadcast_to(c_dc + g.off["dc"], shape).reshape(-1))
         ex.append(np.broadcast_to(c_ext + g.off["ext"], shape).reshape(-1))
@@ -204,14 +216,8 @@ def _code_rows(phase, models: _Models, io) -> None:
 def _extent(qk: np.ndarray) -> np.ndarray:
     """Index of the last non-zero coefficient of each patch among k >= 1 (0 if none), from
     a component-major grid (K, rows, cols)."""
-    ext = np.zeros(qk.shape[1:], np.int64)
-    for k in range(1, qk.shape[0]):
-        ext[qk[k] != 0] = k
-    return ext
-
-
-def _k_group(k):
-    return np.searchsorted(K_EDGES, k, side="right")
+    idx = np.arange(qk.shape[0], dtype=np.uint16 if qk.shape[0] <= 65535 else np.uint32)
+    return np.max((qk != 0) * idx[:, None, None], axis=0, initial=0).astype(np.int64)
 
 
 # (group of k x activity class) x 2 for k = 0..LOW, indexed by the clipped activity
@@ -253,8 +259,8 @@ def _tail_positions(ext: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 def _tail_context(own: np.ndarray, ext: np.ndarray, idx: np.ndarray, k: np.ndarray) -> np.ndarray:
     """Context of the tail coefficients at (``idx``, ``k``) from the patch's own activity at
     components LOW-1 and LOW (``own``) and the distance to its extent."""
-    own_cls = np.searchsorted(TAIL_OWN_EDGES, own.reshape(-1)[idx], side="right")
-    gap_cls = np.searchsorted(TAIL_GAP_EDGES, ext.reshape(-1)[idx] - k, side="right")
+    own_cls = _own_class(own.reshape(-1).take(idx))
+    gap_cls = _gap_class(ext.reshape(-1).take(idx) - k)
     return (_k_group(k) * N_OWN + own_cls) * N_GAP + gap_cls
 
 

