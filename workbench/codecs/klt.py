@@ -101,7 +101,10 @@ def _matrices(a: Analysis, kept: int, step: float):
         kept = min(kept, a.directions)
         ints, bits = klt_basis.quantise_vectors(a.basis, kept, step)
         synthesis = klt_basis.dequantise_vectors(ints, bits)
-        analysis_m = np.linalg.pinv(synthesis)
+        # A small matrix: threaded LAPACK gains nothing and, with the other core busy, took
+        # 92 ms instead of 1 ms (64 x 64); serial, it is also the same in every process.
+        with klt_basis.serial_blas():
+            analysis_m = np.linalg.pinv(synthesis)
     else:
         ints = bits = None
         synthesis = a.basis.vectors[:, :kept].T
