@@ -198,8 +198,9 @@ def test_a_stopped_training_still_leaves_a_usable_model(small_images, tmp_path):
     assert model.channels == 4
 
 
-def test_tiled_inference_matches_whole_image_inference(tiny_model):
+def test_tiled_inference_matches_whole_image_inference(tiny_model, monkeypatch):
     _, model, _, _ = tiny_model
+    monkeypatch.setattr(conv_model, "TILE", 256)  # 3 x 3 tiles with their margins
     rng = np.random.default_rng(0)
     x = rng.random((3, 640, 704)).astype(np.float32)
     tiled = conv_model.encode_array(model.net, x)
