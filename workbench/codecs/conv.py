@@ -312,7 +312,7 @@ class ConvCodec(CodecBase):
                 rest = [src.astype(np.float64) - b for src, b in zip(a.source, base)]
                 a._residual = ((j, kept), base, klt.CODEC.analyse(rest, _residual_settings(), klt_basis.dct_basis(8)))
             _, base, ra = a._residual
-            r = klt.CODEC.quantise(ra, step=residual_step(step), count=None)
+            r = klt.CODEC.quantise(ra, step=residual_step(step), count=None, deblock=False)
             c.residual, c.step = r, float(step)
             c._planes = [b + p for b, p in zip(base, r.planes)]
         return c
