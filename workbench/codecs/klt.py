@@ -80,8 +80,12 @@ class Coded:
     def planes(self) -> list[np.ndarray]:
         if self._planes is None:
             a = self.analysis
-            self._planes = synthesise(self.q, self.synthesis, self.step, a.means, a.shapes, a.settings.block,
-                                      self.filtered)
+            block = a.settings.block
+            wholes = [_whole_blocks(qp, self.synthesis, self.step, m, block) for qp, m in zip(self.q, a.means)]
+            if self._filtered is None:  # decided on these planes rather than on a fresh sample
+                self._filtered = self._choose(lambda i, rows: wholes[i][rows])
+            self._planes = [(deblock(w, block, self.step) if f else w)[: shape[0], : shape[1]]
+                            for w, f, shape in zip(wholes, self.filtered, a.shapes)]
         return self._planes
 
     @property
@@ -89,12 +93,24 @@ class Coded:
         """Per plane, whether the decoder smooths its block edges (the payload's flags)."""
         if self._filtered is None:
             a = self.analysis
-            if not self.deblock or a.sources is None:
-                self._filtered = (False,) * len(self.q)
-            else:
-                self._filtered = tuple(_filter_pays(qp, self.synthesis, self.step, m, src, a.settings.block)
-                                       for qp, m, src in zip(self.q, a.means, a.sources))
+            block = a.settings.block
+            # only the sampled patch rows are synthesised (compressing alone needs no planes)
+            self._filtered = self._choose(lambda i, rows: _whole_blocks(
+                self.q[i][rows[::block] // block], self.synthesis, self.step, a.means[i], block))
         return self._filtered
+
+    def _choose(self, sampled_rows) -> tuple[bool, ...]:
+        """Per plane, :func:`_filter_pays` on the pixel rows :func:`_edge_rows` picks;
+        ``sampled_rows(i, rows)`` gives plane i's plain reconstruction at those rows."""
+        a = self.analysis
+        if not self.deblock or a.sources is None:
+            return (False,) * len(self.q)
+        block = a.settings.block
+        out = []
+        for i, src in enumerate(a.sources):
+            rows, bands = _edge_rows(self.q[i].shape[0], src.shape[0], block)
+            out.append(_filter_pays(sampled_rows(i, rows), src, rows, bands, block, self.step))
+        return tuple(out)
 
 
 # Edge filter thresholds, in steps: an edge is smoothed where the jump across it is below
@@ -102,7 +118,8 @@ class Coded:
 # jumps further, or is not flat beside the block edge), by at most EDGE_CHANGE steps. Chosen
 # from 27 combinations (jump 1/2/4, change 0.25/0.5/1, flat 0.25/0.5/1) on scikit-image's
 # camera and immunohistochemistry and scikit-learn's china at steps 8, 16, 32 and 48: mean
-# +0.12 dB, +0.0 to +0.42 dB, never below zero; none of those images is a benchmark image.
+# +0.12 dB, +0.0 to +0.42 dB; none of those images is a benchmark image. It can also cost
+# (scikit-image's moon at step 8: -0.42 dB), so the encoder decides per plane (_filter_pays).
 EDGE_JUMP, EDGE_CHANGE, EDGE_FLAT = 1.0, 0.25, 0.5
 
 
@@ -139,56 +156,59 @@ def deblock(plane: np.ndarray, block: int, step: float) -> np.ndarray:
     return plane
 
 
-EDGE_SAMPLE = 16  # the encoder judges the filter on one pair of patch rows in this many
+EDGE_SAMPLE = 16  # the encoder judges the filter on two adjacent patch rows in this many
 
 
-def _filter_pays(qp: np.ndarray, synthesis: np.ndarray, step: float, mean: int, src: np.ndarray,
-                 block: int) -> bool:
-    """Whether :func:`deblock` brings a plane with grid ``qp`` (rows, cols, K) closer to
-    its source ``src``, judged on two adjacent patch rows in every EDGE_SAMPLE (their
-    vertical edges and the edge between them), so the choice costs an eighth of a synthesis
-    (8 % of a 4-MP encode when judged on a quarter). Small planes are judged whole; the
-    decoder only follows the flag, so the sampling never affects what it reproduces."""
-    rows, cols, kept = qp.shape
-    h, w = src.shape
+def _edge_rows(grid_rows: int, h: int, block: int) -> tuple[np.ndarray, int]:
+    """``(pixel rows, bands)`` on which the encoder judges the edge filter: two adjacent
+    patch rows in every EDGE_SAMPLE, inside the source's ``h`` rows (their vertical edges and
+    the edge between them: an eighth of the plane), or the whole grid as one band for a
+    plane too small for 4 pairs."""
     starts = np.arange(0, h // block - 1, EDGE_SAMPLE)
     if starts.size < 4:
-        whole = synthesise([qp], synthesis, step, [mean], [(rows * block, cols * block)], block)[0]
-        pairs, ref = whole[None], src[None]
-    else:
-        sel = np.stack([starts, starts + 1], axis=1).reshape(-1)
-        s = (synthesis[:kept] * step).astype(np.float32)
-        patches = (qp[sel].reshape(-1, kept).astype(np.float32) @ s).reshape(sel.size, cols, -1)
-        patches += np.float32(mean)
-        plain = tiling.from_patches(patches, (sel.size * block, cols * block), block)
-        pairs = plain.reshape(starts.size, 2 * block, cols * block)
-        ref = np.stack([src[r * block:(r + 2) * block] for r in starts])
-    # filtered as whole blocks, compared where the source has pixels
-    smooth = deblock(pairs.copy(), block, step)[..., :ref.shape[-2], :w]
-    pairs = pairs[..., :ref.shape[-2], :w]
-    at = np.flatnonzero(smooth != pairs)  # the filter moves few pixels: compare those
-    a, b, o = (v.reshape(-1).take(at).astype(np.float64) for v in (smooth, pairs, ref))
+        return np.arange(grid_rows * block), 1
+    return (block * starts[:, None] + np.arange(2 * block)).reshape(-1), starts.size
+
+
+def _filter_pays(plain: np.ndarray, src: np.ndarray, rows: np.ndarray, bands: int, block: int,
+                 step: float) -> bool:
+    """Whether :func:`deblock` brings the plain reconstruction's pixel ``rows`` (whole
+    blocks wide; ``bands`` bands of whole blocks, from :func:`_edge_rows`) closer to the
+    source ``src``. The decoder only follows the resulting flag, so the sampling never
+    affects what it reproduces."""
+    h, w = src.shape
+    ref = src[rows[rows < h]].reshape(bands, -1, w)
+    plain = plain.reshape(bands, -1, plain.shape[-1])
+    smooth = deblock(plain.copy(), block, step)[..., :ref.shape[1], :w]
+    plain = plain[..., :ref.shape[1], :w]
+    at = np.flatnonzero(smooth != plain)  # the filter moves few pixels: compare those
+    a, b, o = (v.reshape(-1).take(at).astype(np.float64) for v in (smooth, plain, ref))
     return bool(np.square(a - o).sum() < np.square(b - o).sum())
+
+
+def _whole_blocks(qp, synthesis, step, mean, block) -> np.ndarray:
+    """The plain reconstruction ``mean + (q * step) @ S`` of grid ``qp`` (rows, cols, K) as
+    whole blocks (rows * block, cols * block), float32."""
+    rows, cols, kept = qp.shape
+    # float32 throughout: the decoder's cost is dominated by this product. Grids are
+    # stored component-major, so (K, patches) is a view and BLAS takes it transposed.
+    s = (synthesis[:kept] * step).astype(np.float32)
+    qk = np.moveaxis(qp, -1, 0).reshape(kept, -1).astype(np.float32)
+    patches = (qk.T @ s).reshape(rows, cols, -1)
+    patches += np.float32(mean)
+    return tiling.from_patches(patches, (rows * block, cols * block), block)
 
 
 def synthesise(q, synthesis, step, means, shapes, block, filtered=()):
     """Planes from quantised coefficients: ``mean + (q * step) @ S`` per patch, untiled;
-    plane i's block edges smoothed (:func:`deblock`) where ``filtered[i]`` is true."""
+    plane i's block edges smoothed (:func:`deblock`, on whole blocks, the padding beyond the
+    image cropped after) where ``filtered[i]`` is true."""
     out = []
     for i, (qp, m, shape) in enumerate(zip(q, means, shapes)):
-        rows, cols, kept = qp.shape
-        # float32 throughout: the decoder's cost is dominated by this product. Grids are
-        # stored component-major, so (K, patches) is a view and BLAS takes it transposed.
-        s = (synthesis[:kept] * step).astype(np.float32)
-        qk = np.moveaxis(qp, -1, 0).reshape(kept, -1).astype(np.float32)
-        patches = (qk.T @ s).reshape(rows, cols, -1)
-        patches += np.float32(m)
+        whole = _whole_blocks(qp, synthesis, step, m, block)
         if i < len(filtered) and filtered[i]:
-            # filtered as whole blocks (the padding beyond the image is cropped after)
-            whole = deblock(tiling.from_patches(patches, (rows * block, cols * block), block), block, step)
-            out.append(whole[: shape[0], : shape[1]])
-        else:
-            out.append(tiling.from_patches(patches, shape, block))
+            deblock(whole, block, step)
+        out.append(whole[: shape[0], : shape[1]])
     return out
 
 
@@ -325,10 +345,10 @@ def rdo_levels(x: np.ndarray, q: np.ndarray, lam: float = RDOQ_LAMBDA) -> np.nda
     cols = np.arange(n)
     xa = x.reshape(-1)
     for _ in range(2):
-        last = _last_true(alive)
+        last = coefcode.last_true(alive)
         alive[last, cols] = False
         alive[0] = True
-        prev = _last_true(alive)  # the non-zero before, or component 0
+        prev = coefcode.last_true(alive)  # the non-zero before, or component 0
         alive[last, cols] = True
         has = last > 0
         lk, pk = last[has], prev[has]
@@ -341,15 +361,6 @@ def rdo_levels(x: np.ndarray, q: np.ndarray, lam: float = RDOQ_LAMBDA) -> np.nda
     m = mag.take(at_nz)
     flat_q[at_nz] = np.where(v < 0, -m, m)
     return q
-
-
-def _last_true(alive: np.ndarray) -> np.ndarray:
-    """Per column of the (K, N) bool ``alive``, the index of its last True row (0 if none).
-
-    A row-wise maximum of ``alive * index``: numpy's argmax along axis 0 copies the array to
-    reduce along its last axis, 8x slower at K = 64 (measured on a 4-MP plane)."""
-    idx = np.arange(alive.shape[0], dtype=np.uint16 if alive.shape[0] <= 65535 else np.uint32)
-    return np.max(alive * idx[:, None], axis=0).astype(np.intp)
 
 
 def deadzone_quantise(c: np.ndarray, step: float, offset: float) -> np.ndarray:
