@@ -22,7 +22,7 @@ def hubble():
 def test_spots_on_the_original_are_scikit_images_blob_log(hubble):
     m = measures.Spots(min_sigma=1.5, max_sigma=5, threshold=0.08)
     direct = feature.blob_log(measures.grey(hubble, 255), min_sigma=1.5, max_sigma=5, num_sigma=6, threshold=0.08)
-    assert np.array_equal(m.find(hubble, 255), direct[:, :2]) and len(direct) > 10
+    assert np.array_equal(m.find(hubble, 255).blobs, direct) and len(direct) > 10
 
 
 def test_grey_is_scikit_images_rgb2gray(hubble):
@@ -81,7 +81,7 @@ def test_spot_counts_missed_spurious_and_shift_on_a_hand_built_frame():
 
     m = measures.Spots(min_sigma=1, max_sigma=4, threshold=0.05)
     ref = m.find(frame([(16, 16), (16, 48), (48, 32)]), 255)
-    assert len(ref) == 3
+    assert len(ref.blobs) == 3
     v = m.compare(ref, frame([(16, 17), (16, 48), (30, 30)]), 255)  # one moved 1 px, one gone, one new
     assert (v["count_error"], v["missed"], v["spurious"]) == (0, 1, 1)
     assert v["shift_px"] == pytest.approx(0.5, abs=0.05)

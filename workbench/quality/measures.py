@@ -22,6 +22,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
+from . import localdetect
 
 
 @dataclass(frozen=True)
@@ -81,25 +82,61 @@ class Measure:
 
 
 def match_points(a: np.ndarray, b: np.ndarray, radius: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """One-to-one matching of points ``a`` (N, 2) and ``b`` (M, 2) within ``radius``, with the
-    smallest total distance (the Hungarian method, ``scipy.optimize.linear_sum_assignment``).
+    """One-to-one matching of points ``a`` (N, 2) and ``b`` (M, 2) within ``radius``: as many
+    pairs as possible, then the smallest total distance (the Hungarian method,
+    ``scipy.optimize.linear_sum_assignment``, on each group of points linked by pairs within
+    the radius: groups share no pair, so their optima make the whole's, and a textured frame's
+    thousands of spots cost no N x M matrix).
 
     Returns
     -------
-    ia, ib : index arrays of matched pairs
+    ia, ib : index arrays of matched pairs, ``ia`` rising
     dist : their distances
     """
     a, b = np.asarray(a, float).reshape(-1, 2), np.asarray(b, float).reshape(-1, 2)
+    empty = np.zeros(0, int)
     if len(a) == 0 or len(b) == 0:
-        empty = np.zeros(0, int)
         return empty, empty, np.zeros(0)
     from scipy.optimize import linear_sum_assignment
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+    from scipy.spatial import cKDTree
 
-    d = np.hypot(a[:, None, 0] - b[None, :, 0], a[:, None, 1] - b[None, :, 1])
-    cost = np.where(d <= radius, d, radius * 1e6 + 1.0)  # pairs beyond the radius are never chosen
-    ia, ib = linear_sum_assignment(cost)
-    keep = d[ia, ib] <= radius
-    return ia[keep], ib[keep], d[ia[keep], ib[keep]]
+    near = cKDTree(a).sparse_distance_matrix(cKDTree(b), radius * (1 + 1e-9) + 1e-12, output_type="ndarray")
+    i, j = near["i"].astype(int), near["j"].astype(int)
+    d = np.hypot(a[i, 0] - b[j, 0], a[i, 1] - b[j, 1])  # the same distances as the pairs' own
+    keep = d <= radius
+    i, j, d = i[keep], j[keep], d[keep]
+    if not len(i):
+        return empty, empty, np.zeros(0)
+    n = len(a)
+    graph = coo_matrix((np.ones(len(i)), (i, n + j)), shape=(n + len(b),) * 2)
+    _, group = connected_components(graph, directed=False)
+    g = group[i]
+    order = np.argsort(g, kind="stable")
+    i, j, d, g = i[order], j[order], d[order], g[order]
+    starts = np.flatnonzero(np.r_[True, g[1:] != g[:-1]])
+    stops = np.r_[starts[1:], len(g)]
+    out_i, out_j, out_d = [], [], []
+    single = stops - starts == 1  # a lone pair: nothing to choose
+    out_i.append(i[starts[single]])
+    out_j.append(j[starts[single]])
+    out_d.append(d[starts[single]])
+    for s0, s1 in zip(starts[~single], stops[~single]):
+        gi, ri = np.unique(i[s0:s1], return_inverse=True)
+        gj, rj = np.unique(j[s0:s1], return_inverse=True)
+        cost = np.full((len(gi), len(gj)), radius * 1e6 + 1.0)  # no pair: never chosen if avoidable
+        cost[ri, rj] = d[s0:s1]
+        dist = np.full(cost.shape, np.inf)
+        dist[ri, rj] = d[s0:s1]
+        r, c = linear_sum_assignment(cost)
+        ok = np.isfinite(dist[r, c])
+        out_i.append(gi[r[ok]])
+        out_j.append(gj[c[ok]])
+        out_d.append(dist[r[ok], c[ok]])
+    ia, ib, dist = np.concatenate(out_i), np.concatenate(out_j), np.concatenate(out_d)
+    order = np.argsort(ia)
+    return ia[order], ib[order], dist[order]
 
 
 class Spots(Measure):
@@ -114,12 +151,15 @@ class Spots(Measure):
         self.checks = (Check("count_error", 1), Check("shift_px", 0.5))
 
     def spots(self, pixels, peak) -> np.ndarray:
+        """``blob_log``'s spot centres (y, x) in ``pixels``."""
         from skimage.feature import blob_log
 
         return blob_log(grey(pixels, peak), num_sigma=6, **self.params)[:, :2]
 
-    def find(self, pixels, peak):
-        return self.spots(pixels, peak)
+    def find(self, pixels, peak) -> localdetect.LogSpots:
+        """The original's spots (``.blobs``), kept with what a reconstruction's detection needs
+        to recompute only where it can differ."""
+        return localdetect.LogSpots(grey(pixels, peak), num_sigma=6, **self.params)
 
     def compare(self, found, pixels, peak):
         return self.compare_marked(found, pixels, peak)[0]
@@ -127,7 +167,8 @@ class Spots(Measure):
     def compare_marked(self, found, pixels, peak):
         """The numbers, and ``(y, x, kind)`` per spot: ``matched``, ``missed`` (original only) or
         ``spurious``, from one detection in the reconstruction."""
-        test = self.spots(pixels, peak)
+        test = found.detect(grey(pixels, peak))[:, :2]
+        found = found.blobs[:, :2]
         ia, ib, dist = match_points(found, test, self.radius)
         values = {"count": float(len(found)), "count_rec": float(len(test)),
                   "count_error": float(abs(len(test) - len(found))), "missed": float(len(found) - len(ia)),
@@ -197,7 +238,8 @@ class Edges(Measure):
         self.sigma, self.tolerance = float(sigma), float(tolerance)
         self.checks = (Check("f_score", 0.9, "min", 1.0),)
 
-    def edges(self, pixels, peak):
+    def edges(self, pixels, peak) -> np.ndarray:
+        """``canny``'s edge map of ``pixels``."""
         from skimage.feature import canny
 
         return canny(grey(pixels, peak), sigma=self.sigma)
@@ -205,23 +247,43 @@ class Edges(Measure):
     def find(self, pixels, peak):
         from scipy.ndimage import distance_transform_edt
 
-        e = self.edges(pixels, peak)
-        return e, distance_transform_edt(~e) if e.any() else None
+        detector = localdetect.CannyEdges(grey(pixels, peak), sigma=self.sigma)
+        e = detector.edges
+        return detector, distance_transform_edt(~e) if e.any() else None
 
     def compare(self, found, pixels, peak):
-        from scipy.ndimage import distance_transform_edt
-
-        ref, ref_dist = found
-        test = self.edges(pixels, peak)
+        detector, ref_dist = found
+        ref = detector.edges
+        test = detector.detect(grey(pixels, peak))
         if not ref.any() and not test.any():
             p = r = 1.0
         elif not ref.any() or not test.any():
             p = r = 0.0
         else:
             p = float(np.mean(ref_dist[test] <= self.tolerance))
-            r = float(np.mean(distance_transform_edt(~test)[ref] <= self.tolerance))
+            r = float(np.mean(within(test, ref, self.tolerance)))
         f = 0.0 if p + r == 0 else 2 * p * r / (p + r)
         return {"edges": float(ref.sum()), "precision": p, "recall": r, "f_score": f}
+
+
+def within(marks: np.ndarray, at: np.ndarray, radius: float) -> np.ndarray:
+    """For each true pixel of ``at`` (in raster order), whether a true pixel of ``marks`` lies
+    within Euclidean distance ``radius``: what ``distance_transform_edt(~marks)[at] <= radius``
+    says, looked up only at those pixels."""
+    ys, xs = np.nonzero(at)
+    h, w = marks.shape
+    k = int(math.floor(radius))
+    out = np.zeros(len(ys), bool)
+    for dy in range(-k, k + 1):
+        for dx in range(-k, k + 1):
+            if dy * dy + dx * dx > radius * radius:
+                continue
+            y, x = ys + dy, xs + dx
+            inside = (y >= 0) & (y < h) & (x >= 0) & (x < w)
+            hit = np.zeros(len(ys), bool)
+            hit[inside] = marks[y[inside], x[inside]]
+            out |= hit
+    return out
 
 
 class UserFile(Measure):
