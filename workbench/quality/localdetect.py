@@ -23,7 +23,7 @@ from scipy import ndimage as ndi
 TILE = 16  # candidate tiles: fine enough to skip most background, coarse enough to be cheap
 FULL_FRACTION = 0.5  # above this share of candidate tiles the whole-image call is cheaper
 SLACK = 1e-4  # relative; with ABS_SLACK covers float32 rounding between the two computations
-ABS_SLACK = 1e-6
+ABS_SLACK = 1e-5
 
 
 def tile_max(a: np.ndarray, tile: int = TILE, fill: float = -np.inf) -> np.ndarray:

@@ -115,14 +115,18 @@ def match_points(a: np.ndarray, b: np.ndarray, radius: float) -> tuple[np.ndarra
     g = group[i]
     order = np.argsort(g, kind="stable")
     i, j, d, g = i[order], j[order], d[order], g[order]
+    groups = len(group)
+    distinct_a = np.bincount(np.unique(g * n + i) // n, minlength=groups)
+    distinct_b = np.bincount(np.unique(g * len(b) + j) // len(b), minlength=groups)
+    star = (distinct_a == 1) | (distinct_b == 1)  # one point on a side: only one pair can be kept
+    by_distance = np.lexsort((d, g))
+    first = by_distance[np.r_[True, g[by_distance][1:] != g[by_distance][:-1]]]  # the nearest pair
+    first = first[star[g[first]]]
+    out_i, out_j, out_d = [i[first]], [j[first]], [d[first]]
     starts = np.flatnonzero(np.r_[True, g[1:] != g[:-1]])
     stops = np.r_[starts[1:], len(g)]
-    out_i, out_j, out_d = [], [], []
-    single = stops - starts == 1  # a lone pair: nothing to choose
-    out_i.append(i[starts[single]])
-    out_j.append(j[starts[single]])
-    out_d.append(d[starts[single]])
-    for s0, s1 in zip(starts[~single], stops[~single]):
+    general = ~star[g[starts]]
+    for s0, s1 in zip(starts[general], stops[general]):
         gi, ri = np.unique(i[s0:s1], return_inverse=True)
         gj, rj = np.unique(j[s0:s1], return_inverse=True)
         cost = np.full((len(gi), len(gj)), radius * 1e6 + 1.0)  # no pair: never chosen if avoidable
@@ -162,22 +166,28 @@ class Spots(Measure):
         return localdetect.LogSpots(grey(pixels, peak), num_sigma=6, **self.params)
 
     def compare(self, found, pixels, peak):
-        return self.compare_marked(found, pixels, peak)[0]
+        return self._compare(found, pixels, peak, marks=False)[0]
 
     def compare_marked(self, found, pixels, peak):
         """The numbers, and ``(y, x, kind)`` per spot: ``matched``, ``missed`` (original only) or
         ``spurious``, from one detection in the reconstruction."""
+        return self._compare(found, pixels, peak, marks=True)
+
+    def _compare(self, found, pixels, peak, *, marks):
         test = found.detect(grey(pixels, peak))[:, :2]
         found = found.blobs[:, :2]
         ia, ib, dist = match_points(found, test, self.radius)
         values = {"count": float(len(found)), "count_rec": float(len(test)),
                   "count_error": float(abs(len(test) - len(found))), "missed": float(len(found) - len(ia)),
                   "spurious": float(len(test) - len(ia)), "shift_px": float(dist.mean()) if len(dist) else 0.0}
-        matched_a, matched_b = set(ia.tolist()), set(ib.tolist())
-        marks = [(float(y), float(x), "matched") for y, x in np.asarray(found)[ia]]
-        marks += [(float(y), float(x), "missed") for i, (y, x) in enumerate(found) if i not in matched_a]
-        marks += [(float(y), float(x), "spurious") for i, (y, x) in enumerate(test) if i not in matched_b]
-        return values, marks
+        if not marks:
+            return values, []
+        missed, spurious = np.ones(len(found), bool), np.ones(len(test), bool)
+        missed[ia], spurious[ib] = False, False
+        items = [(y, x, "matched") for y, x in found[ia].tolist()]
+        items += [(y, x, "missed") for y, x in found[missed].tolist()]
+        items += [(y, x, "spurious") for y, x in test[spurious].tolist()]
+        return values, items
 
 
 class Regions(Measure):
