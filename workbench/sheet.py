@@ -181,7 +181,8 @@ def _jpeg_bytes_meeting(img: SourceImage, kind: str, floor: float) -> float | No
     return best
 
 
-def _curves_in_worker(name, pixels, settings_dict, names, shared_bytes, shared_ref, measure_spec=None) -> dict:
+def _curves_in_worker(name, pixels, settings_dict, names, shared_bytes, shared_ref, measure_spec=None,
+                      saved=None) -> dict:
     """Process-pool entry: rebuild what cannot travel cheaply (the shared side) and run
     :func:`_curves`. Pillow's encoders and our coder hold the GIL, so threads would not help."""
     import cv2
@@ -194,10 +195,13 @@ def _curves_in_worker(name, pixels, settings_dict, names, shared_bytes, shared_r
     tune_allocator()
     settings = Settings.from_dict(settings_dict)
     shared = None if shared_bytes is None else codecs.get(settings.method).shared_from_bytes(shared_bytes)
-    return _curves(SourceImage(name, pixels), settings, names, shared, shared_ref, measure_spec)
+    return _curves(SourceImage(name, pixels), settings, names, shared, shared_ref, measure_spec, saved)
 
 
-def _curves(img: SourceImage, settings: Settings, names, shared, shared_ref, measure_spec=None) -> dict:
+def _curves(img: SourceImage, settings: Settings, names, shared, shared_ref, measure_spec=None, saved=None) -> dict:
+    """Our curve and each baseline's for one image; with ``measure_spec``, our points are
+    measured (until the first that fails) and so is ``saved``, the bundle's own reconstruction
+    (under the key ``saved_measured``), by the one reference made of the original here."""
     ours_settings = settings.replace(target=None)
     ref = metrics.SSIMReference(img.pixels, data_range=img.peak) if metrics.ssim_applies(img.height, img.width) else None
     mref = None if measure_spec is None else _measures.Reference(_measures.parse(*measure_spec), img.pixels, img.peak)
@@ -206,6 +210,8 @@ def _curves(img: SourceImage, settings: Settings, names, shared, shared_ref, mea
     curves = {"ours": [{"bpp": p.bpp, "psnr": p.psnr, "ssim": p.ssim, "bytes": p.bytes, "knob": p.step,
                         **({} if p.measured is None else {"ok": p.measured.ok, "measures": p.measured.values})}
                        for p in pts]}
+    if mref is not None and saved is not None:
+        curves["saved_measured"] = mref.judge(saved)
     lo, hi = pts[0].bpp, pts[-1].bpp
     for n in names:
         b = baselines.get(n)
@@ -272,7 +278,7 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
     else:  # reused() decoded it already
         fulls = [r.reconstruction for r in result.images]
     rows: list[ImageRow] = []
-    crops = []
+    crops, saved = [], []  # the saved reconstructions are measured with the curves, in the workers
     for img, enc, full in zip(images, result.images, fulls):
         px = full[..., : img.pixels.shape[2]] if img.pixels.ndim == 3 else (
             full if full.ndim == 2 else full[..., 0])
@@ -283,22 +289,24 @@ def sheet_job(images: list[SourceImage], settings: Settings, outdir, *, baseline
         ok = None
         if require_psnr is not None or require_ssim is not None:
             ok = (require_psnr is None or p >= require_psnr) and (require_ssim is None or s >= require_ssim)
-        outcome = None if chosen is None else _measures.Reference(chosen, img.pixels, img.peak).judge(px)
         rows.append(ImageRow(img.name, img.width, img.height, img.bits, enc.bytes, enc.bpp, enc.ratio, p, s,
-                             wp, wx, wy, enc.step, ok, target_met=enc.target_met, measured=outcome,
+                             wp, wx, wy, enc.step, ok, target_met=enc.target_met,
                              own_bytes=enc.own_bytes))
         crops.append((wp, img, px, wx, wy))
+        saved.append(px if chosen is not None else None)
     yield Progress(at_curves, total, "rate–distortion curves")
     shared_bytes = None if shared is None else pipeline.codecs.get(settings.method).shared_to_bytes(shared)
     # forkserver: workers start clean, which is safe from inside the GUI's threads too.
     pool = jobs.pool(WORKERS, "forkserver")
     with pool:
         futures = {pool.submit(_curves_in_worker, img.name, img.pixels, settings.to_dict(), list(names),
-                               shared_bytes, shared_ref, measures): row for img, row in zip(images, rows)}
+                               shared_bytes, shared_ref, measures, px): row
+                   for img, row, px in zip(images, rows, saved)}
         try:
             for i, fut in enumerate(as_completed(futures)):
                 row = futures[fut]
                 row.curves = fut.result()
+                row.measured = row.curves.pop("saved_measured", None)
                 if chosen is not None:
                     row.safe = _measures.safe_point(row.curves["ours"])
                 for n in names:
