@@ -177,13 +177,23 @@ class _ScaleModels:
             add_counts(self.tail, self._tail_probs, ctx[big], tok[big] - SPLIT)
 
 
-def _row_context(table_row: np.ndarray, above: np.ndarray | None) -> np.ndarray:
-    """Contexts of one latent row (C, w): its tables' buckets x the activity TL + 2T + TR of
-    the row above (already decoded) in the same channel."""
+def _base_context(table: np.ndarray) -> np.ndarray:
+    """The scale part of every latent's context, rows first: (h, C, w), so that each coder
+    call's row is one contiguous block (the symbols' order within a row stays C, then w)."""
+    return np.ascontiguousarray(((table // BUCKET) * ACTIVITY).transpose(1, 0, 2))
+
+
+def _row_context(base_row: np.ndarray, above: np.ndarray | None) -> np.ndarray:
+    """Contexts of one latent row (C, w): its scale bucket's part (``base_row``) plus the
+    activity TL + 2T + TR of the row above (already decoded) in the same channel."""
     from .coefcode import line_sum
 
-    act = np.zeros(table_row.shape, np.int64) if above is None else (line_sum(np.abs(above)) + 1) // 2
-    return ((table_row // BUCKET) * ACTIVITY + np.minimum(act, ACTIVITY - 1)).reshape(-1)
+    if above is None:
+        return base_row.reshape(-1)
+    act = (line_sum(np.abs(above)) + 1) // 2
+    np.minimum(act, ACTIVITY - 1, out=act)
+    act += base_row
+    return act.reshape(-1)
 
 
 def encode_latents(values: np.ndarray, table: np.ndarray, tables: np.ndarray) -> bytes:
@@ -197,8 +207,9 @@ def encode_latents(values: np.ndarray, table: np.ndarray, tables: np.ndarray) ->
     if values.shape != table.shape or values.ndim != 3:
         raise ValueError(f"values {values.shape} and table {table.shape} must be the same (C, h, w)")
     models, w = _ScaleModels(tables), Writer()
-    for r in range(values.shape[1]):
-        w.put(models, _row_context(table[:, r], values[:, r - 1] if r else None), values[:, r].reshape(-1))
+    base, rows = _base_context(table), np.ascontiguousarray(values.transpose(1, 0, 2))
+    for r in range(rows.shape[0]):
+        w.put(models, _row_context(base[r], rows[r - 1] if r else None), rows[r].reshape(-1))
     return w.finish()
 
 
@@ -209,7 +220,8 @@ def decode_latents(data: bytes, table: np.ndarray, tables: np.ndarray) -> np.nda
     table = np.asarray(table, np.int64)
     c, h, w = table.shape
     models, rd = _ScaleModels(tables), Reader(data)
-    out = np.zeros((c, h, w), np.int64)
+    base = _base_context(table)
+    rows = np.zeros((h, c, w), np.int64)
     for r in range(h):
-        out[:, r] = rd.get(models, _row_context(table[:, r], out[:, r - 1] if r else None)).reshape(c, w)
-    return out
+        rows[r] = rd.get(models, _row_context(base[r], rows[r - 1] if r else None)).reshape(c, w)
+    return rows.transpose(1, 0, 2)
