@@ -110,9 +110,11 @@ def section_range():
 
 
 def section_speed():
-    print("\n== 4-megapixel RGB (bench_klt.four_mp_photo: a mosaic of 512 px photograph crops) with the shipped model")
+    print("\n== 4-megapixel RGB (bench_klt.four_mp_photo: a mosaic of 512 px photograph crops) with the shipped model, "
+          "allocator tuned as the command line and the app tune it")
     code = ("import sys, time, statistics, resource; sys.path.insert(0, %r); sys.path.insert(0, %r); "
-            "import bench_klt, workbench; from workbench.codecs import get; m, sha = get('conv').default_model(); "
+            "import bench_klt, workbench; from workbench.runtime import tune_allocator; tune_allocator(); "
+            "from workbench.codecs import get; m, sha = get('conv').default_model(); "
             "img = bench_klt.four_mp_photo(); base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss\n"
             "es, ds = [], []\n"
             "for i in range(4):\n"

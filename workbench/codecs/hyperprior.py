@@ -120,11 +120,13 @@ def table_and_offset(mean16: np.ndarray, log8: np.ndarray, step_index: int, tmin
     ``2**(step_index/8)``, by integer arithmetic: the scale in steps is ``log8 - step_index``
     eighth-octaves; the mean in steps is ``mean16 / 16 * 2**(-step_index/8)`` rounded."""
     a, b = divmod(int(step_index), 8)
-    table = np.clip(log8 - step_index, tmin, tmax)
-    num = mean16.astype(np.int64) * _INV_STEP[b]  # |mean16| <= 2**16: below 2**46
+    table = np.clip(log8 - np.int32(step_index), tmin, tmax).astype(np.int32, copy=False)
+    num = mean16.astype(np.int64)
+    num *= _INV_STEP[b]  # |mean16| <= 2**16: below 2**46
     shift = MEAN_FRAC + _INV_BITS + a  # 26..42 over the step range; >> floors
-    offset = (num + (1 << (shift - 1))) >> shift
-    return table.astype(np.int64), offset
+    num += 1 << (shift - 1)
+    num >>= shift
+    return table, num
 
 
 
@@ -180,7 +182,9 @@ class _ScaleModels:
 def _base_context(table: np.ndarray) -> np.ndarray:
     """The scale part of every latent's context, rows first: (h, C, w), so that each coder
     call's row is one contiguous block (the symbols' order within a row stays C, then w)."""
-    return np.ascontiguousarray(((table // BUCKET) * ACTIVITY).transpose(1, 0, 2))
+    base = np.asarray(table, np.int32) // BUCKET
+    base *= ACTIVITY
+    return np.ascontiguousarray(base.transpose(1, 0, 2))
 
 
 def _row_context(base_row: np.ndarray, above: np.ndarray | None) -> np.ndarray:
@@ -203,7 +207,7 @@ def encode_latents(values: np.ndarray, table: np.ndarray, tables: np.ndarray) ->
     from .symbols import Writer
 
     values = np.asarray(values, np.int64)
-    table = np.asarray(table, np.int64)
+    table = np.asarray(table)
     if values.shape != table.shape or values.ndim != 3:
         raise ValueError(f"values {values.shape} and table {table.shape} must be the same (C, h, w)")
     models, w = _ScaleModels(tables), Writer()
@@ -217,11 +221,10 @@ def decode_latents(data: bytes, table: np.ndarray, tables: np.ndarray) -> np.nda
     """Inverse of :func:`encode_latents`."""
     from .symbols import Reader
 
-    table = np.asarray(table, np.int64)
-    c, h, w = table.shape
+    c, h, w = np.shape(table)
     models, rd = _ScaleModels(tables), Reader(data)
     base = _base_context(table)
-    rows = np.zeros((h, c, w), np.int64)
+    rows = np.zeros((h, c, w), np.int32)  # decoded tokens stay below 2**26
     for r in range(h):
         rows[r] = rd.get(models, _row_context(base[r], rows[r - 1] if r else None)).reshape(c, w)
     return rows.transpose(1, 0, 2)
