@@ -20,8 +20,10 @@ import math
 import numpy as np
 from scipy import ndimage as ndi
 
-TILE = 16  # candidate tiles: fine enough to skip most background, coarse enough to be cheap
+TILE = 16  # the edge detector's candidate tiles: at least its crops' margin (see CannyEdges)
 SPOT_TILE = 8  # the spot detector's crops have no chains to keep whole: finer tiles fit tighter
+SPLIT_ALWAYS = 8  # tiles: a sparse box longer than this is halved whatever its halves cost
+CALL_COST = 6000  # pixels: what one more crop's calls cost, in filtered pixels' time (measured)
 FULL_FRACTION = 0.5  # above this share of candidate tiles the whole-image call is cheaper
 SLACK = 1e-4  # relative; with ABS_SLACK covers float32 rounding between the two computations
 ABS_SLACK = 1e-5
@@ -55,20 +57,12 @@ def l1_gain(linear_filter, radius: int) -> float:
     return float(np.abs(linear_filter(delta)).sum())
 
 
-def _groups(candidate: np.ndarray, reach: int = 0):
-    """``(tile slices, core tiles)`` per group of candidate tiles: 8-connected ones, or (with
-    ``reach``) those at most that many tiles apart."""
-    near = ndi.binary_dilation(candidate, np.ones((3, 3), bool), iterations=reach) if reach else candidate
-    labels, _ = ndi.label(near, np.ones((3, 3), bool))
+def _groups(candidate: np.ndarray):
+    """``(tile slices, core tiles)`` per 8-connected group of candidate tiles."""
+    labels, _ = ndi.label(candidate, np.ones((3, 3), bool))
     for index, sl in enumerate(ndi.find_objects(labels), start=1):
         if sl is not None:
-            core = candidate[sl] & (labels[sl] == index)
-            if core.any():
-                yield sl, core
-
-
-SPLIT_ALWAYS = 8  # tiles
-CALL_COST = 6000  # pixels: what one more crop's calls cost, in filtered pixels' time (measured)
+            yield sl, labels[sl] == index
 
 
 def _rectangles(candidate: np.ndarray, margin: int, tile: int = TILE) -> list[tuple[int, int, int, int]]:
