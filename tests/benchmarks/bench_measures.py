@@ -88,13 +88,13 @@ def main():
     print("== 3. spots found against the truth (synthetic frames with known centres)")
     for trial in range(3):
         px, truth = spots_frame(rng)
-        found = measures.Spots(min_sigma=1.5, max_sigma=5, threshold=0.05).find(px, 65535)
+        found = measures.Spots(min_sigma=1.5, max_sigma=5, threshold=0.05).spots(px, 65535)
         ia, _, dist = measures.match_points(truth, found, 3.0)
         print(f"  frame {trial}: {len(truth)} spots made, {len(found)} found, {len(ia)} matched, "
               f"mean error {dist.mean():.2f} px")
         for step in (4, 16, 64):
             rec = pipeline.encode([SourceImage("s", px)], Settings(step=step)).images[0]
-            got = measures.Spots(min_sigma=1.5, max_sigma=5, threshold=0.05).find(rec.reconstruction, 65535)
+            got = measures.Spots(min_sigma=1.5, max_sigma=5, threshold=0.05).spots(rec.reconstruction, 65535)
             ia2, _, d2 = measures.match_points(truth, got, 3.0)
             print(f"    step {step:3d}: {rec.bpp:.3f} bpp, {len(got)} found, {len(ia2)} matched to the truth, "
                   f"error {d2.mean():.2f} px")

@@ -303,12 +303,12 @@ class LogSpots:
             out |= t + gain * (1 + SLACK) * _reach_max(err, r, SPOT_TILE) > limit
         return out
 
-    def detect(self, g: np.ndarray, *, full: bool = False) -> np.ndarray:
+    def detect(self, g: np.ndarray) -> np.ndarray:
         """``blob_log(g, ...)``'s rows (y, x, sigma), recomputed only where they can change."""
         g = np.asarray(g)
         if g.shape != self.original.shape or g.dtype != np.float32:
             raise ValueError(f"expected a float32 image of shape {self.original.shape}, not {g.dtype} {g.shape}")
-        if full or np.ptp(g) == 0:
+        if np.ptp(g) == 0:
             return self._full(g)
         cand = self.candidates(g)
         if cand.mean() > FULL_FRACTION:  # the whole cube at once, with the faster pruning
@@ -359,7 +359,7 @@ class CannyEdges:
         self.tiles = tile_max(self._magnitude(original))
         self.gain = np.where(np.logical_and.outer(*(_inner_tiles(n, self.radius + 2) for n in original.shape)),
                              self.gain_inner, self.gain_edge)
-        self.edges = self.detect(original, full=True)
+        self.edges = self._full(original)
 
     def _magnitude(self, g):
         # canny's own steps (skimage.feature._canny): smoothing with bleed-over correction
@@ -381,12 +381,12 @@ class CannyEdges:
         err = _reach_max(tile_max(np.abs(g - self.original), fill=0.0), self.radius + 1)
         return self.tiles + self.gain * (1 + SLACK) * err >= self.LOW * (1 - SLACK) - ABS_SLACK
 
-    def detect(self, g: np.ndarray, *, full: bool = False) -> np.ndarray:
+    def detect(self, g: np.ndarray) -> np.ndarray:
         """``canny(g, sigma)``'s edge map, recomputed only where it can change."""
         g = np.asarray(g)
         if g.shape != self.original.shape or g.dtype != np.float32:
             raise ValueError(f"expected a float32 image of shape {self.original.shape}, not {g.dtype} {g.shape}")
-        if full or not self.margin_tiles_ok:
+        if not self.margin_tiles_ok:
             return self._full(g)
         cand = self.candidates(g)
         if cand.mean() > FULL_FRACTION:
