@@ -73,6 +73,38 @@ def test_round_trip_equals_in_process_reconstruction(tiny_model, small_images):
     assert out["cam"].ndim == 2 and out["cat"].shape == (96, 128, 3)
 
 
+@pytest.mark.parametrize("bf16", [False, True])
+def test_the_payload_says_which_precision_the_synthesis_ran_in_and_the_decoder_follows(
+        tiny_model, small_images, monkeypatch, bf16):
+    from workbench.codecs import conv
+    from workbench.formats import bundle
+
+    path, model, sha, _ = tiny_model
+    with monkeypatch.context() as m:
+        m.setattr(conv_model, "bf16_fast", lambda: bf16)
+        result = pipeline.encode(small_images, Settings(method="conv", step=8.0), shared=model, shared_ref=sha)
+    assert {bool(e.payload[3] & conv.BF16) for e in bundle.parse(result.data).entries} == {bf16}
+    with monkeypatch.context() as m:  # a decoder whose own CPU would choose the other way
+        m.setattr(conv_model, "bf16_fast", lambda: not bf16)
+        out = workbench.decompress(result.data, basis=model, basis_ref=sha)
+    for r in result.images:
+        assert np.array_equal(out[r.name], r.reconstruction)
+
+
+def test_bfloat16_gdn_paths_stay_within_a_grey_level_of_float32(tiny_model):
+    from skimage import data
+
+    _, model, _, _ = tiny_model
+    x = (data.astronaut()[:128, :192].transpose(2, 0, 1) / 255.0).astype(np.float32)
+    y = conv_model.encode_array(model.net, x)
+    y16 = conv_model.encode_array(model.net, x, bf16=True)
+    assert np.sqrt(np.mean((y16 - y) ** 2)) < 0.05  # latent units: rounding decides the rest
+    q = np.round(y)
+    a = np.clip(conv_model.decode_array(model.net, q, x.shape[1:]), 0, 1) * 255
+    b = np.clip(conv_model.decode_array(model.net, q, x.shape[1:], bf16=True), 0, 1) * 255
+    assert 0 < np.sqrt(np.mean((a - b) ** 2)) < 1.0  # a trained GDN path, rounded differently
+
+
 def test_older_bundles_with_one_stage_adaptive_tokens_still_decode(tiny_model, small_images, monkeypatch):
     from workbench.codecs import conv
     from workbench.formats import bundle
@@ -81,6 +113,7 @@ def test_older_bundles_with_one_stage_adaptive_tokens_still_decode(tiny_model, s
     with monkeypatch.context() as m:  # what format 4 wrote, with the adaptive coder chosen
         m.setattr(conv, "TOKEN_SPLIT", None)
         m.setattr(bundle, "VERSION", 4)
+        m.setenv("WORKBENCH_BF16", "0")  # format 4 had no bfloat16 bit
         m.setattr(conv.symbols, "encode_fixed", lambda *a: b"\0" * (1 << 20))
         # above the residual layer's knee: format 4 had none
         made = pipeline.encode(small_images, Settings(method="conv", step=16.0), shared=model, shared_ref=sha)

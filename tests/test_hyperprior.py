@@ -119,7 +119,7 @@ def test_hyperprior_bundles_decode_to_the_in_process_reconstruction(hyper_model,
             m.setattr(conv, "coefcode", types.SimpleNamespace(**{**vars(conv.coefcode),
                                                                  "encode_grids": lambda *a: b"\0" * (1 << 20)}))
             result = pipeline.encode(images, Settings(method="conv", step=step), shared=model, shared_ref=sha)
-        assert {e.payload[3] & ~conv.RESIDUAL for e in bundle.parse(result.data).entries} == {conv.HYPER_ADAPTIVE}
+        assert {e.payload[3] & ~(conv.RESIDUAL | conv.BF16) for e in bundle.parse(result.data).entries} == {conv.HYPER_ADAPTIVE}
         out = workbench.decompress(result.data, basis=model, basis_ref=sha)
         for r in result.images:
             assert np.array_equal(out[r.name], r.reconstruction)
@@ -134,7 +134,7 @@ def test_streams_under_the_fixed_hyperprior_tables_still_decode(hyper_model, ima
     table, offset = hyperprior.table_and_offset(cd.analysis.prior[0], cd.analysis.prior[1], cd.step_index, lo, hi)
     tabs = model.data.tables
     side = conv.symbols.encode_fixed(list(cd.analysis.side), [tabs[t] for t in model.side_tables])
-    payload = (conv._HEAD.pack(cd.step_index, cd.kept, conv.HYPER) + conv._SIDE.pack(len(side)) + side
+    payload = (conv._HEAD.pack(cd.step_index, cd.kept, conv.HYPER | (conv.BF16 if cd.analysis.bf16 else 0)) + conv._SIDE.pack(len(side)) + side
                + conv.symbols.encode_grouped(cd.q - offset, table - lo, tabs))
     out = conv.CODEC.decode(payload, [planes[0].shape] * 3, Settings(method="conv"), model)
     assert all(np.array_equal(a, b) for a, b in zip(out, cd.planes))

@@ -18,6 +18,11 @@ before = digest()
 assert tune_allocator() is True
 assert tune_allocator() is True  # a second call is a no-op
 print(before == digest())
+try:
+    from numpy._core import multiarray
+except ImportError:
+    from numpy.core import multiarray
+print(multiarray._set_madvise_hugepage(False))  # the state it had: off
 """
 
 
@@ -25,4 +30,4 @@ print(before == digest())
 def test_the_allocator_setting_takes_once_and_changes_no_result():
     # camera: scikit-image's bundled 'camera'; bundle bytes and decoded pixels both compared
     out = subprocess.run([sys.executable, "-c", SCRIPT], capture_output=True, text=True, check=True)
-    assert out.stdout.strip() == "True"
+    assert out.stdout.split() == ["True", "False"]

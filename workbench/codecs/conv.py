@@ -34,6 +34,11 @@ latents alone are coded). The coder byte's :data:`RESIDUAL` bit says so, and the
 does not invert exactly: the shipped one stops near 40 dB on photographs however fine its
 step (39.8 dB at a latent step of 0.05 on astronaut, at 19 bpp), while the residual layer
 takes it to any PSNR.
+
+Where the CPU multiplies bfloat16 in hardware, the networks' GDN paths run in bfloat16
+(:func:`workbench.codecs.conv_model.bf16_fast`); the coder byte's :data:`BF16` bit records
+it for the synthesis, and a decoder follows the bit whatever its own CPU (emulated, slower,
+where it has no such hardware), so that it rebuilds the reconstruction the encoder measured.
 """
 
 from __future__ import annotations
@@ -62,6 +67,7 @@ CODERS = (LEARNED, ADAPTIVE_ONE_STAGE, ADAPTIVE, HYPER, HYPER_ADAPTIVE)
 TOKEN_SPLIT = coefcode.SPLIT  # what this version writes
 STEP_INDEX_RANGE = (-64, 64)
 RESIDUAL = 0x80  # coder-byte flag: a residual layer follows the latents
+BF16 = 0x40  # coder-byte flag: the decoder's GDN path ran in bfloat16 (conv_model.bf16_fast)
 # Below this step the latents stop getting finer and the residual layer takes over. On the
 # four held-out photographs (astronaut, coffee, chelsea, rocket) with the second shipped
 # model, the latents alone cost more than a DCT-coded residual above about 36 dB. Mean
@@ -164,6 +170,7 @@ class Analysis:
     source: list | None = None  # the planes coded (for a residual layer)
     _tables: tuple | None = None  # (step index, the prior's table, offset) of the last step asked for
     _residual: tuple | None = None  # ((step index, kept), base planes, residual's klt analysis)
+    bf16: bool = False  # GDN paths in bfloat16; the payload says so, and its decoder does the same
 
     def tables_at(self, j: int, kept: int):
         """The hyperprior's (table, whole-step offset) of the first ``kept`` channels at step
@@ -188,16 +195,16 @@ class Coded:
     def planes(self):
         if self._planes is None:
             a = self.analysis
-            self._planes = _synthesise(a.model, self.q, 2.0 ** (self.step_index / 8), a.shape, a.grey)
+            self._planes = _synthesise(a.model, self.q, 2.0 ** (self.step_index / 8), a.shape, a.grey, a.bf16)
         return self._planes
 
 
-def _synthesise(model: Model, q: np.ndarray, step: float, shape, grey: bool):
+def _synthesise(model: Model, q: np.ndarray, step: float, shape, grey: bool, bf16: bool):
     from .conv_model import decode_array
 
     y = np.zeros((model.channels,) + q.shape[1:], np.float32)
     y[: q.shape[0]] = q.astype(np.float32) * np.float32(step)
-    x = decode_array(model.net, y, shape) * np.float32(255.0)
+    x = decode_array(model.net, y, shape, bf16) * np.float32(255.0)
     if grey:
         return [x[0].astype(np.float64)]
     return [x[0].astype(np.float64), x[1].astype(np.float64), x[2].astype(np.float64)]
@@ -279,7 +286,7 @@ class ConvCodec(CodecBase):
 
     # ------------------------------------------------------------- coding
     def analyse(self, planes, settings, shared=None) -> Analysis:
-        from .conv_model import encode_array
+        from .conv_model import bf16_fast, encode_array
 
         model = shared if shared is not None else _load_default()
         if not isinstance(model, Model):
@@ -288,13 +295,14 @@ class ConvCodec(CodecBase):
         grey = len(planes) == 1
         stack = [planes[0]] + ([np.full(shape, 128.0)] * 2 if grey else list(planes[1:]))
         x = (np.stack(stack) / 255.0).astype(np.float32)
-        y = encode_array(model.net, x)
+        bf16 = bf16_fast()
+        y = encode_array(model.net, x, bf16)
         if not model.uses_hyper:
-            return Analysis(y, shape, grey, model, settings, source=list(planes))
+            return Analysis(y, shape, grey, model, settings, source=list(planes), bf16=bf16)
         from .conv_model import side_latents
 
-        z = side_latents(model.net, y)
-        return Analysis(y, shape, grey, model, settings, z, model.prior(z, y.shape[1:]), list(planes))
+        z = side_latents(model.net, y, bf16)
+        return Analysis(y, shape, grey, model, settings, z, model.prior(z, y.shape[1:]), list(planes), bf16=bf16)
 
     def quantise(self, a: Analysis, *, step: float, count: int | None) -> Coded:
         kept = min(count or a.model.channels, a.model.channels)
@@ -330,7 +338,7 @@ class ConvCodec(CodecBase):
         # The model's own entropy model, or the adaptive context coder where it does better
         # (a model early in its training, or images unlike its training set).
         coder, body = min(_latent_streams(c).values(), key=lambda cb: len(cb[1]))
-        return _HEAD.pack(c.step_index, c.kept, coder) + body
+        return _HEAD.pack(c.step_index, c.kept, coder | (BF16 if c.analysis.bf16 else 0)) + body
 
     def payload_header(self, payload: bytes) -> tuple[float, int]:
         if len(payload) < _HEAD.size:
@@ -347,12 +355,12 @@ class ConvCodec(CodecBase):
         if len(payload) < _HEAD.size:
             raise BundleError("image payload is truncated")
         j, kept, coder = _HEAD.unpack_from(payload, 0)
-        residual = None
+        residual, bf16 = None, bool(coder & BF16)
         if coder & RESIDUAL:
-            coder &= ~RESIDUAL
             body, residual = _split_residual(payload)
         else:
             body = payload[_HEAD.size:]
+        coder &= ~(RESIDUAL | BF16)
         if not (STEP_INDEX_RANGE[0] <= j <= STEP_INDEX_RANGE[1]) or not (1 <= kept <= shared.channels) \
                 or coder not in CODERS or (coder in (HYPER, HYPER_ADAPTIVE) and not shared.hyper):
             raise BundleError(f"image payload has invalid step index {j}, channel count {kept} or coder {coder}")
@@ -368,7 +376,7 @@ class ConvCodec(CodecBase):
         else:
             counts = [shared.data.counts(ch, j) for ch in range(kept)]
             q = np.stack(symbols.decode_fixed(body, [lh * lw] * kept, counts)).reshape(kept, lh, lw)
-        planes = _synthesise(shared, q, float(2.0 ** (j / 8)), (h, w), len(shapes) == 1)
+        planes = _synthesise(shared, q, float(2.0 ** (j / 8)), (h, w), len(shapes) == 1, bf16)
         if residual is None:
             return planes
         rest = klt.CODEC.decode(residual, [(h, w)] * len(planes), _residual_settings(), klt_basis.dct_basis(8))
@@ -398,8 +406,10 @@ def _latent_streams(c: Coded) -> dict:
     """``{kind: (coder byte, stream)}`` of the latent coders this model tries: ``context``
     (the adaptive context coder), and ``hyperprior`` or ``tables`` (the model's own)."""
     a = c.analysis
+    # The context coder holds grids component-major: the (h, w, C) view it is handed is
+    # turned back into c.q's own layout without a copy (a transposing copy cost 0.2 s at 4 MP).
     out = {"context": (ADAPTIVE if TOKEN_SPLIT is not None else ADAPTIVE_ONE_STAGE,
-                       coefcode.encode_grids([np.ascontiguousarray(c.q.transpose(1, 2, 0))], [3], TOKEN_SPLIT))}
+                       coefcode.encode_grids([c.q.transpose(1, 2, 0)], [3], TOKEN_SPLIT))}
     if a.model.uses_hyper:
         tabs = a.model.data.tables
         side = symbols.encode_fixed(list(a.side), [tabs[t] for t in a.model.side_tables])

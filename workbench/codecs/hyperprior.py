@@ -95,23 +95,24 @@ def int_synthesis(weights: dict, prefix: str, z: np.ndarray, latent: int) -> tup
         frac_in = ACT_FRAC
     wi, bi, f = _int_weights(weights[f"{prefix}s3.weight"], weights[f"{prefix}s3.bias"], frac_in)
     total = f + frac_in
-    # The last layer is a 1x1 convolution: a matrix product per row band, requantised in
-    # place (multiplying by a power of two and flooring are exact on float64 integers).
+    # The last layer is a 1x1 convolution: a matrix product per band of pixels, requantised
+    # in place (multiplying by a power of two and flooring are exact on float64 integers).
+    # Written channel-major, so that the tables and offsets made from it are contiguous.
     c, h, w = x.shape
-    wm = wi.reshape(wi.shape[0], -1).T
-    scale = np.array([2.0 ** (MEAN_FRAC - total)] * latent + [2.0 ** (LOG_FRAC - total)] * latent)
-    out = np.empty((h * w, 2 * latent), np.int32)
+    wm = wi.reshape(wi.shape[0], -1)
+    scale = np.array([2.0 ** (MEAN_FRAC - total)] * latent + [2.0 ** (LOG_FRAC - total)] * latent)[:, None]
+    out = np.empty((2 * latent, h * w), np.int32)
     flat = x.reshape(c, h * w)
     band = max(1, (1 << 21) // (2 * latent))
     for r in range(0, h * w, band):
-        acc = flat[:, r:r + band].T @ wm
-        acc += bi
+        acc = wm @ flat[:, r:r + band]
+        acc += bi[:, None]
         acc *= scale
         acc += 0.5
         np.floor(acc, out=acc)
         np.clip(acc, -OUT_CLIP, OUT_CLIP, out=acc)
-        out[r:r + band] = acc
-    out = out.T.reshape(2 * latent, h, w)
+        out[:, r:r + band] = acc
+    out = out.reshape(2 * latent, h, w)
     return out[:latent], out[latent:]
 
 
