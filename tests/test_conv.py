@@ -170,18 +170,6 @@ def test_weights_that_are_not_plain_tensors_are_refused(tiny_model):
         modelfile.parse_model(forged)
 
 
-def test_training_for_a_handful_of_steps_lowers_the_loss(small_images, tmp_path):
-    # Loss = rate + lambda * distortion on fixed validation crops, before and after 30 steps.
-    cfg = TrainConfig(latent=8, hidden=16, side=0, side_hidden=0, max_steps=30, seed=5, lam=0.01)
-    rec = run(train_job(small_images, tmp_path / "m.wmodel", cfg))
-    first, last = rec["history"][0], rec["history"][-1]
-
-    def loss(h):
-        return h["heldout_bpp"] + cfg.lam * 255**2 * 10 ** (-h["heldout_psnr"] / 10)
-
-    assert loss(last) < loss(first)
-
-
 def test_training_is_deterministic_with_a_seed(small_images, tmp_path):
     cfg = TrainConfig(latent=4, hidden=8, side=0, side_hidden=0, max_steps=4, seed=9)
     a = run(train_job(small_images, tmp_path / "a.wmodel", cfg))
@@ -212,6 +200,21 @@ def test_augmented_training_is_seeded_and_recorded_in_the_model(small_images, tm
     assert a["sha256"] == b["sha256"]
     info = modelfile.read_model(tmp_path / "a.wmodel").info
     assert info["augment"] is True
+
+
+@pytest.mark.parametrize("bf16", [False, True])
+def test_training_in_either_precision_lowers_the_loss_and_says_which(small_images, tmp_path, bf16):
+    # Loss = rate + lambda * distortion on fixed validation crops, before and after 30 steps.
+    cfg = TrainConfig(latent=8, hidden=16, side=0, side_hidden=0, max_steps=30, seed=5, lam=0.01, bf16=bf16)
+    rec = run(train_job(small_images, tmp_path / "m.wmodel", cfg))
+    first, last = rec["history"][0], rec["history"][-1]
+
+    def loss(h):
+        return h["heldout_bpp"] + cfg.lam * 255**2 * 10 ** (-h["heldout_psnr"] / 10)
+
+    assert loss(last) < loss(first)
+    info = modelfile.read_model(tmp_path / "m.wmodel").info
+    assert info["gdn_precision"] == ("bfloat16" if bf16 else "float32")
 
 
 def test_resume_continues_from_the_checkpoint(small_images, tmp_path):

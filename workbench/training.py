@@ -56,6 +56,11 @@ class TrainConfig:
     # random saturation, so a folder with few colour photographs still shows the model many
     # colours (the planes are YCbCr, so only Cb and Cr move and the luma is untouched).
     augment: bool = False
+    # The GDN paths in bfloat16 (None: where the CPU multiplies it in hardware, as the codec
+    # does). Fine-tuning 10 min as above, both runs on 2026-12-04 (a slower day than the
+    # figures above): float32 6,268 steps, -43.3 % vs JPEG, -8.6 % vs WebP; bfloat16 8,636
+    # steps, -44.8 % and -11.0 %.
+    bf16: bool | None = None
 
 
 def _planes01(img: SourceImage) -> np.ndarray:
@@ -252,6 +257,7 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
                     key = f"{i}.{k}"
                     if key in st and hasattr(group[k], "copy_"):
                         group[k].copy_(torch.from_numpy(st[key].reshape(tuple(group[k].shape))).to(group[k].dtype))
+    bf16 = conv_model.bf16_fast() if config.bf16 is None else bool(config.bf16)
     budget = config.minutes * 60.0
     start = last_ckpt = time.monotonic()
     step = step0
@@ -293,7 +299,7 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
             if config.augment:
                 crops = [_recolour(rng, c) for c in crops]
             batch = torch.from_numpy(np.stack(crops))
-            loss, b, mse = conv_model.train_step(net, batch, config.lam, gen, config.step_range)
+            loss, b, mse = conv_model.train_step(net, batch, config.lam, gen, config.step_range, bf16)
             opt.zero_grad()
             if torch.isfinite(loss):
                 loss.backward()
@@ -307,12 +313,12 @@ def train_job(images: list[SourceImage], out, config: TrainConfig = TrainConfig(
             yield Progress(min(done, budget), budget,
                            f"step {step}  loss {float(loss.detach()):.3f}  val PSNR {psnr:.2f} dB  val {bpp:.3f} bpp")
             if time.monotonic() - last_ckpt > config.checkpoint_seconds:
-                info = _info(config, step, history, images)
+                info = _info(config, step, history, images, bf16)
                 save_checkpoint(net, opt, out, info)
                 last_ckpt = time.monotonic()
     finally:
         # Reached on completion, on Cancel (the generator is closed) and on Ctrl-C alike.
-        info = _info(config, step, history, images)
+        info = _info(config, step, history, images, bf16)
         info["started_from"] = started_from
         sha = save_checkpoint(net, opt, out, info, calibrate=val.numpy())
     yield Progress(budget, budget, "saved")
@@ -332,7 +338,7 @@ def _graft(net, state: dict) -> None:
     net.load_state_dict(own)
 
 
-def _info(config, step, history, images):
+def _info(config, step, history, images, bf16: bool):
     return {"steps": step, "lambda": config.lam, "seed": config.seed, "crop": config.crop, "batch": BATCH,
-            "augment": config.augment,
+            "augment": config.augment, "gdn_precision": "bfloat16" if bf16 else "float32",
             "history": history[-200:], "images": [i.name for i in images][:500]}

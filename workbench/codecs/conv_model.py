@@ -238,14 +238,15 @@ def _laplace_cdf(x, b):
 
 
 def train_step(model: Autoencoder, x: torch.Tensor, lam: float, gen: torch.Generator,
-               steps: tuple[float, float] = (2 ** -2.5, 2 ** 1.5)):
+               steps: tuple[float, float] = (2 ** -2.5, 2 ** 1.5), bf16: bool = False):
     """Loss = bits per pixel + (lam / s^2) * 255^2 * MSE per image, with a latent step s drawn
     log-uniformly from ``steps`` and nested dropout. Scaling lambda with 1/s^2 keeps each
     step at its own rate–distortion balance (distortion grows as the step squared), so one
-    model serves every step."""
+    model serves every step. With ``bf16`` the GDN paths run in bfloat16, as the codec runs
+    them where the CPU has it; the rate terms stay in float32."""
     nb, _, h, w = x.shape
     c = model.arch.latent
-    y = model.encoder(x)
+    y = model.encoder(x, bf16)
     lo, hi = np.log2(steps[0]), np.log2(steps[1])
     s = torch.exp2(torch.rand(nb, 1, 1, 1, generator=gen) * float(hi - lo) + float(lo))
     noise = torch.rand(y.shape, generator=gen) - 0.5
@@ -253,7 +254,7 @@ def train_step(model: Autoencoder, x: torch.Tensor, lam: float, gen: torch.Gener
     keep_n = torch.where(torch.rand(nb, generator=gen) < 0.5, torch.full((nb,), c),
                          torch.randint(1, c + 1, (nb,), generator=gen))
     keep = (torch.arange(c)[None, :] < keep_n[:, None]).float()[:, :, None, None]
-    x_hat = model.decoder(y_tilde * s * keep)
+    x_hat = model.decoder(y_tilde * s * keep, bf16)
     if model.arch.side:
         zn = torch.rand((nb, model.arch.side, -(-h // (STRIDE * 4)), -(-w // (STRIDE * 4))), generator=gen) - 0.5
         bpp = model.hyper_bits(y, y_tilde, s, keep, zn) / (h * w)
