@@ -74,7 +74,7 @@ def test_round_trip_equals_in_process_reconstruction(tiny_model, small_images):
 
 
 @pytest.mark.parametrize("bf16", [False, True])
-def test_the_payload_says_which_precision_the_synthesis_ran_in_and_the_decoder_follows(
+def test_the_payload_says_which_precision_the_synthesis_ran_in_and_a_like_decoder_follows(
         tiny_model, small_images, monkeypatch, bf16):
     from workbench.codecs import conv
     from workbench.formats import bundle
@@ -83,12 +83,23 @@ def test_the_payload_says_which_precision_the_synthesis_ran_in_and_the_decoder_f
     with monkeypatch.context() as m:
         m.setattr(conv_model, "bf16_fast", lambda: bf16)
         result = pipeline.encode(small_images, Settings(method="conv", step=8.0), shared=model, shared_ref=sha)
-    assert {bool(e.payload[3] & conv.BF16) for e in bundle.parse(result.data).entries} == {bf16}
-    with monkeypatch.context() as m:  # a decoder whose own CPU would choose the other way
-        m.setattr(conv_model, "bf16_fast", lambda: not bf16)
         out = workbench.decompress(result.data, basis=model, basis_ref=sha)
+    assert {bool(e.payload[3] & conv.BF16) for e in bundle.parse(result.data).entries} == {bf16}
     for r in result.images:
         assert np.array_equal(out[r.name], r.reconstruction)
+
+
+def test_a_decoder_without_bfloat16_hardware_stays_within_a_grey_level(tiny_model, small_images, monkeypatch):
+    path, model, sha, _ = tiny_model
+    with monkeypatch.context() as m:
+        m.setattr(conv_model, "bf16_fast", lambda: True)
+        result = pipeline.encode(small_images, Settings(method="conv", step=8.0), shared=model, shared_ref=sha)
+    with monkeypatch.context() as m:
+        m.setattr(conv_model, "bf16_fast", lambda: False)
+        out = workbench.decompress(result.data, basis=model, basis_ref=sha)
+    for r in result.images:
+        d = out[r.name].astype(np.float64) - r.reconstruction
+        assert np.sqrt(np.mean(d ** 2)) < 1.0
 
 
 def test_bfloat16_gdn_paths_stay_within_a_grey_level_of_float32(tiny_model):

@@ -112,7 +112,8 @@ def _deep(path, x, bf16: bool):
 
 def bf16_fast() -> bool:
     """Whether this CPU multiplies bfloat16 in hardware (AVX512-BF16 or AMX), where oneDNN
-    runs the GDN paths about 2.5x faster than in float32; ``WORKBENCH_BF16=0`` turns it off.
+    runs the GDN paths about 2.5x faster than in float32 (and elsewhere some 40x slower);
+    ``WORKBENCH_BF16=0`` turns it off.
 
     Measured with the shipped model (2026-12-04, a 2-core CPU with AMX, 4 MP): synthesis
     0.66 -> 0.31 s, analysis 0.50 -> 0.27 s; with the linear paths in bfloat16 too it was
