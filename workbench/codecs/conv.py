@@ -68,7 +68,7 @@ CODERS = (LEARNED, ADAPTIVE_ONE_STAGE, ADAPTIVE, HYPER, HYPER_ADAPTIVE)
 TOKEN_SPLIT = coefcode.SPLIT  # what this version writes
 STEP_INDEX_RANGE = (-64, 64)
 RESIDUAL = 0x80  # coder-byte flag: a residual layer follows the latents
-BF16 = 0x40  # coder-byte flag: the decoder's GDN path ran in bfloat16 (conv_model.bf16_fast)
+BF16 = 0x40  # coder-byte flag: the encoder's synthesis ran its GDN path in bfloat16 (conv_model.bf16_fast)
 # Below this step the latents stop getting finer and the residual layer takes over. On the
 # four held-out photographs (astronaut, coffee, chelsea, rocket) with the second shipped
 # model, the latents alone cost more than a DCT-coded residual above about 36 dB. Mean
@@ -171,7 +171,7 @@ class Analysis:
     source: list | None = None  # the planes coded (for a residual layer)
     _tables: tuple | None = None  # (step index, the prior's table, offset) of the last step asked for
     _residual: tuple | None = None  # ((step index, kept), base planes, residual's klt analysis)
-    bf16: bool = False  # GDN paths in bfloat16; the payload says so, and its decoder does the same
+    bf16: bool = False  # GDN paths in bfloat16; the payload says so for decoders that can follow
 
     def tables_at(self, j: int, kept: int):
         """The hyperprior's (table, whole-step offset) of the first ``kept`` channels at step

@@ -157,8 +157,8 @@ class Autoencoder(nn.Module):
 
     # The linear paths hold unit-norm basis vectors and apply the fixed scale here, so that
     # Adam's steps (which ignore a parameter's scale) move them by a fraction of their size.
-    # With ``bf16`` the GDN paths run in bfloat16 (inference only, see :func:`bf16_fast`);
-    # the linear paths, which carry most of the signal, stay in float32.
+    # With ``bf16`` the GDN paths run in bfloat16 (see :func:`bf16_fast`); the linear paths,
+    # which carry most of the signal, stay in float32.
     def encoder(self, x, bf16: bool = False):
         return self.analysis(x) * LATENT_PER_UNIT + _deep(self.encoder_deep, x, bf16)
 
