@@ -1,6 +1,7 @@
 """Image input: modes, bit depths, orientation, the bomb guard, folder mode."""
 
 import os
+import sys
 
 import numpy as np
 import pytest
@@ -150,6 +151,41 @@ def test_atomic_write_removes_at_once_the_temporary_of_a_writer_that_has_ended(t
     live.write_bytes(b"half")
     imagefiles.write_atomic(target, b"new")
     assert not orphan.exists() and live.exists()
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="/proc")
+def test_a_writer_that_has_ended_but_is_not_yet_reaped_counts_as_ended(tmp_path):
+    # A killed worker can linger as a zombie (ended, not yet reaped by its parent) while a
+    # rerun writes the same file; its temporary is removed all the same.
+    import subprocess
+    import time
+
+    child = subprocess.Popen([sys.executable, "-c", "pass"])  # not waited for: a zombie once it ends
+    deadline = time.monotonic() + 30
+    while not imagefiles._ended_unreaped(child.pid) and time.monotonic() < deadline:
+        time.sleep(0.01)
+    target = tmp_path / "x.wbundle"
+    orphan = tmp_path / f".x.wbundle.{child.pid}-k3j2.part"
+    orphan.write_bytes(b"half")
+    imagefiles.write_atomic(target, b"new")
+    assert not orphan.exists()
+    child.wait()
+
+
+def test_a_sweep_under_a_folder_removes_only_our_temporaries_of_ended_writers(tmp_path):
+    import os
+    import subprocess
+
+    dead = int(subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
+                              capture_output=True, text=True).stdout)
+    (tmp_path / "a" / "b").mkdir(parents=True)
+    orphan = tmp_path / "a" / "b" / f".f03.png.wbundle.{dead}-mcnexrmv.part"
+    live = tmp_path / "a" / f".g.wbundle.{os.getppid()}-q9z1.part"
+    foreign = tmp_path / "a" / ".someone-elses.part"
+    for p in (orphan, live, foreign):
+        p.write_bytes(b"half")
+    imagefiles.remove_stale_parts_under(tmp_path)
+    assert not orphan.exists() and live.exists() and foreign.exists()
 
 
 # ----------------------------------------------------- files written by other encoders

@@ -256,6 +256,9 @@ def batch_job(src, dst, recipe: dict, *, workers: int | None = None, scheduler: 
                     psnrs.append(row["psnr"])
                 mean = f", mean PSNR {sum(psnrs) / len(psnrs):.2f} dB" if psnrs else ""
                 yield Progress(done, max(total, 1), f"{row['path']}: {row['status']}{mean}")
+        from .formats.imagefiles import remove_stale_parts_under
+
+        remove_stale_parts_under(dst)
         return summary(dst)
     finally:
         db.close()
@@ -417,5 +420,9 @@ def restore_job(dst, out, *, verify: bool = False, force: bool = False):
             if r["ssim"] is not None and r["ssim"] == r["ssim"] and abs(ssim - r["ssim"]) > 1e-6:
                 stats["mismatches"].append(f"{r['path']}: SSIM {ssim:.6f} now, {r['ssim']:.6f} in the manifest")
             stats["verified"] += 1
+    if out is not None:
+        from .formats.imagefiles import remove_stale_parts_under
+
+        remove_stale_parts_under(out)
     yield Progress(len(done), len(done), "done")
     return stats

@@ -305,6 +305,27 @@ def _sync_folder(folder: Path) -> None:
         os.close(fd)
 
 
+def _part_owner(part: Path) -> int | None:
+    """The writer's pid in the name of one of our temporaries (``.NAME.PID-XXXX.part``, as
+    :func:`_stage` names them), or None for a name of another shape."""
+    name = part.name
+    if not (name.startswith(".") and name.endswith(".part")):
+        return None
+    head = name[1:-len(".part")].rpartition("-")[0]  # mkstemp's random part has no '-'
+    owner = head.rpartition(".")[2]
+    return int(owner) if owner.isdigit() else None
+
+
+def _remove_if_stale(part: Path, now: float, *, by_age: bool = True) -> None:
+    owner = _part_owner(part)
+    try:
+        if (owner is not None and not _process_alive(owner)) or \
+                (by_age and now - part.stat().st_mtime > STALE_PART_SECONDS):
+            part.unlink()
+    except OSError:
+        pass
+
+
 def _remove_stale_parts(path: Path) -> None:
     """Remove temporary files of earlier, killed writes of ``path`` (ours by their name):
     those whose writing process has ended, and any older than ``STALE_PART_SECONDS``."""
@@ -312,14 +333,20 @@ def _remove_stale_parts(path: Path) -> None:
     import time
 
     now = time.time()
-    prefix = f".{path.name}."
-    for part in path.parent.glob(f"{glob.escape(prefix)}*.part"):
-        owner = part.name[len(prefix):].split("-", 1)[0]
-        try:
-            if (owner.isdigit() and not _process_alive(int(owner))) or now - part.stat().st_mtime > STALE_PART_SECONDS:
-                part.unlink()
-        except OSError:
-            pass
+    for part in path.parent.glob(f"{glob.escape(f'.{path.name}.')}*.part"):
+        _remove_if_stale(part, now)
+
+
+def remove_stale_parts_under(folder) -> None:
+    """Remove, anywhere under ``folder``, the temporaries of our writes whose writer has
+    ended. A batch's last step: a write killed mid-way can belong to a worker that was still
+    exiting when a rerun wrote the same file again, and so was left then."""
+    import time
+
+    now = time.time()
+    for part in Path(folder).rglob(".*.part"):
+        if _part_owner(part) is not None:
+            _remove_if_stale(part, now, by_age=False)
 
 
 def _process_alive(pid: int) -> bool:
@@ -331,7 +358,18 @@ def _process_alive(pid: int) -> bool:
         return False
     except (PermissionError, OSError):
         return True  # someone else's process, or no way to tell: keep the file
-    return True
+    return not _ended_unreaped(pid)
+
+
+def _ended_unreaped(pid: int) -> bool:
+    """Whether ``pid`` has ended but not been reaped yet (a zombie; Linux's /proc, else False)."""
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as f:
+            stat = f.read()
+    except OSError:
+        return False
+    end = stat.rfind(b")")  # the state follows the command name, which may hold ')' itself
+    return stat[end + 2:end + 3] == b"Z"
 
 
 def encode_png(pixels: np.ndarray) -> bytes:
