@@ -35,7 +35,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import BundleError
-from .symbols import ALPHABET, MAX_BITS, Reader, Writer
+from .symbols import ALPHABET, MAX_BITS, Reader, Writer, check_magnitudes  # noqa: F401 (MAX_BITS: part of this module's interface)
 
 INCREMENT = 32
 COUNT_LIMIT = 1 << 16
@@ -287,8 +287,8 @@ class _Grid:
             self.ext = np.zeros(shape[:2], np.int64)
             self.mag = np.zeros((LOW + 1,) + shape[:2], np.int32)
         else:
-            if q.dtype.itemsize > 4 and q.size and int(np.abs(q).max()) >= 1 << MAX_BITS:
-                raise ValueError(f"coefficient magnitude {int(np.abs(q).max())} exceeds the coder's {MAX_BITS}-bit range")
+            if q.dtype.itemsize > 4:
+                check_magnitudes(q)
             self.q = np.ascontiguousarray(np.moveaxis(q, -1, 0), dtype=np.int32)
             self.res = _dc_residual(self.q[0].astype(np.int64))
             self.ext = _extent(self.q)

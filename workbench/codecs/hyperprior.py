@@ -205,15 +205,15 @@ def encode_latents(values: np.ndarray, table: np.ndarray, tables: np.ndarray) ->
     """Signed latent residuals ``values`` (C, h, w) (the latents less their whole-step mean
     offsets) under adaptive models seeded by ``tables[table]``; one coder call per latent
     row, so each row is coded with what the rows above taught the models."""
-    from .symbols import MAX_BITS, Writer
+    from .symbols import Writer, check_magnitudes
 
     values = np.asarray(values)
     table = np.asarray(table)
     if values.shape != table.shape or values.ndim != 3 or values.dtype.kind not in "iu":
         raise ValueError(f"values {values.dtype} {values.shape} and table {table.shape} must be integers "
                          "of the same (C, h, w)")
-    if values.size and int(np.abs(values).max()) >= 1 << MAX_BITS:
-        raise ValueError(f"latent magnitude {int(np.abs(values).max())} exceeds the coder's {MAX_BITS}-bit range")
+    if values.dtype.itemsize > 4:
+        check_magnitudes(values, "latent")
     models, w = _ScaleModels(tables), Writer()
     # int32 rows, as the decoder holds them: half the memory to copy and scan
     base, rows = _base_context(table), np.ascontiguousarray(values.transpose(1, 0, 2), dtype=np.int32)

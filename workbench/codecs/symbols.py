@@ -24,10 +24,18 @@ ALPHABET = DIRECT + MAX_BITS - 4  # tokens for bit lengths 5..MAX_BITS
 _FAMILY = constriction.stream.model.Categorical(perfect=False)
 
 
+def check_magnitudes(values: np.ndarray, what: str = "coefficient") -> None:
+    """Raise ValueError if some ``|value|`` is beyond the coder's MAX_BITS-bit range (before a
+    cast to int32, which would wrap it silently); min and max, no full-size temporary."""
+    if values.size:
+        big = max(-int(values.min()), int(values.max()))
+        if big >= 1 << MAX_BITS:
+            raise ValueError(f"{what} magnitude {big} exceeds the coder's {MAX_BITS}-bit range")
+
+
 def _tokens(mag: np.ndarray):
     """Token and number of mantissa bits of non-negative magnitudes."""
-    if mag.size and int(mag.max()) >= 1 << MAX_BITS:
-        raise ValueError(f"coefficient magnitude {int(mag.max())} exceeds the coder's {MAX_BITS}-bit range")
+    check_magnitudes(mag)
     bitlen = np.frexp(mag.astype(np.float64))[1].astype(np.int64)
     esc = mag >= DIRECT
     tok = np.where(esc, DIRECT - 5 + bitlen, mag)
