@@ -158,3 +158,61 @@ def test_restore_into_the_source_tree_is_refused(tree, tmp_path, capsys):
     assert cli.main(["restore", str(dst), "-o", str(tree / "day1")]) == 2
     assert "outside the sources" in capsys.readouterr().err
     assert {p: p.read_bytes() for p in tree.rglob("*") if p.is_file()} == before
+
+
+@pytest.fixture(scope="module")
+def photo_tree(tmp_path_factory):
+    """Two crops of scikit-image's bundled 'astronaut' and 'chelsea'."""
+    from skimage import data
+
+    src = tmp_path_factory.mktemp("photos")
+    Image.fromarray(data.astronaut()[100:196, 120:248]).save(src / "a.png")
+    Image.fromarray(data.chelsea()[:96, :128]).save(src / "c.png")
+    return src
+
+
+def test_verification_accepts_conv_bundles_made_in_bfloat16_and_decoded_in_float32(photo_tree, tmp_path,
+                                                                                   monkeypatch):
+    # A cluster's workers and the machine that restores need not be the same kind of CPU:
+    # bfloat16 on one and float32 on the other rounds some samples a grey level the other way.
+    from workbench.codecs import conv_model
+    from workbench.jobs import run
+    from workbench.training import TrainConfig, train_job
+
+    pytest.importorskip("torch")
+    model = tmp_path / "tiny.wmodel"
+    run(train_job([read_image(photo_tree / "a.png")], model,
+                  TrainConfig(latent=8, hidden=16, side=0, side_hidden=0, max_steps=20, seed=3)))
+    dst = tmp_path / "dst"
+    monkeypatch.setenv("WORKBENCH_BF16", "1")  # bfloat16 even where it is emulated
+    assert cli.main(["batch", str(photo_tree), "-o", str(dst), "--workers", "1", "--method", "conv",
+                     "--model", str(model), "--step", "8"]) == 0
+    monkeypatch.setenv("WORKBENCH_BF16", "0")
+    assert not conv_model.bf16_fast()
+    stats = run(archive.restore_job(dst, tmp_path / "out", verify=True))
+    assert stats["verified"] == 2 and stats["mismatches"] == []
+    # the float32 decode really differs from what the manifest measured
+    rows = {r["path"]: r for r in archive.rows(dst)}
+    from workbench.quality import metrics
+
+    psnrs = [metrics.psnr(read_image(photo_tree / p).pixels, read_image(tmp_path / "out" / p).pixels)
+             for p in ("a.png", "c.png")]
+    assert max(abs(p - rows[n]["psnr"]) for p, n in zip(psnrs, ("a.png", "c.png"))) > 1e-6
+
+
+def test_verification_reports_a_source_brightened_by_four_levels_since_the_batch(photo_tree, tmp_path, capsys):
+    src = tmp_path / "src"
+    shutil.copytree(photo_tree, src)
+    dst = tmp_path / "dst"
+    assert cli.main(["batch", str(src), "-o", str(dst), "--workers", "1", "--step", "5"]) == 0
+    px = read_image(src / "c.png").pixels
+    Image.fromarray(np.clip(px.astype(np.int16) + 4, 0, 255).astype(np.uint8)).save(src / "c.png")
+    assert cli.main(["restore", str(dst), "-o", str(tmp_path / "out"), "--verify"]) == 1
+    out = capsys.readouterr().out
+    assert "mismatch: c.png: PSNR" in out and "a.png" not in out.split("verified")[1]
+
+
+def test_a_lossless_manifest_entry_tolerates_no_real_loss():
+    assert archive.same_psnr(float("inf"), None) and archive.same_psnr(float("inf"), float("inf"))
+    assert archive.same_psnr(60.0, float("inf"))  # MSE 0.065 levels^2: one sample in 16 one level off
+    assert not archive.same_psnr(48.0, float("inf"))  # MSE 1.03: every sample a level off

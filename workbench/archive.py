@@ -367,6 +367,29 @@ def report_csv(dst) -> bytes:
 
 # ------------------------------------------------------------------ back again
 
+# What a decoder on another CPU may change. The integer streams decode identically
+# everywhere, but the float stages after them (the KLT's inverse transform in BLAS, the conv
+# synthesis in torch, in bfloat16 on one CPU and float32 on another) may round a sample one
+# grey level the other way. Measured with the shipped conv model on a 4-MP mosaic, bfloat16
+# against float32 at steps 4/8/24: 3.5-3.8 % of the samples one level off, none more, mean
+# squared error +0.04 levels^2. A verification accepts a mean squared error within
+# VERIFY_MSE + VERIFY_MSE_REL of the manifest's (in 8-bit levels^2 of full scale) and an
+# SSIM within VERIFY_SSIM: room for a quarter of the samples one level off (six times what
+# was measured), and far below what a wrong model, a changed source or damaged pixels do.
+VERIFY_MSE = 0.25
+VERIFY_MSE_REL = 0.01
+VERIFY_SSIM = 1e-3
+
+
+def same_psnr(got: float, manifest: float | None) -> bool:
+    """Whether PSNR ``got`` (dB) agrees with the manifest's within what decoding on
+    another CPU explains (``None`` or infinity in the manifest: a lossless image)."""
+    def mse(p):  # in 8-bit levels^2 of full scale; infinity (identical) is 0
+        return 0.0 if p is None or p == float("inf") else 255.0 ** 2 * 10.0 ** (-p / 10.0)
+
+    want = mse(manifest)
+    return abs(mse(got) - want) <= VERIFY_MSE + VERIFY_MSE_REL * want
+
 
 def restore_job(dst, out, *, verify: bool = False, force: bool = False):
     """Generator job: decode every bundle of a batch tree into PNGs at the same relative paths
@@ -413,11 +436,11 @@ def restore_job(dst, out, *, verify: bool = False, force: bool = False):
             pairs = [(i, d.pixels[..., : i.pixels.shape[2]] if i.pixels.ndim == 3 else
                       d.pixels if d.pixels.ndim == 2 else d.pixels[..., 0]) for i, d in zip(images, decoded)]
             got = _mean(metrics.psnr(i.pixels, px, data_range=i.peak) for i, px in pairs)
-            if not (abs(got - r["psnr"]) <= 1e-6 or (got == float("inf") and r["psnr"] in (None, float("inf")))):
+            if not same_psnr(got, r["psnr"]):
                 stats["mismatches"].append(f"{r['path']}: PSNR {got:.6f} dB now, {r['psnr']:.6f} dB in the manifest")
             ssim = _mean(metrics.ssim(i.pixels, px, data_range=i.peak) for i, px in pairs
                          if metrics.ssim_applies(i.height, i.width))
-            if r["ssim"] is not None and r["ssim"] == r["ssim"] and abs(ssim - r["ssim"]) > 1e-6:
+            if r["ssim"] is not None and r["ssim"] == r["ssim"] and abs(ssim - r["ssim"]) > VERIFY_SSIM:
                 stats["mismatches"].append(f"{r['path']}: SSIM {ssim:.6f} now, {r['ssim']:.6f} in the manifest")
             stats["verified"] += 1
     if out is not None:

@@ -112,8 +112,9 @@ def _deep(path, x, bf16: bool):
 
 def bf16_fast() -> bool:
     """Whether this CPU multiplies bfloat16 in hardware (AVX512-BF16 or AMX), where oneDNN
-    runs the GDN paths about 2.5x faster than in float32 (and elsewhere some 40x slower);
-    ``WORKBENCH_BF16=0`` turns it off.
+    runs the GDN paths about 2.5x faster than in float32 (and elsewhere some 40x slower).
+    ``WORKBENCH_BF16=0`` turns it off; ``WORKBENCH_BF16=1`` turns it on everywhere, so that
+    a CPU without the hardware decodes a bfloat16 bundle exactly as it was made, slowly.
 
     Measured with the shipped model (2026-12-04, a 2-core CPU with AMX, 4 MP): synthesis
     0.66 -> 0.31 s, analysis 0.50 -> 0.27 s; with the linear paths in bfloat16 too it was
@@ -122,8 +123,9 @@ def bf16_fast() -> bool:
     +0.08, +0.04, +0.03 % (rate at equal PSNR)."""
     import os
 
-    if os.environ.get("WORKBENCH_BF16", "").strip() == "0":
-        return False
+    forced = os.environ.get("WORKBENCH_BF16", "").strip()
+    if forced in ("0", "1"):
+        return forced == "1"
     probes = [getattr(torch.cpu, n, None) for n in ("_is_avx512_bf16_supported", "_is_amx_tile_supported")]
     try:
         return any(p() for p in probes if p is not None)
