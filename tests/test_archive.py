@@ -216,3 +216,21 @@ def test_a_lossless_manifest_entry_tolerates_no_real_loss():
     assert archive.same_psnr(float("inf"), None) and archive.same_psnr(float("inf"), float("inf"))
     assert archive.same_psnr(60.0, float("inf"))  # MSE 0.065 levels^2: one sample in 16 one level off
     assert not archive.same_psnr(48.0, float("inf"))  # MSE 1.03: every sample a level off
+
+
+def test_restore_only_matching_paths_writes_just_those(tree, tmp_path, capsys):
+    dst, out = tmp_path / "dst", tmp_path / "out"
+    cli.main(["batch", str(tree), "-o", str(dst), "--workers", "1"])
+    assert cli.main(["restore", str(dst), "-o", str(out), "--only", "day1/*", "--only", "*.tif"]) == 0
+    written = sorted(p.relative_to(out).as_posix() for p in out.rglob("*") if p.is_file())
+    assert written == ["day1/a.png", "day1/cam2/c.png", "deep.png"]
+
+
+def test_restore_with_a_pattern_matching_nothing_is_refused_and_writes_nothing(tree, tmp_path, capsys):
+    dst, out = tmp_path / "dst", tmp_path / "out"
+    cli.main(["batch", str(tree), "-o", str(dst), "--workers", "1"])
+    capsys.readouterr()
+    assert cli.main(["restore", str(dst), "-o", str(out), "--only", "day2/*"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "'day2/*' matches no image" in err[0]
+    assert not out.exists() or not any(out.rglob("*"))

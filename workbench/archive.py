@@ -391,12 +391,14 @@ def same_psnr(got: float, manifest: float | None) -> bool:
     return abs(mse(got) - want) <= VERIFY_MSE + VERIFY_MSE_REL * want
 
 
-def restore_job(dst, out, *, verify: bool = False, force: bool = False):
+def restore_job(dst, out, *, verify: bool = False, force: bool = False, only: list[str] | None = None):
     """Generator job: decode every bundle of a batch tree into PNGs at the same relative paths
     (``a/b.tif`` -> ``OUT/a/b.png``; pages of a stack -> ``OUT/a/b[0].png``…). Outputs that
     exist are kept (a rerun completes what is missing) unless ``force``. With ``verify``, each
     bundle's decoded pixels are re-measured against its source where it still exists, and
-    compared with the manifest. Returns ``{"restored", "kept", "verified", "mismatches"}``."""
+    compared with the manifest. ``only``: shell patterns (``day1/*``, ``*.tif``); just the
+    sources whose path in the tree matches one are restored, and a pattern that matches none
+    is an error. Returns ``{"restored", "kept", "verified", "mismatches"}``."""
     from . import pipeline
     from .quality import metrics
     from .formats.imagefiles import encode_png, read_many, write_all_atomic
@@ -412,6 +414,13 @@ def restore_job(dst, out, *, verify: bool = False, force: bool = False):
     if out is not None and src.parts and (out.resolve() == src.resolve() or src.resolve() in out.resolve().parents):
         raise InputError(f"{out}: choose a folder outside the sources ({src}); restoring there could replace them")
     done = [r for r in rows(dst) if r["status"] == "done"]
+    if only:
+        from fnmatch import fnmatchcase
+
+        unmatched = [p for p in only if not any(fnmatchcase(r["path"], p) for r in done)]
+        if unmatched:
+            raise InputError(f"{unmatched[0]!r} matches no image done in {dst}")
+        done = [r for r in done if any(fnmatchcase(r["path"], p) for p in only)]
     stats = {"restored": 0, "kept": 0, "verified": 0, "mismatches": []}
     shared, ref = load_shared(dst, recipe) if recipe else (None, None)
     for n, r in enumerate(done):

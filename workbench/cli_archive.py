@@ -32,6 +32,8 @@ def _batch(sub):
     r.add_argument("-o", "--output", required=True, metavar="OUT")
     r.add_argument("--verify", action="store_true", help="re-measure against the sources where they still exist")
     r.add_argument("--force", action="store_true", help="rewrite outputs that exist")
+    r.add_argument("--only", action="append", metavar="PATTERN",
+                   help="restore only the sources whose path in the tree matches (day1/*.tif); repeatable")
     r.set_defaults(func=cmd_restore)
 
 
@@ -149,7 +151,7 @@ def cmd_restore(a) -> int:
     from . import archive
     from .jobs import run
 
-    stats = run(archive.restore_job(a.dst, a.output, verify=a.verify, force=a.force))
+    stats = run(archive.restore_job(a.dst, a.output, verify=a.verify, force=a.force, only=a.only))
     print(f"restored {stats['restored']} bundles into {a.output}, kept {stats['kept']} already there"
           + (f"; verified {stats['verified']} against their sources" if a.verify else ""))
     for m in stats["mismatches"]:
