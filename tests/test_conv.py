@@ -124,6 +124,7 @@ def test_older_bundles_with_one_stage_adaptive_tokens_still_decode(tiny_model, s
     with monkeypatch.context() as m:  # what format 4 wrote, with the adaptive coder chosen
         m.setattr(conv, "TOKEN_SPLIT", None)
         m.setattr(bundle, "VERSION", 4)
+        m.setattr(conv.coefcode, "INT_CODER", False)  # format 4 coded with constriction
         m.setenv("WORKBENCH_BF16", "0")  # format 4 had no bfloat16 bit
         m.setattr(conv.symbols, "encode_fixed", lambda *a: b"\0" * (1 << 20))
         # above the residual layer's knee: format 4 had none

@@ -1,7 +1,8 @@
 """Context-adaptive entropy coding of quantised coefficient grids.
 
 A grid is an int64 array (rows, cols, K): K coefficients for each patch. Coding is done by
-constriction's range coder with categorical models whose counts adapt as coding proceeds,
+a range coder (:mod:`workbench.codecs.rangecoder`; constriction's in older files) with
+categorical models whose counts adapt as coding proceeds,
 identically in the encoder and the decoder (no probability tables are transmitted).
 The grids of one image (Y, Cb, Cr) are coded in lockstep so that one call to the coder
 serves all of them: a call costs about the same Python overhead whether it carries a
@@ -35,10 +36,8 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import BundleError
-from .symbols import ALPHABET, MAX_BITS, Reader, Writer, check_magnitudes  # noqa: F401 (MAX_BITS: part of this module's interface)
+from .symbols import ALPHABET, COUNT_LIMIT, INCREMENT, MAX_BITS, Reader, Writer, check_magnitudes  # noqa: F401 (MAX_BITS: part of this module's interface)
 
-INCREMENT = 32
-COUNT_LIMIT = 1 << 16
 LOW = 8
 CHUNK = 32  # pass-1 rows per coder call at most: big images' models adapt within a level
 AC_EDGES = np.array([1, 2, 3, 4, 6, 8, 11, 15, 20, 28, 40])
@@ -59,6 +58,7 @@ FAMILIES = (("dc", N_DC_CLASSES), ("ext", N_EXT_CLASSES), ("low", N_GROUPS * N_A
 # starting point near that saves each fresh context from learning it symbol by symbol.
 PRIOR = np.array([64, 32, 16, 8, 4, 2])
 SPLIT = 8  # tokens from here on are coded in a second stage (see _Models)
+INT_CODER = True  # what this version writes: tokens through rangecoder (False: constriction's)
 _AC_CLASS = np.searchsorted(AC_EDGES, np.arange(AC_EDGES[-1] + 1), side="right").astype(np.int32)
 
 
@@ -369,7 +369,8 @@ def _check_kinds(shapes, kinds):
         raise ValueError(f"need one kind per grid, got {len(kinds)} kinds for {len(shapes)} grids")
 
 
-def encode_grids(grids: list[np.ndarray], kinds: list[int], split: int | None = SPLIT) -> bytes:
+def encode_grids(grids: list[np.ndarray], kinds: list[int], split: int | None = SPLIT,
+                 int_coder: bool | None = None) -> bytes:
     """Entropy-code coefficient grids.
 
     Parameters
@@ -382,6 +383,9 @@ def encode_grids(grids: list[np.ndarray], kinds: list[int], split: int | None = 
     split : int or None
         Tokens from here on are coded in a second stage (:class:`_Models`); None for the
         one-stage streams of older files.
+    int_coder : bool or None
+        Tokens through :mod:`workbench.codecs.rangecoder`, or through constriction's range
+        coder (older files); None: :data:`INT_CODER`, what this version writes.
 
     Returns
     -------
@@ -395,17 +399,17 @@ def encode_grids(grids: list[np.ndarray], kinds: list[int], split: int | None = 
             raise ValueError(f"coefficient grid must be 3-D with at least one component, got shape {q.shape}")
     _check_kinds(qs, kinds)
     models = _Models(kinds, split)
-    w = Writer()
+    w = Writer(INT_CODER if int_coder is None else int_coder)
     _traverse([_Grid(q.shape, kind, models, q) for q, kind in zip(qs, kinds)], models, _Encoding(w))
     return w.finish()
 
 
 def decode_grids(data: bytes, shapes: list[tuple[int, int, int]], kinds: list[int],
-                 split: int | None = SPLIT) -> list[np.ndarray]:
+                 split: int | None = SPLIT, int_coder: bool = True) -> list[np.ndarray]:
     """Inverse of :func:`encode_grids`; ``shapes`` and ``kinds`` come from the bundle metadata,
-    ``split`` from the payload."""
+    ``split`` and ``int_coder`` from the payload."""
     _check_kinds(shapes, kinds)
     models = _Models(kinds, split)
     grids = [_Grid(tuple(s), kind, models) for s, kind in zip(shapes, kinds)]
-    _traverse(grids, models, _Decoding(Reader(data)))
+    _traverse(grids, models, _Decoding(Reader(data, int_coder)))
     return [np.moveaxis(g.q, 0, -1) for g in grids]  # (rows, cols, K) views

@@ -69,6 +69,7 @@ TOKEN_SPLIT = coefcode.SPLIT  # what this version writes
 STEP_INDEX_RANGE = (-64, 64)
 RESIDUAL = 0x80  # coder-byte flag: a residual layer follows the latents
 BF16 = 0x40  # coder-byte flag: the encoder's synthesis ran its GDN path in bfloat16 (conv_model.bf16_fast)
+INT_TOKENS = 0x20  # coder-byte flag: an adaptive coder's tokens went through rangecoder.py (else constriction's)
 # Below this step the latents stop getting finer and the residual layer takes over. On the
 # four held-out photographs (astronaut, coffee, chelsea, rocket) with the second shipped
 # model, the latents alone cost more than a DCT-coded residual above about 36 dB. Mean
@@ -339,6 +340,8 @@ class ConvCodec(CodecBase):
         # The model's own entropy model, or the adaptive context coder where it does better
         # (a model early in its training, or images unlike its training set).
         coder, body = min(_latent_streams(c).values(), key=lambda cb: len(cb[1]))
+        if coefcode.INT_CODER and coder in (ADAPTIVE, ADAPTIVE_ONE_STAGE, HYPER_ADAPTIVE):
+            coder |= INT_TOKENS
         return _HEAD.pack(c.step_index, c.kept, coder | (BF16 if c.analysis.bf16 else 0)) + body
 
     def payload_header(self, payload: bytes) -> tuple[float, int]:
@@ -367,19 +370,21 @@ class ConvCodec(CodecBase):
             body, residual = _split_residual(payload)
         else:
             body = payload[_HEAD.size:]
-        coder &= ~(RESIDUAL | BF16)
+        int_coder = bool(coder & INT_TOKENS)
+        coder &= ~(RESIDUAL | BF16 | INT_TOKENS)
         if not (STEP_INDEX_RANGE[0] <= j <= STEP_INDEX_RANGE[1]) or not (1 <= kept <= shared.channels) \
-                or coder not in CODERS or (coder in (HYPER, HYPER_ADAPTIVE) and not shared.hyper):
+                or coder not in CODERS or (coder in (HYPER, HYPER_ADAPTIVE) and not shared.hyper) \
+                or (int_coder and coder in (LEARNED, HYPER)):
             raise BundleError(f"image payload has invalid step index {j}, channel count {kept} or coder {coder}")
         from .conv_model import STRIDE
 
         h, w = shapes[0]
         lh, lw = -(-h // STRIDE), -(-w // STRIDE)
         if coder in (HYPER, HYPER_ADAPTIVE):
-            q = self._decode_hyper(body, shared, j, kept, (lh, lw), coder == HYPER_ADAPTIVE)
+            q = self._decode_hyper(body, shared, j, kept, (lh, lw), coder == HYPER_ADAPTIVE, int_coder)
         elif coder != LEARNED:
             split = coefcode.SPLIT if coder == ADAPTIVE else None
-            q = coefcode.decode_grids(body, [(lh, lw, kept)], [3], split)[0].transpose(2, 0, 1)
+            q = coefcode.decode_grids(body, [(lh, lw, kept)], [3], split, int_coder)[0].transpose(2, 0, 1)
         else:
             counts = [shared.data.counts(ch, j) for ch in range(kept)]
             q = np.stack(symbols.decode_fixed(body, [lh * lw] * kept, counts)).reshape(kept, lh, lw)
@@ -390,7 +395,7 @@ class ConvCodec(CodecBase):
         return [b + p for b, p in zip(planes, rest)]
 
     @staticmethod
-    def _decode_hyper(body: bytes, model: Model, j: int, kept: int, grid, adapted: bool) -> np.ndarray:
+    def _decode_hyper(body: bytes, model: Model, j: int, kept: int, grid, adapted: bool, int_coder: bool) -> np.ndarray:
         if len(body) < _SIDE.size or _SIDE.unpack_from(body)[0] > len(body) - _SIDE.size:
             raise BundleError("image payload's side stream is truncated")
         n = _SIDE.unpack_from(body)[0]
@@ -405,7 +410,7 @@ class ConvCodec(CodecBase):
         table, offset = hyperprior.table_and_offset(m16[:kept], l8[:kept], j, TABLE_MIN, TABLE_MAX)
         rest = body[_SIDE.size + n:]
         if adapted:
-            return hyperprior.decode_latents(rest, table - TABLE_MIN, tabs) + offset
+            return hyperprior.decode_latents(rest, table - TABLE_MIN, tabs, int_coder) + offset
         return symbols.decode_grouped(rest, table - TABLE_MIN, tabs) + offset
 
 

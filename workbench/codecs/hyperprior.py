@@ -201,10 +201,12 @@ def _row_context(base_row: np.ndarray, above: np.ndarray | None) -> np.ndarray:
     return act.reshape(-1)
 
 
-def encode_latents(values: np.ndarray, table: np.ndarray, tables: np.ndarray) -> bytes:
+def encode_latents(values: np.ndarray, table: np.ndarray, tables: np.ndarray, int_coder: bool | None = None) -> bytes:
     """Signed latent residuals ``values`` (C, h, w) (the latents less their whole-step mean
     offsets) under adaptive models seeded by ``tables[table]``; one coder call per latent
-    row, so each row is coded with what the rows above taught the models."""
+    row, so each row is coded with what the rows above taught the models. ``int_coder``:
+    tokens through :mod:`workbench.codecs.rangecoder` or constriction's coder (None: what
+    this version writes, ``coefcode.INT_CODER``)."""
     from .symbols import Writer, check_magnitudes
 
     values = np.asarray(values)
@@ -214,7 +216,9 @@ def encode_latents(values: np.ndarray, table: np.ndarray, tables: np.ndarray) ->
                          "of the same (C, h, w)")
     if values.dtype.itemsize > 4:
         check_magnitudes(values, "latent")
-    models, w = _ScaleModels(tables), Writer()
+    from .coefcode import INT_CODER
+
+    models, w = _ScaleModels(tables), Writer(INT_CODER if int_coder is None else int_coder)
     # int32 rows, as the decoder holds them: half the memory to copy and scan
     base, rows = _base_context(table), np.ascontiguousarray(values.transpose(1, 0, 2), dtype=np.int32)
     for r in range(rows.shape[0]):
@@ -222,12 +226,12 @@ def encode_latents(values: np.ndarray, table: np.ndarray, tables: np.ndarray) ->
     return w.finish()
 
 
-def decode_latents(data: bytes, table: np.ndarray, tables: np.ndarray) -> np.ndarray:
-    """Inverse of :func:`encode_latents`."""
+def decode_latents(data: bytes, table: np.ndarray, tables: np.ndarray, int_coder: bool) -> np.ndarray:
+    """Inverse of :func:`encode_latents` (``int_coder`` as it was coded with)."""
     from .symbols import Reader
 
     c, h, w = np.shape(table)
-    models, rd = _ScaleModels(tables), Reader(data)
+    models, rd = _ScaleModels(tables), Reader(data, int_coder)
     base = _base_context(table)
     rows = np.zeros((h, c, w), np.int32)  # decoded tokens stay below 2**26
     for r in range(h):

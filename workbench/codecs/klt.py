@@ -10,7 +10,9 @@ Per image payload (little-endian)::
 by this version; files without it decode as before), bit 2 the decoder smooths the block
 edges of plane 0 (:func:`deblock`), bits 3 and 4 those of planes 1 and 2: the encoder sets
 a plane's bit where the filter brings that plane closer to the source (never for the conv
-codec's residual layer); files without them decode as before.
+codec's residual layer); files without them decode as before; bit 5 the tokens went
+through :mod:`workbench.codecs.rangecoder` (always set by this version; without it,
+through constriction's range coder).
 
 ``kept`` is the number of leading components that carry any non-zero coefficient in this
 image (at most the requested count): trailing all-zero components cost neither basis
@@ -34,6 +36,7 @@ from .base import CodecBase
 _HEAD = struct.Struct("<fHB")
 TWO_STAGE = 2  # payload flag: tokens in two stages
 DEBLOCKED = 4  # payload flag: plane 0's block edges smoothed after synthesis (plane i: 4 << i)
+INT_TOKENS = 32  # payload flag: tokens through workbench's own range coder (rangecoder.py)
 TOKEN_SPLIT = coefcode.SPLIT  # what this version writes (None: one stage, as format 4 and before)
 MAX_STEP = 1e5
 
@@ -279,7 +282,7 @@ def rd_kept(q: list[np.ndarray], bits: np.ndarray | None, n: int) -> int:
 def payload(step, kept, inline, means, ints, bits, q, filtered=()) -> bytes:
     """The image payload (layout in the module docstring) of grids ``q`` (rows, cols, K);
     ``filtered``: per plane, whether the decoder smooths its block edges."""
-    flags = int(inline) | (TWO_STAGE if TOKEN_SPLIT is not None else 0)
+    flags = int(inline) | (TWO_STAGE if TOKEN_SPLIT is not None else 0) | (INT_TOKENS if coefcode.INT_CODER else 0)
     flags |= sum(DEBLOCKED << i for i, f in enumerate(filtered) if f)
     parts = [_HEAD.pack(step, kept, flags), struct.pack(f"<{len(means)}h", *means)]
     if inline:
@@ -477,9 +480,10 @@ class KLTCodec(CodecBase):
         means = struct.unpack_from(f"<{n_planes}h", payload, _HEAD.size)
         if not (np.isfinite(step) and 0 < step <= MAX_STEP):
             raise BundleError(f"image payload has an invalid step {step!r}")
-        if flags & ~(1 | TWO_STAGE | sum(DEBLOCKED << i for i in range(n_planes))):
+        if flags & ~(1 | TWO_STAGE | INT_TOKENS | sum(DEBLOCKED << i for i in range(n_planes))):
             raise BundleError(f"image payload has unknown flags {flags}")
         inline, split = flags & 1, (coefcode.SPLIT if flags & TWO_STAGE else None)
+        int_coder = bool(flags & INT_TOKENS)
         if not 1 <= kept <= settings.kept:
             raise BundleError(f"image payload claims {kept} components (settings allow {settings.kept})")
         if inline:
@@ -492,7 +496,8 @@ class KLTCodec(CodecBase):
             pos += kept + 4
             if pos + vlen > len(payload):
                 raise BundleError("image payload is truncated in its basis")
-            ints = coefcode.decode_grids(payload[pos : pos + vlen], [(1, kept, n)], [2], split)[0].reshape(kept, n)
+            ints = coefcode.decode_grids(payload[pos : pos + vlen], [(1, kept, n)], [2], split,
+                                         int_coder)[0].reshape(kept, n)
             pos += vlen
             synthesis = klt_basis.dequantise_vectors(ints, bits)
         else:
@@ -503,7 +508,7 @@ class KLTCodec(CodecBase):
             synthesis = shared.vectors[:, :kept].T
         grid = [tiling.grid_shape(s, block) + (kept,) for s in shapes]
         kinds = [0] + [1] * (n_planes - 1)
-        q = coefcode.decode_grids(payload[pos:], grid, kinds, split)
+        q = coefcode.decode_grids(payload[pos:], grid, kinds, split, int_coder)
         filtered = tuple(bool(flags & (DEBLOCKED << i)) for i in range(n_planes))
         return synthesise(q, synthesis, float(step), means, shapes, block, filtered)
 

@@ -14,12 +14,16 @@ from __future__ import annotations
 import struct
 
 import constriction
+
+from . import rangecoder
 import numpy as np
 
 from ..errors import BundleError
 
 DIRECT = 16
 MAX_BITS = 26
+INCREMENT = 32  # what one symbol adds to its count in the adaptive models
+COUNT_LIMIT = 1 << 16  # a row whose total passes this is halved
 ALPHABET = DIRECT + MAX_BITS - 4  # tokens for bit lengths 5..MAX_BITS
 _FAMILY = constriction.stream.model.Categorical(perfect=False)
 
@@ -45,8 +49,13 @@ def _tokens(mag: np.ndarray):
 
 
 class Writer:
-    def __init__(self):
-        self.enc = constriction.stream.queue.RangeEncoder()
+    """Tokens through a range coder, signs and mantissa bits raw. With ``int_coder`` the
+    adaptive tokens go through :mod:`workbench.codecs.rangecoder` (reading the models'
+    integer counts); otherwise through constriction's (older streams, and fixed tables)."""
+
+    def __init__(self, int_coder: bool = False):
+        self.int_coder = int_coder
+        self.enc = rangecoder.Encoder() if int_coder else constriction.stream.queue.RangeEncoder()
         self.raw: list[np.ndarray] = []
 
     def put(self, models, ctx: np.ndarray, values: np.ndarray, n_signed: int | None = None) -> None:
@@ -56,7 +65,16 @@ class Writer:
         ``n_signed`` (all by default) carry a sign, the rest are magnitudes."""
         mag = np.abs(values)
         tok, nbits = _tokens(mag)
-        if tok.size:
+        if tok.size and self.int_coder:
+            # the coder counts the symbols in as models.update would (its float rows, which
+            # only constriction reads, are left behind)
+            split, adapt = models.split, (INCREMENT, COUNT_LIMIT)
+            self.enc.encode(models.counts, ctx, tok if split is None else np.minimum(tok, split), adapt)
+            if split is not None:
+                big = tok >= split
+                if big.any():
+                    self.enc.encode(models.tail, ctx[big], tok[big] - split, adapt)
+        elif tok.size:
             split = models.split
             head = tok if split is None else np.minimum(tok, split)
             self.enc.encode(head.astype(np.int32), _FAMILY, models.probabilities(ctx))
@@ -71,6 +89,8 @@ class Writer:
 
     def put_fixed(self, probs: np.ndarray, values: np.ndarray) -> None:
         """Signed values under one fixed token distribution (for learned models)."""
+        if self.int_coder:
+            raise ValueError("fixed tables are coded by constriction's coder (a Writer without int_coder)")
         values = values.reshape(-1)
         mag = np.abs(values)
         tok, nbits = _tokens(mag)
@@ -88,22 +108,31 @@ class Writer:
             self.raw.append(((np.repeat(m, nb) >> shift) & 1).astype(np.uint8))
 
     def finish(self) -> bytes:
-        words = self.enc.get_compressed().astype("<u4")
+        """``n u32 | raw bits u32 | coded stream | raw bits packed``: n counts bytes with
+        ``int_coder``, 32-bit words without."""
+        coded = self.enc.finish() if self.int_coder else self.enc.get_compressed().astype("<u4").tobytes()
+        n = len(coded) if self.int_coder else len(coded) // 4
         bits = np.concatenate(self.raw) if self.raw else np.zeros(0, np.uint8)
-        return struct.pack("<II", words.size, bits.size) + words.tobytes() + np.packbits(bits).tobytes()
+        return struct.pack("<II", n, bits.size) + coded + np.packbits(bits).tobytes()
 
 
 class Reader:
-    def __init__(self, data: bytes):
+    """Inverse of :class:`Writer` (``int_coder`` as it was written with)."""
+
+    def __init__(self, data: bytes, int_coder: bool = False):
         if len(data) < 8:
             raise BundleError("coefficient stream is truncated")
-        n_words, n_bits = struct.unpack("<II", data[:8])
-        end = 8 + 4 * n_words
+        n, n_bits = struct.unpack("<II", data[:8])
+        end = 8 + (n if int_coder else 4 * n)
         if end + (n_bits + 7) // 8 > len(data):
             raise BundleError("coefficient stream is shorter than its header says")
-        words = np.frombuffer(data[8:end], dtype="<u4").astype(np.uint32)
         self.bits = np.unpackbits(np.frombuffer(data[end:], np.uint8))[:n_bits]
         self.pos = 0
+        self.int_coder = int_coder
+        if int_coder:
+            self.dec = rangecoder.Decoder(data[8:end])
+            return
+        words = np.frombuffer(data[8:end], dtype="<u4").astype(np.uint32)
         try:
             self.dec = constriction.stream.queue.RangeDecoder(words)
         except Exception as exc:  # constriction reports malformed input in several ways
@@ -121,6 +150,14 @@ class Reader:
         if ctx.size == 0:
             self._values(np.zeros(0, np.int64), 0)
             return np.zeros(0, np.int64)
+        if self.int_coder:  # counts the models keep in range: only ctx could be wrong, and it is ours
+            split, adapt = models.split, (INCREMENT, COUNT_LIMIT)
+            tok = self.dec.decode(models.counts, ctx, adapt)
+            if split is not None:
+                big = np.flatnonzero(tok == split)
+                if big.size:
+                    tok[big] += self.dec.decode(models.tail, ctx[big], adapt)
+            return self._values(tok, tok.size if n_signed is None else n_signed)
         try:
             tok = np.asarray(self.dec.decode(_FAMILY, models.probabilities(ctx)), dtype=np.int64)
             split = models.split
@@ -135,6 +172,8 @@ class Reader:
 
     def get_fixed(self, probs: np.ndarray, n: int) -> np.ndarray:
         """Inverse of :meth:`Writer.put_fixed`."""
+        if self.int_coder:
+            raise ValueError("fixed tables are coded by constriction's coder (a Reader without int_coder)")
         if n == 0:
             return np.zeros(0, np.int64)
         try:

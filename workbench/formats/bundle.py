@@ -26,11 +26,13 @@ from .names import name_problem
 from ..settings import Settings
 
 MAGIC = b"WKBUNDLE"
-VERSION = 6  # 2: coefficient streams coded in lockstep (coefcode); 3: first pass as a row hierarchy; 4: chunk tags;
+VERSION = 7  # 2: coefficient streams coded in lockstep (coefcode); 3: first pass as a row hierarchy; 4: chunk tags;
 # 5: tokens in two stages (each payload says which way it was coded, so 3 and 4 still decode);
-# 6: the conv payload's bfloat16 bit (conv.BF16)
+# 6: the conv payload's bfloat16 bit (conv.BF16); 7: adaptive tokens through workbench's own
+# range coder (rangecoder.py; the payloads' INT_TOKENS bits say so)
 # (image payload, alpha) chunk tags by version
-TAGS = {3: (b"IMGD", b"ALFA"), 4: (b"CODE", b"OPAQ"), 5: (b"CODE", b"OPAQ"), 6: (b"CODE", b"OPAQ")}
+TAGS = {3: (b"IMGD", b"ALFA"), 4: (b"CODE", b"OPAQ"), 5: (b"CODE", b"OPAQ"), 6: (b"CODE", b"OPAQ"),
+        7: (b"CODE", b"OPAQ")}
 MAX_SIDE = 65536
 MAX_IMAGE_PIXELS = 1 << 27  # one image
 MAX_PIXELS = 1 << 28  # default budget for all images of one bundle together (raise it per call)
