@@ -40,6 +40,8 @@ def _compile():
         return _kernels
     import numba as nb
 
+    from .symbols import DIRECT, MAX_BITS  # the token scheme the token kernels follow
+
     # State lives in locals inside a call (an array element would be reloaded around every
     # store to the output) and in ``st`` between calls: encoder low, range, cached byte,
     # pending bytes + 1; decoder code, range, read position.
@@ -141,7 +143,254 @@ def _compile():
                 for k in range(width):
                     counts[c, k] = (counts[c, k] + 1) // 2
 
-    _kernels = (encode, finish, decode, count)
+    @nb.njit(cache=True, nogil=True)
+    def cdf_of(counts):
+        """Cumulative rows (rows, width + 1), and whether every count is at least 1 and
+        every row's total at most MAX_TOTAL."""
+        rows, width = counts.shape
+        cdf = np.empty((rows, width + 1), np.int64)
+        ok = True
+        for c in range(rows):
+            t = 0
+            cdf[c, 0] = 0
+            for k in range(width):
+                v = counts[c, k]
+                if v < 1:
+                    ok = False
+                t += v
+                cdf[c, k + 1] = t
+            if t > MAX_TOTAL:
+                ok = False
+        return cdf, ok
+
+    @nb.njit(cache=True, nogil=True)
+    def put_tokens(st, out, n, counts, tail, split, ctx, values, n_signed, raw, nraw, inc, limit):
+        """What ``symbols.Writer.put`` codes, in one pass: each value's token (its magnitude
+        below DIRECT, else DIRECT - 5 + its bit length), the tokens' first stage under
+        ``counts``, the second (tokens from ``split`` on, when ``split >= 0``) under
+        ``tail``, then both tables counted; the signs of the non-zero values among the first
+        ``n_signed`` and the mantissas (the bits below the leading one, highest first) go
+        to ``raw`` from ``nraw`` on. Returns (bytes, raw bits) so far, or (-1, 0) for a
+        context or count table out of range, (-2, 0) for a magnitude beyond MAX_BITS bits,
+        (-3, raw bits needed) when ``raw`` is too short; nothing is coded then."""
+        m = values.size
+        rows = counts.shape[0]
+        tok = np.empty(m, np.int64)
+        need = 0
+        n_big = 0
+        for i in range(m):
+            if ctx[i] < 0 or ctx[i] >= rows:
+                return -1, 0
+            v = np.int64(values[i])
+            a = -v if v < 0 else v
+            if a >= (np.int64(1) << MAX_BITS):
+                return -2, 0
+            if a < DIRECT:
+                t = a
+            else:
+                bl = 0
+                x = a
+                while x:
+                    bl += 1
+                    x >>= 1
+                t = DIRECT - 5 + bl
+                need += bl - 1
+            tok[i] = t
+            if i < n_signed and a != 0:
+                need += 1
+            if split >= 0 and t >= split:
+                n_big += 1
+        if nraw + need > raw.size:
+            return -3, nraw + need
+        head, ok = cdf_of(counts)
+        if not ok:
+            return -1, 0
+        hw = head.shape[1] - 1
+        if split >= 0:
+            tails, ok = cdf_of(tail)
+            if not ok or tail.shape[0] != rows:
+                return -1, 0
+        else:
+            tails = head
+        for i in range(m):
+            t = tok[i]
+            if split >= 0 and t > split:
+                t = split
+            if t >= hw:
+                return -1, 0
+        low, rng, cache, pending = st[0], st[1], st[2], st[3]
+        for i in range(m):
+            c = ctx[i]
+            s = tok[i]
+            if split >= 0 and s > split:
+                s = split
+            r = rng // np.uint64(head[c, hw])
+            low += r * np.uint64(head[c, s])
+            rng = r * np.uint64(head[c, s + 1] - head[c, s])
+            while rng < np.uint64(_TOP):
+                rng <<= np.uint64(8)
+                low, cache, pending, n = shift_low(low, cache, pending, out, n)
+        if n_big:
+            tw = tails.shape[1] - 1
+            for i in range(m):
+                if tok[i] >= split:
+                    c = ctx[i]
+                    s = tok[i] - split
+                    r = rng // np.uint64(tails[c, tw])
+                    low += r * np.uint64(tails[c, s])
+                    rng = r * np.uint64(tails[c, s + 1] - tails[c, s])
+                    while rng < np.uint64(_TOP):
+                        rng <<= np.uint64(8)
+                        low, cache, pending, n = shift_low(low, cache, pending, out, n)
+        st[0], st[1], st[2], st[3] = low, rng, cache, pending
+        _count_tokens(counts, tail, split, ctx, tok, inc, limit)
+        for i in range(min(n_signed, m)):
+            if values[i] != 0:
+                raw[nraw] = 1 if values[i] < 0 else 0
+                nraw += 1
+        for i in range(m):
+            if tok[i] >= DIRECT:
+                v = np.int64(values[i])
+                a = -v if v < 0 else v
+                for b in range(tok[i] - (DIRECT - 5) - 2, -1, -1):
+                    raw[nraw] = (a >> b) & 1
+                    nraw += 1
+        return n, nraw
+
+    @nb.njit(cache=True, nogil=True)
+    def _count_tokens(counts, tail, split, ctx, tok, inc, limit):
+        m = tok.size
+        for i in range(m):
+            t = tok[i]
+            if split >= 0 and t >= split:
+                counts[ctx[i], split] += inc
+                tail[ctx[i], t - split] += inc
+            else:
+                counts[ctx[i], t] += inc
+        lo, hi = counts.shape[0], -1
+        for i in range(m):
+            lo, hi = min(lo, ctx[i]), max(hi, ctx[i])
+        _halve(counts, lo, hi, limit)
+        if split >= 0:
+            lo, hi = counts.shape[0], -1
+            for i in range(m):
+                if tok[i] >= split:
+                    lo, hi = min(lo, ctx[i]), max(hi, ctx[i])
+            _halve(tail, lo, hi, limit)
+
+    @nb.njit(cache=True, nogil=True)
+    def _halve(table, lo, hi, limit):
+        width = table.shape[1]
+        for c in range(lo, hi + 1):
+            while True:
+                total = 0
+                for k in range(width):
+                    total += table[c, k]
+                if total <= limit:
+                    break
+                for k in range(width):
+                    table[c, k] = (table[c, k] + 1) // 2
+
+    @nb.njit(cache=True, nogil=True)
+    def get_tokens(st, data, counts, tail, split, ctx, n_signed, raw, pos, inc, limit, out):
+        """Inverse of :func:`put_tokens`: fills ``out`` with the values and returns the raw
+        bits' new position, or -1 for a context or count table out of range, -2 when the
+        raw bits run out."""
+        m = ctx.size
+        rows = counts.shape[0]
+        for i in range(m):
+            if ctx[i] < 0 or ctx[i] >= rows:
+                return -1
+        head, ok = cdf_of(counts)
+        if not ok:
+            return -1
+        hw = head.shape[1] - 1
+        if split >= 0:
+            tails, ok = cdf_of(tail)
+            if not ok or tail.shape[0] != rows:
+                return -1
+        else:
+            tails = head
+        size = data.size
+        code, rng, p = st[0], st[1], st[2]
+        n_big = 0
+        for i in range(m):
+            c = ctx[i]
+            total = np.uint64(head[c, hw])
+            r = rng // total
+            v = code // r
+            if v >= total:  # only a stream no encoder wrote gets here
+                v = total - np.uint64(1)
+            s = 0
+            while s < hw - 1 and np.uint64(head[c, s + 1]) <= v:
+                s += 1
+            out[i] = s
+            if split >= 0 and s == split:
+                n_big += 1
+            lo = np.uint64(head[c, s])
+            code -= r * lo
+            rng = r * (np.uint64(head[c, s + 1]) - lo)
+            while rng < np.uint64(_TOP):
+                rng <<= np.uint64(8)
+                byte = np.uint64(data[p]) if p < size else np.uint64(0)
+                p += np.uint64(1)
+                code = ((code << np.uint64(8)) | byte) & np.uint64(_MASK32)
+        if n_big:
+            tw = tails.shape[1] - 1
+            for i in range(m):
+                if out[i] == split:
+                    c = ctx[i]
+                    total = np.uint64(tails[c, tw])
+                    r = rng // total
+                    v = code // r
+                    if v >= total:
+                        v = total - np.uint64(1)
+                    s = 0
+                    while s < tw - 1 and np.uint64(tails[c, s + 1]) <= v:
+                        s += 1
+                    out[i] += s
+                    lo = np.uint64(tails[c, s])
+                    code -= r * lo
+                    rng = r * (np.uint64(tails[c, s + 1]) - lo)
+                    while rng < np.uint64(_TOP):
+                        rng <<= np.uint64(8)
+                        byte = np.uint64(data[p]) if p < size else np.uint64(0)
+                        p += np.uint64(1)
+                        code = ((code << np.uint64(8)) | byte) & np.uint64(_MASK32)
+        st[0], st[1], st[2] = code, rng, p
+        _count_tokens(counts, tail, split, ctx, out, inc, limit)
+        need = 0
+        for i in range(m):
+            if i < n_signed and out[i] != 0:
+                need += 1
+            if out[i] >= DIRECT:
+                need += out[i] - (DIRECT - 5) - 1
+        if pos + need > raw.size:
+            return -2
+        sp = pos
+        mp = pos
+        for i in range(min(n_signed, m)):
+            if out[i] != 0:
+                mp += 1
+        for i in range(m):
+            t = out[i]
+            if t >= DIRECT:
+                nb_ = t - (DIRECT - 5) - 1
+                a = np.int64(1)
+                for _ in range(nb_):
+                    a = (a << 1) | np.int64(raw[mp])
+                    mp += 1
+                out[i] = a
+            if i < n_signed and t != 0:
+                if raw[sp]:
+                    out[i] = -out[i]
+                sp += 1
+        return mp
+
+    from types import SimpleNamespace
+
+    _kernels = SimpleNamespace(encode=encode, finish=finish, decode=decode, count=count,
+                               put_tokens=put_tokens, get_tokens=get_tokens)
     return _kernels
 
 
@@ -158,6 +407,15 @@ def cumulative(counts: np.ndarray) -> np.ndarray:
     return cdf
 
 
+_NO_TAIL = np.ones((1, 1), np.int64)
+
+
+def _grown(buf: np.ndarray, used: int, size: int) -> np.ndarray:
+    out = np.zeros(max(size, 2 * buf.size), buf.dtype)
+    out[:used] = buf[:used]
+    return out
+
+
 class Encoder:
     """Symbols in, bytes out (:meth:`finish`)."""
 
@@ -165,27 +423,59 @@ class Encoder:
         self._state = np.array([0, _MASK32, 0, 1], np.uint64)
         self._out = np.zeros(1 << 16, np.uint8)
         self._n = 0
+        self._raw = np.zeros(1 << 16, np.uint8)
+        self._nraw = 0
 
     def encode(self, counts: np.ndarray, ctx: np.ndarray, sym: np.ndarray, adapt: tuple | None = None) -> None:
         """Code ``sym[i]`` under the row ``counts[ctx[i]]`` (int64 counts, totals 1..2**16);
         with ``adapt = (increment, limit)``, then count them into ``counts`` (see :func:`count`)."""
-        encode, _, _, count = _compile()
+        k = _compile()
         need = self._n + 3 * sym.size + 16  # a symbol adds at most 17 bits, plus carries
         if need > self._out.size:
-            self._out = np.concatenate([self._out[: self._n], np.zeros(max(need, 2 * self._out.size), np.uint8)])
-        n = encode(self._state, self._out, self._n, cumulative(counts), np.asarray(ctx, np.int64),
-                   np.asarray(sym, np.int64))
+            self._out = _grown(self._out, self._n, need)
+        n = k.encode(self._state, self._out, self._n, cumulative(counts), np.asarray(ctx, np.int64),
+                     np.asarray(sym, np.int64))
         if n < 0:
             raise ValueError("a context lies outside the count table, or a symbol outside its row")
         self._n = n
         if adapt is not None and sym.size:
-            count(counts, np.asarray(ctx, np.int64), np.asarray(sym, np.int64), *adapt)
+            k.count(counts, np.asarray(ctx, np.int64), np.asarray(sym, np.int64), *adapt)
+
+    def tokens(self, counts, tail, split: int | None, ctx, values, n_signed: int | None, adapt: tuple) -> None:
+        """Code ``values`` as ``symbols.Writer.put`` lays them out (:func:`put_tokens`), their
+        raw bits kept for :meth:`raw_bits`; the tables are counted with ``adapt = (increment,
+        limit)``."""
+        k = _compile()
+        values = np.asarray(values).reshape(-1)
+        if values.dtype.kind not in "iu":
+            raise ValueError(f"values must be integers, got {values.dtype}")
+        m = values.size
+        if self._out.size < self._n + 6 * m + 16:  # two symbols a value, each at most 17 bits
+            self._out = _grown(self._out, self._n, self._n + 6 * m + 16)
+        args = (counts, _NO_TAIL if split is None else tail, -1 if split is None else split,
+                np.asarray(ctx).reshape(-1), values, m if n_signed is None else n_signed)
+        if args[3].size != m:
+            raise ValueError(f"{args[3].size} contexts for {m} values")
+        n, nraw = k.put_tokens(self._state, self._out, self._n, *args, self._raw, self._nraw, *adapt)
+        if n == -3:
+            self._raw = _grown(self._raw, self._nraw, max(nraw, 2 * self._raw.size))
+            n, nraw = k.put_tokens(self._state, self._out, self._n, *args, self._raw, self._nraw, *adapt)
+        if n == -2:
+            from .symbols import MAX_BITS
+
+            raise ValueError(f"a value's magnitude exceeds the coder's {MAX_BITS}-bit range")
+        if n < 0:
+            raise ValueError("a context lies outside the count table, or the table is out of range")
+        self._n, self._nraw = n, nraw
+
+    def raw_bits(self) -> np.ndarray:
+        """The signs and mantissa bits of :meth:`tokens`, one bit per byte."""
+        return self._raw[: self._nraw]
 
     def finish(self) -> bytes:
-        _, finish, _, _ = _compile()
         if self._out.size < self._n + 16:
             self._out = np.concatenate([self._out[: self._n], np.zeros(16, np.uint8)])
-        n = finish(self._state, self._out, self._n)
+        n = _compile().finish(self._state, self._out, self._n)
         # The first byte is always the empty cache's zero; it is not stored.
         return self._out[1:n].tobytes()
 
@@ -202,11 +492,27 @@ class Decoder:
     def decode(self, counts: np.ndarray, ctx: np.ndarray, adapt: tuple | None = None) -> np.ndarray:
         """``ctx.size`` symbols, each under its row ``counts[ctx[i]]``; ``adapt`` as in
         :meth:`Encoder.encode`."""
-        _, _, decode, count = _compile()
+        k = _compile()
         ctx = np.asarray(ctx, np.int64)
         out = np.zeros(ctx.size, np.int64)
-        if decode(self._state, self._data, cumulative(counts), ctx, out) < 0:
+        if k.decode(self._state, self._data, cumulative(counts), ctx, out) < 0:
             raise ValueError("a context lies outside the count table")
         if adapt is not None and out.size:
-            count(counts, ctx, out, *adapt)
+            k.count(counts, ctx, out, *adapt)
         return out
+
+    def tokens(self, counts, tail, split: int | None, ctx, n_signed: int | None, raw: np.ndarray, pos: int,
+               adapt: tuple) -> tuple[np.ndarray, int]:
+        """Inverse of :meth:`Encoder.tokens`: ``(values, new position in raw)``, the raw bits
+        (one per byte) read from ``pos``. ValueError when they run out."""
+        k = _compile()
+        ctx = np.asarray(ctx).reshape(-1)
+        out = np.zeros(ctx.size, np.int64)
+        p = k.get_tokens(self._state, self._data, counts, _NO_TAIL if split is None else tail,
+                         -1 if split is None else split, ctx, ctx.size if n_signed is None else n_signed,
+                         raw, pos, *adapt, out)
+        if p == -2:
+            raise ValueError("the stream ran out of raw bits")
+        if p < 0:
+            raise ValueError("a context lies outside the count table, or the table is out of range")
+        return out, int(p)

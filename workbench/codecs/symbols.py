@@ -63,18 +63,15 @@ class Writer:
         ``update(ctx, tokens)`` and, where ``models.split`` is set, ``tail_probabilities(ctx)`` for
         the tokens from ``split`` on, as :class:`workbench.codecs.coefcode._Models`); the first
         ``n_signed`` (all by default) carry a sign, the rest are magnitudes."""
+        if self.int_coder:
+            # One compiled pass: tokens, both stages, the counting models.update would do
+            # (the float rows, which only constriction reads, are left behind) and the raw bits.
+            self.enc.tokens(models.counts, getattr(models, "tail", None), models.split, ctx, values, n_signed,
+                            (INCREMENT, COUNT_LIMIT))
+            return
         mag = np.abs(values)
         tok, nbits = _tokens(mag)
-        if tok.size and self.int_coder:
-            # the coder counts the symbols in as models.update would (its float rows, which
-            # only constriction reads, are left behind)
-            split, adapt = models.split, (INCREMENT, COUNT_LIMIT)
-            self.enc.encode(models.counts, ctx, tok if split is None else np.minimum(tok, split), adapt)
-            if split is not None:
-                big = tok >= split
-                if big.any():
-                    self.enc.encode(models.tail, ctx[big], tok[big] - split, adapt)
-        elif tok.size:
+        if tok.size:
             split = models.split
             head = tok if split is None else np.minimum(tok, split)
             self.enc.encode(head.astype(np.int32), _FAMILY, models.probabilities(ctx))
@@ -112,7 +109,10 @@ class Writer:
         ``int_coder``, 32-bit words without."""
         coded = self.enc.finish() if self.int_coder else self.enc.get_compressed().astype("<u4").tobytes()
         n = len(coded) if self.int_coder else len(coded) // 4
-        bits = np.concatenate(self.raw) if self.raw else np.zeros(0, np.uint8)
+        if self.int_coder:
+            bits = self.enc.raw_bits()
+        else:
+            bits = np.concatenate(self.raw) if self.raw else np.zeros(0, np.uint8)
         return struct.pack("<II", n, bits.size) + coded + np.packbits(bits).tobytes()
 
 
@@ -150,14 +150,13 @@ class Reader:
         if ctx.size == 0:
             self._values(np.zeros(0, np.int64), 0)
             return np.zeros(0, np.int64)
-        if self.int_coder:  # counts the models keep in range: only ctx could be wrong, and it is ours
-            split, adapt = models.split, (INCREMENT, COUNT_LIMIT)
-            tok = self.dec.decode(models.counts, ctx, adapt)
-            if split is not None:
-                big = np.flatnonzero(tok == split)
-                if big.size:
-                    tok[big] += self.dec.decode(models.tail, ctx[big], adapt)
-            return self._values(tok, tok.size if n_signed is None else n_signed)
+        if self.int_coder:
+            try:
+                values, self.pos = self.dec.tokens(models.counts, getattr(models, "tail", None), models.split, ctx,
+                                                   n_signed, self.bits, self.pos, (INCREMENT, COUNT_LIMIT))
+            except ValueError as exc:
+                raise BundleError(f"coefficient stream is not decodable ({exc})") from None
+            return values
         try:
             tok = np.asarray(self.dec.decode(_FAMILY, models.probabilities(ctx)), dtype=np.int64)
             split = models.split
