@@ -9,9 +9,13 @@ are built, and the same integers give the same bytes on every machine.
 Arithmetic: the range coder of G. N. N. Martin, "Range encoding: an algorithm for removing
 redundancy from a digitised message" (1979), in the form with a 32-bit range, byte output,
 renormalisation below 2**24 and carry propagation through a cached byte that LZMA made
-common (the form is from memory). A symbol ``s`` of a row of counts ``c`` with total ``T``
-narrows the range ``R`` to ``floor(R / T) * c[s]`` at ``floor(R / T) * sum(c[:s])``. Totals
-must lie in ``1..2**16`` (the models keep them there), so ``floor(R / T) >= 2**8``.
+common (the form is from memory). At the start of each call every row of counts ``c``
+(total ``T`` in ``1..2**16``, which the models keep) becomes the cumulative frequencies
+``C[k] = floor(2**16 * sum(c[:k]) / T)``: since ``2**16 / T >= 1`` they rise strictly, so
+every symbol keeps a frequency of at least one, and their total is exactly ``2**16``. A
+symbol ``s`` then narrows the range ``R`` to ``(R >> 16) * (C[s+1] - C[s])`` at
+``(R >> 16) * C[s]``: a shift where a general total would need a division (the decoder
+keeps the one division that finds the symbol).
 
 A decoder fed bytes that no encoder wrote decodes some symbols and never reads or writes
 outside its arrays: the byte stream reads as zeros past its end, and the symbol found is
@@ -64,17 +68,43 @@ def _compile():
         return low, cache, pending, n
 
     @nb.njit(cache=True, nogil=True)
-    def encode(st, out, n, cdf, ctx, sym):
-        """Code ``sym[i]`` under the cumulative row ``cdf[ctx[i]]``; returns the new byte
-        count, or -1 for a context or symbol out of range (checked before anything is coded)."""
+    def cdf_of(counts):
+        """Cumulative rows (rows, width + 1) scaled to a total of 2**16, and whether every
+        count is at least 1 and every row's total at most MAX_TOTAL."""
+        rows, width = counts.shape
+        cdf = np.empty((rows, width + 1), np.int64)
+        ok = True
+        for c in range(rows):
+            t = 0
+            cdf[c, 0] = 0
+            for k in range(width):
+                v = counts[c, k]
+                if v < 1:
+                    ok = False
+                t += v
+                cdf[c, k + 1] = t
+            if t > MAX_TOTAL or t < 1:
+                ok = False
+            else:  # scaled to a total of exactly 2**16 (see the module docstring)
+                for k in range(1, width + 1):
+                    cdf[c, k] = (cdf[c, k] << 16) // t
+        return cdf, ok
+
+    @nb.njit(cache=True, nogil=True)
+    def encode(st, out, n, counts, ctx, sym):
+        """Code ``sym[i]`` under the row ``counts[ctx[i]]``; returns the new byte count, or -1
+        for a context, symbol or table out of range (checked before anything is coded)."""
+        cdf, ok = cdf_of(counts)
         rows, width = cdf.shape[0], cdf.shape[1] - 1
+        if not ok:
+            return -1
         for i in range(sym.size):
             if ctx[i] < 0 or ctx[i] >= rows or sym[i] < 0 or sym[i] >= width:
                 return -1
         low, rng, cache, pending = st[0], st[1], st[2], st[3]
         for i in range(sym.size):
             c, s = ctx[i], sym[i]
-            r = rng // np.uint64(cdf[c, width])
+            r = rng >> np.uint64(16)
             low += r * np.uint64(cdf[c, s])
             rng = r * np.uint64(cdf[c, s + 1] - cdf[c, s])
             while rng < np.uint64(_TOP):
@@ -92,10 +122,13 @@ def _compile():
         return n
 
     @nb.njit(cache=True, nogil=True)
-    def decode(st, data, cdf, ctx, sym):
-        """Decode ``sym.size`` symbols under the cumulative rows ``cdf[ctx[i]]``; st: code,
-        range, position. Returns 0, or -1 for a context out of range."""
+    def decode(st, data, counts, ctx, sym):
+        """Decode ``sym.size`` symbols under the rows ``counts[ctx[i]]``; st: code, range,
+        position. Returns 0, or -1 for a context or table out of range."""
+        cdf, ok = cdf_of(counts)
         rows, width = cdf.shape[0], cdf.shape[1] - 1
+        if not ok:
+            return -1
         size = np.uint64(data.size)
         for i in range(ctx.size):
             if ctx[i] < 0 or ctx[i] >= rows:
@@ -103,11 +136,10 @@ def _compile():
         code, rng, pos = st[0], st[1], st[2]
         for i in range(sym.size):
             c = ctx[i]
-            total = np.uint64(cdf[c, width])
-            r = rng // total
+            r = rng >> np.uint64(16)
             v = code // r
-            if v >= total:  # only a stream no encoder wrote gets here
-                v = total - np.uint64(1)
+            if v >= np.uint64(1 << 16):  # only a stream no encoder wrote gets here
+                v = np.uint64((1 << 16) - 1)
             s = 0
             while s < width - 1 and np.uint64(cdf[c, s + 1]) <= v:
                 s += 1
@@ -142,26 +174,6 @@ def _compile():
                     break
                 for k in range(width):
                     counts[c, k] = (counts[c, k] + 1) // 2
-
-    @nb.njit(cache=True, nogil=True)
-    def cdf_of(counts):
-        """Cumulative rows (rows, width + 1), and whether every count is at least 1 and
-        every row's total at most MAX_TOTAL."""
-        rows, width = counts.shape
-        cdf = np.empty((rows, width + 1), np.int64)
-        ok = True
-        for c in range(rows):
-            t = 0
-            cdf[c, 0] = 0
-            for k in range(width):
-                v = counts[c, k]
-                if v < 1:
-                    ok = False
-                t += v
-                cdf[c, k + 1] = t
-            if t > MAX_TOTAL:
-                ok = False
-        return cdf, ok
 
     @nb.njit(cache=True, nogil=True)
     def put_tokens(st, out, n, counts, tail, split, ctx, values, n_signed, raw, nraw, inc, limit):
@@ -224,7 +236,7 @@ def _compile():
             s = tok[i]
             if split >= 0 and s > split:
                 s = split
-            r = rng // np.uint64(head[c, hw])
+            r = rng >> np.uint64(16)
             low += r * np.uint64(head[c, s])
             rng = r * np.uint64(head[c, s + 1] - head[c, s])
             while rng < np.uint64(_TOP):
@@ -236,7 +248,7 @@ def _compile():
                 if tok[i] >= split:
                     c = ctx[i]
                     s = tok[i] - split
-                    r = rng // np.uint64(tails[c, tw])
+                    r = rng >> np.uint64(16)
                     low += r * np.uint64(tails[c, s])
                     rng = r * np.uint64(tails[c, s + 1] - tails[c, s])
                     while rng < np.uint64(_TOP):
@@ -316,11 +328,10 @@ def _compile():
         n_big = 0
         for i in range(m):
             c = ctx[i]
-            total = np.uint64(head[c, hw])
-            r = rng // total
+            r = rng >> np.uint64(16)
             v = code // r
-            if v >= total:  # only a stream no encoder wrote gets here
-                v = total - np.uint64(1)
+            if v >= np.uint64(1 << 16):  # only a stream no encoder wrote gets here
+                v = np.uint64((1 << 16) - 1)
             s = 0
             while s < hw - 1 and np.uint64(head[c, s + 1]) <= v:
                 s += 1
@@ -340,11 +351,10 @@ def _compile():
             for i in range(m):
                 if out[i] == split:
                     c = ctx[i]
-                    total = np.uint64(tails[c, tw])
-                    r = rng // total
+                    r = rng >> np.uint64(16)
                     v = code // r
-                    if v >= total:
-                        v = total - np.uint64(1)
+                    if v >= np.uint64(1 << 16):
+                        v = np.uint64((1 << 16) - 1)
                     s = 0
                     while s < tw - 1 and np.uint64(tails[c, s + 1]) <= v:
                         s += 1
@@ -394,17 +404,11 @@ def _compile():
     return _kernels
 
 
-def cumulative(counts: np.ndarray) -> np.ndarray:
-    """``(rows, width + 1)`` cumulative counts of an int64 count table whose every count is
-    at least 1 and every row's total at most 2**16 (ValueError otherwise)."""
+def _table(counts) -> np.ndarray:
     counts = np.asarray(counts)
     if counts.ndim != 2 or counts.dtype.kind not in "iu" or counts.shape[1] < 1:
         raise ValueError(f"counts must be a 2-D integer table, got {counts.dtype} {counts.shape}")
-    cdf = np.zeros((counts.shape[0], counts.shape[1] + 1), np.int64)
-    np.cumsum(counts, axis=1, out=cdf[:, 1:])
-    if counts.size and (counts.min() < 1 or cdf[:, -1].max() > MAX_TOTAL):
-        raise ValueError("every count must be at least 1 and every row's total at most 65536")
-    return cdf
+    return counts.astype(np.int64, copy=False)
 
 
 _NO_TAIL = np.ones((1, 1), np.int64)
@@ -433,10 +437,11 @@ class Encoder:
         need = self._n + 3 * sym.size + 16  # a symbol adds at most 17 bits, plus carries
         if need > self._out.size:
             self._out = _grown(self._out, self._n, need)
-        n = k.encode(self._state, self._out, self._n, cumulative(counts), np.asarray(ctx, np.int64),
+        n = k.encode(self._state, self._out, self._n, _table(counts), np.asarray(ctx, np.int64),
                      np.asarray(sym, np.int64))
         if n < 0:
-            raise ValueError("a context lies outside the count table, or a symbol outside its row")
+            raise ValueError("a context lies outside the count table, a symbol outside its row, or a count "
+                             "below 1 or a row's total above 65536 in the table")
         self._n = n
         if adapt is not None and sym.size:
             k.count(counts, np.asarray(ctx, np.int64), np.asarray(sym, np.int64), *adapt)
@@ -495,8 +500,8 @@ class Decoder:
         k = _compile()
         ctx = np.asarray(ctx, np.int64)
         out = np.zeros(ctx.size, np.int64)
-        if k.decode(self._state, self._data, cumulative(counts), ctx, out) < 0:
-            raise ValueError("a context lies outside the count table")
+        if k.decode(self._state, self._data, _table(counts), ctx, out) < 0:
+            raise ValueError("a context lies outside the count table, or the table is out of range")
         if adapt is not None and out.size:
             k.count(counts, ctx, out, *adapt)
         return out
