@@ -134,29 +134,52 @@ def deblock(plane: np.ndarray, block: int, step: float) -> np.ndarray:
     ``d = (4 (q0 - p0) + (p1 - q1)) / 8`` clipped to ``EDGE_CHANGE * step`` moves p0 and q0
     towards each other where the edge is a quantiser's step and not the image's: the low-pass
     edge filter of H.264's deblocking, from memory, with thresholds in units of the step
-    instead of its tables. The pixels either side of the edges are strided views of the
-    plane seen as blocks, so nothing is gathered (gathering columns cost 4 MP 0.1 s).
+    instead of its tables.
     """
     if plane.ndim not in (2, 3) or plane.shape[-1] % block or plane.shape[-2] % block:
         raise ValueError(f"deblock needs an (H, W) plane or (N, H, W) stack of whole {block}-pixel blocks, "
                          f"got shape {plane.shape}")
     limit, jump, flat = (np.float32(c * step) for c in (EDGE_CHANGE, EDGE_JUMP, EDGE_FLAT))
-    h, w = plane.shape[-2:]
-    lead = plane.shape[:-2]
-    # (..., blocks, pixel in block, [rest]): column blocks, then row blocks
-    for v in (np.moveaxis(plane.reshape(*lead, h, w // block, block), -3, -1),
-              plane.reshape(*lead, h // block, block, w)):
-        p1, p0 = v[..., :-1, block - 2, :], v[..., :-1, block - 1, :]
-        q0, q1 = v[..., 1:, 0, :], v[..., 1:, 1, :]
-        if p0.size == 0:
-            continue
-        step_across = q0 - p0
-        d = np.clip((4 * step_across + (p1 - q1)) * np.float32(0.125), -limit, limit)
-        d *= (np.abs(step_across) < jump) & (np.abs(p1 - p0) < flat) & (np.abs(q1 - q0) < flat)
-        new_p0 = p0 + d
-        v[..., 1:, 0, :] = q0 - d
-        v[..., :-1, block - 1, :] = new_p0
+    _deblock_kernel()(plane if plane.ndim == 3 else plane[None], block, limit, jump, flat)
     return plane
+
+
+_DEBLOCK = None
+
+
+def _deblock_kernel():
+    """:func:`deblock`'s loops, compiled (numba, cached beside this module): edge by edge,
+    vertical edges first, with the same float operations in the same order as the array
+    version it replaced, so the same pixels (4-MP plane: 19 -> 4 ms)."""
+    global _DEBLOCK
+    if _DEBLOCK is not None:
+        return _DEBLOCK
+    import numba as nb
+
+    @nb.njit(cache=True, nogil=True, inline="always")
+    def edge(p1, p0, q0, q1, limit, jump, flat):
+        across = q0 - p0
+        d = (np.float32(4.0) * across + (p1 - q1)) * np.float32(0.125)
+        d = min(max(d, -limit), limit)
+        if abs(across) < jump and abs(p1 - p0) < flat and abs(q1 - q0) < flat:
+            return p0 + d, q0 - d
+        return p0, q0
+
+    @nb.njit(cache=True, nogil=True)
+    def kernel(planes, block, limit, jump, flat):
+        n, h, w = planes.shape
+        for i in range(n):
+            for y in range(h):
+                for x in range(block, w, block):
+                    planes[i, y, x - 1], planes[i, y, x] = edge(planes[i, y, x - 2], planes[i, y, x - 1],
+                                                                planes[i, y, x], planes[i, y, x + 1], limit, jump, flat)
+            for y in range(block, h, block):
+                for x in range(w):
+                    planes[i, y - 1, x], planes[i, y, x] = edge(planes[i, y - 2, x], planes[i, y - 1, x],
+                                                                planes[i, y, x], planes[i, y + 1, x], limit, jump, flat)
+
+    _DEBLOCK = kernel
+    return _DEBLOCK
 
 
 EDGE_SAMPLE = 16  # the encoder judges the filter on two adjacent patch rows in this many
