@@ -307,7 +307,8 @@ def _compile():
     def get_tokens(st, data, counts, tail, split, ctx, n_signed, raw, pos, inc, limit, out):
         """Inverse of :func:`put_tokens`: fills ``out`` with the values and returns the raw
         bits' new position, or -1 for a context or count table out of range, -2 when the
-        raw bits run out."""
+        raw bits run out. The tables are counted as the symbols come (decoding reads the
+        cumulative copies made at the start, so that changes nothing within the call)."""
         m = ctx.size
         rows = counts.shape[0]
         for i in range(m):
@@ -326,6 +327,8 @@ def _compile():
         size = data.size
         code, rng, p = st[0], st[1], st[2]
         n_big = 0
+        n_signs = 0
+        lo, hi = rows, -1
         for i in range(m):
             c = ctx[i]
             r = rng >> np.uint64(16)
@@ -336,18 +339,24 @@ def _compile():
             while s < hw - 1 and np.uint64(head[c, s + 1]) <= v:
                 s += 1
             out[i] = s
+            counts[c, s] += inc
+            lo, hi = min(lo, c), max(hi, c)
             if split >= 0 and s == split:
                 n_big += 1
-            lo = np.uint64(head[c, s])
-            code -= r * lo
-            rng = r * (np.uint64(head[c, s + 1]) - lo)
+            if i < n_signed and s != 0:
+                n_signs += 1
+            low = np.uint64(head[c, s])
+            code -= r * low
+            rng = r * (np.uint64(head[c, s + 1]) - low)
             while rng < np.uint64(_TOP):
                 rng <<= np.uint64(8)
                 byte = np.uint64(data[p]) if p < size else np.uint64(0)
                 p += np.uint64(1)
                 code = ((code << np.uint64(8)) | byte) & np.uint64(_MASK32)
+        _halve(counts, lo, hi, limit)
         if n_big:
             tw = tails.shape[1] - 1
+            lo, hi = rows, -1
             for i in range(m):
                 if out[i] == split:
                     c = ctx[i]
@@ -359,33 +368,28 @@ def _compile():
                     while s < tw - 1 and np.uint64(tails[c, s + 1]) <= v:
                         s += 1
                     out[i] += s
-                    lo = np.uint64(tails[c, s])
-                    code -= r * lo
-                    rng = r * (np.uint64(tails[c, s + 1]) - lo)
+                    tail[c, s] += inc
+                    lo, hi = min(lo, c), max(hi, c)
+                    low = np.uint64(tails[c, s])
+                    code -= r * low
+                    rng = r * (np.uint64(tails[c, s + 1]) - low)
                     while rng < np.uint64(_TOP):
                         rng <<= np.uint64(8)
                         byte = np.uint64(data[p]) if p < size else np.uint64(0)
                         p += np.uint64(1)
                         code = ((code << np.uint64(8)) | byte) & np.uint64(_MASK32)
+            _halve(tail, lo, hi, limit)
         st[0], st[1], st[2] = code, rng, p
-        _count_tokens(counts, tail, split, ctx, out, inc, limit)
-        need = 0
-        for i in range(m):
-            if i < n_signed and out[i] != 0:
-                need += 1
-            if out[i] >= DIRECT:
-                need += out[i] - (DIRECT - 5) - 1
-        if pos + need > raw.size:
+        # signs first, then mantissas (put_tokens' order); raw bits checked as they are read
+        sp, mp, end = pos, pos + n_signs, raw.size
+        if mp > end:
             return -2
-        sp = pos
-        mp = pos
-        for i in range(min(n_signed, m)):
-            if out[i] != 0:
-                mp += 1
         for i in range(m):
             t = out[i]
             if t >= DIRECT:
                 nb_ = t - (DIRECT - 5) - 1
+                if mp + nb_ > end:
+                    return -2
                 a = np.int64(1)
                 for _ in range(nb_):
                     a = (a << 1) | np.int64(raw[mp])
