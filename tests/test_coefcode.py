@@ -58,3 +58,29 @@ def test_truncated_stream_raises_bundle_error():
     data = coefcode.encode_grids([q], [0])
     with pytest.raises(BundleError):
         coefcode.decode_grids(data[: len(data) // 2], [q.shape], [0])
+
+
+def test_streams_coded_before_version_7_with_constriction_still_decode(monkeypatch):
+    # A bundle of version 6 and before: KLT payload without the INT_TOKENS flag, its tokens
+    # through constriction's range coder. scikit-image's astronaut at three steps.
+    from skimage import data
+
+    from workbench import pipeline
+    from workbench.codecs import klt
+    from workbench.formats.imagefiles import SourceImage
+    from workbench.settings import Settings
+
+    img = SourceImage("astronaut", data.astronaut()[:128, :160])
+    for step in (3.0, 12.0, 40.0):
+        s = Settings(step=step)
+        planes = pipeline.image_planes(img, s.chroma)
+        with monkeypatch.context() as m:
+            m.setattr(coefcode, "INT_CODER", False)
+            coded = klt.CODEC.quantise(klt.CODEC.analyse(planes, s, None), step=step, count=None)
+            old = klt.CODEC.serialise(coded)
+        assert not old[6] & klt.INT_TOKENS
+        new = klt.CODEC.serialise(coded)
+        assert new[6] & klt.INT_TOKENS and new != old
+        for payload in (old, new):
+            got = klt.CODEC.decode(payload, [p.shape for p in planes], s)
+            assert all(np.array_equal(g, w) for g, w in zip(got, coded.planes))

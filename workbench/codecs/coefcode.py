@@ -1,7 +1,7 @@
 """Context-adaptive entropy coding of quantised coefficient grids.
 
 A grid is an int64 array (rows, cols, K): K coefficients for each patch. Coding is done by
-a range coder (:mod:`workbench.codecs.rangecoder`; constriction's in older files) with
+an entropy coder (:mod:`workbench.codecs.ans`; constriction's range coder in older files) with
 categorical models whose counts adapt as coding proceeds,
 identically in the encoder and the decoder (no probability tables are transmitted).
 The grids of one image (Y, Cb, Cr) are coded in lockstep so that one call to the coder
@@ -58,7 +58,7 @@ FAMILIES = (("dc", N_DC_CLASSES), ("ext", N_EXT_CLASSES), ("low", N_GROUPS * N_A
 # starting point near that saves each fresh context from learning it symbol by symbol.
 PRIOR = np.array([64, 32, 16, 8, 4, 2])
 SPLIT = 8  # tokens from here on are coded in a second stage (see _Models)
-INT_CODER = True  # what this version writes: tokens through rangecoder (False: constriction's)
+INT_CODER = True  # what this version writes: tokens through ans.py (False: constriction's range coder)
 _AC_CLASS = np.searchsorted(AC_EDGES, np.arange(AC_EDGES[-1] + 1), side="right").astype(np.int32)
 
 
@@ -384,7 +384,7 @@ def encode_grids(grids: list[np.ndarray], kinds: list[int], split: int | None = 
         Tokens from here on are coded in a second stage (:class:`_Models`); None for the
         one-stage streams of older files.
     int_coder : bool or None
-        Tokens through :mod:`workbench.codecs.rangecoder`, or through constriction's range
+        Tokens through :mod:`workbench.codecs.ans`, or through constriction's range
         coder (older files); None: :data:`INT_CODER`, what this version writes.
 
     Returns

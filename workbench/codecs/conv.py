@@ -69,7 +69,7 @@ TOKEN_SPLIT = coefcode.SPLIT  # what this version writes
 STEP_INDEX_RANGE = (-64, 64)
 RESIDUAL = 0x80  # coder-byte flag: a residual layer follows the latents
 BF16 = 0x40  # coder-byte flag: the encoder's synthesis ran its GDN path in bfloat16 (conv_model.bf16_fast)
-INT_TOKENS = 0x20  # coder-byte flag: an adaptive coder's tokens went through rangecoder.py (else constriction's)
+INT_TOKENS = 0x20  # coder-byte flag: an adaptive coder's tokens went through ans.py (else constriction's)
 # Below this step the latents stop getting finer and the residual layer takes over. On the
 # four held-out photographs (astronaut, coffee, chelsea, rocket) with the second shipped
 # model, the latents alone cost more than a DCT-coded residual above about 36 dB. Mean

@@ -205,7 +205,7 @@ def encode_latents(values: np.ndarray, table: np.ndarray, tables: np.ndarray, in
     """Signed latent residuals ``values`` (C, h, w) (the latents less their whole-step mean
     offsets) under adaptive models seeded by ``tables[table]``; one coder call per latent
     row, so each row is coded with what the rows above taught the models. ``int_coder``:
-    tokens through :mod:`workbench.codecs.rangecoder` or constriction's coder (None: what
+    tokens through :mod:`workbench.codecs.ans` or constriction's range coder (None: what
     this version writes, ``coefcode.INT_CODER``)."""
     from .symbols import Writer, check_magnitudes
 

@@ -11,7 +11,7 @@ by this version; files without it decode as before), bit 2 the decoder smooths t
 edges of plane 0 (:func:`deblock`), bits 3 and 4 those of planes 1 and 2: the encoder sets
 a plane's bit where the filter brings that plane closer to the source (never for the conv
 codec's residual layer); files without them decode as before; bit 5 the tokens went
-through :mod:`workbench.codecs.rangecoder` (always set by this version; without it,
+through :mod:`workbench.codecs.ans` (always set by this version; without it,
 through constriction's range coder).
 
 ``kept`` is the number of leading components that carry any non-zero coefficient in this
@@ -36,7 +36,7 @@ from .base import CodecBase
 _HEAD = struct.Struct("<fHB")
 TWO_STAGE = 2  # payload flag: tokens in two stages
 DEBLOCKED = 4  # payload flag: plane 0's block edges smoothed after synthesis (plane i: 4 << i)
-INT_TOKENS = 32  # payload flag: tokens through workbench's own range coder (rangecoder.py)
+INT_TOKENS = 32  # payload flag: tokens through workbench's own coder over integer counts (ans.py)
 TOKEN_SPLIT = coefcode.SPLIT  # what this version writes (None: one stage, as format 4 and before)
 MAX_STEP = 1e5
 

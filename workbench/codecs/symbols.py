@@ -1,12 +1,14 @@
 """The symbol stream under every coefficient and latent coder: magnitude tokens, raw sign
-and mantissa bits, and constriction's range coder.
+and mantissa bits, and the entropy coder under the tokens.
 
 A value ``q`` is coded as the token ``t = |q|`` for ``|q| < DIRECT``; above that ``t = DIRECT
 - 5 + bitlength(|q|)`` followed by ``bitlength - 1`` raw mantissa bits (the leading one is
-implied); signs are raw bits. Tokens go through the range coder under the probabilities the
-caller gives (adaptive context models in :mod:`coefcode`, or a model file's fixed tables);
-the raw bits follow the range coder's words. A stream is ``u32 words | u32 raw bits |
-words | packed bits``.
+implied); signs are raw bits. Tokens of the adaptive context models (:mod:`coefcode`, the
+hyperprior's latent coder) go through :mod:`workbench.codecs.ans`, which reads the models'
+integer counts; tokens under a model file's fixed tables, and every token of streams made
+before bundle version 7, go through constriction's range coder under the probabilities the
+caller gives. The raw bits follow the coded bytes. A stream is ``u32 n | u32 raw bits |
+coded | packed bits``, n counting bytes (ans) or 32-bit words (constriction).
 """
 
 from __future__ import annotations
@@ -14,11 +16,10 @@ from __future__ import annotations
 import struct
 
 import constriction
-
-from . import rangecoder
 import numpy as np
 
 from ..errors import BundleError
+from . import ans
 
 DIRECT = 16
 MAX_BITS = 26
@@ -49,13 +50,13 @@ def _tokens(mag: np.ndarray):
 
 
 class Writer:
-    """Tokens through a range coder, signs and mantissa bits raw. With ``int_coder`` the
-    adaptive tokens go through :mod:`workbench.codecs.rangecoder` (reading the models'
-    integer counts); otherwise through constriction's (older streams, and fixed tables)."""
+    """Tokens through an entropy coder, signs and mantissa bits raw. With ``int_coder`` the
+    adaptive tokens go through :mod:`workbench.codecs.ans` (reading the models' integer
+    counts); otherwise through constriction's range coder (older streams, fixed tables)."""
 
     def __init__(self, int_coder: bool = False):
         self.int_coder = int_coder
-        self.enc = rangecoder.Encoder() if int_coder else constriction.stream.queue.RangeEncoder()
+        self.enc = ans.Encoder() if int_coder else constriction.stream.queue.RangeEncoder()
         self.raw: list[np.ndarray] = []
 
     def put(self, models, ctx: np.ndarray, values: np.ndarray, n_signed: int | None = None) -> None:
@@ -67,7 +68,7 @@ class Writer:
             # One compiled pass: tokens, both stages, the counting models.update would do
             # (the float rows, which only constriction reads, are left behind) and the raw bits.
             self.enc.tokens(models.counts, getattr(models, "tail", None), models.split, ctx, values, n_signed,
-                            (INCREMENT, COUNT_LIMIT))
+                            (INCREMENT, COUNT_LIMIT), (DIRECT, MAX_BITS))
             return
         mag = np.abs(values)
         tok, nbits = _tokens(mag)
@@ -130,7 +131,7 @@ class Reader:
         self.pos = 0
         self.int_coder = int_coder
         if int_coder:
-            self.dec = rangecoder.Decoder(data[8:end])
+            self.dec = ans.Decoder(data[8:end])
             return
         words = np.frombuffer(data[8:end], dtype="<u4").astype(np.uint32)
         try:
@@ -153,7 +154,7 @@ class Reader:
         if self.int_coder:
             try:
                 values, self.pos = self.dec.tokens(models.counts, getattr(models, "tail", None), models.split, ctx,
-                                                   n_signed, self.bits, self.pos, (INCREMENT, COUNT_LIMIT))
+                                                   n_signed, self.bits, self.pos, (INCREMENT, COUNT_LIMIT), DIRECT)
             except ValueError as exc:
                 raise BundleError(f"coefficient stream is not decodable ({exc})") from None
             return values

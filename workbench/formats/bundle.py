@@ -29,7 +29,7 @@ MAGIC = b"WKBUNDLE"
 VERSION = 7  # 2: coefficient streams coded in lockstep (coefcode); 3: first pass as a row hierarchy; 4: chunk tags;
 # 5: tokens in two stages (each payload says which way it was coded, so 3 and 4 still decode);
 # 6: the conv payload's bfloat16 bit (conv.BF16); 7: adaptive tokens through workbench's own
-# range coder (rangecoder.py; the payloads' INT_TOKENS bits say so)
+# coder over integer counts (codecs/ans.py; the payloads' INT_TOKENS bits say so)
 # (image payload, alpha) chunk tags by version
 TAGS = {3: (b"IMGD", b"ALFA"), 4: (b"CODE", b"OPAQ"), 5: (b"CODE", b"OPAQ"), 6: (b"CODE", b"OPAQ"),
         7: (b"CODE", b"OPAQ")}
