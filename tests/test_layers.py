@@ -107,7 +107,7 @@ LAYERS = [  # lowest first; the same table as DEVELOPERS.md's architecture scree
     {"settings", "codecs", "errors", "color", "display", "notices", "version", "runtime"},
     {"formats"},
     {"codecs.base", "codecs.klt", "codecs.conv", "codecs.klt_basis", "codecs.tiling", "codecs.coefcode",
-     "codecs.symbols", "codecs.ans", "codecs.conv_model", "codecs.hyperprior"},
+     "codecs.symbols", "codecs.ans", "codecs.compiled", "codecs.conv_model", "codecs.hyperprior"},
     {"quality"},
     {"pipeline", "ratecontrol", "blockchoice", "preview", "sheet", "sheetpdf", "archive", "training", "session",
      "jobs", "demo", "models.make_default"},

@@ -140,46 +140,10 @@ def deblock(plane: np.ndarray, block: int, step: float) -> np.ndarray:
         raise ValueError(f"deblock needs an (H, W) plane or (N, H, W) stack of whole {block}-pixel blocks, "
                          f"got shape {plane.shape}")
     limit, jump, flat = (np.float32(c * step) for c in (EDGE_CHANGE, EDGE_JUMP, EDGE_FLAT))
-    _deblock_kernel()(plane if plane.ndim == 3 else plane[None], block, limit, jump, flat)
+    from . import compiled
+
+    compiled.deblock(plane if plane.ndim == 3 else plane[None], block, limit, jump, flat)
     return plane
-
-
-_DEBLOCK = None
-
-
-def _deblock_kernel():
-    """:func:`deblock`'s loops, compiled (numba, cached beside this module): edge by edge,
-    vertical edges first, with the same float operations in the same order as the array
-    version it replaced, so the same pixels (4-MP plane: 19 -> 4 ms)."""
-    global _DEBLOCK
-    if _DEBLOCK is not None:
-        return _DEBLOCK
-    import numba as nb
-
-    @nb.njit(cache=True, nogil=True, inline="always")
-    def edge(p1, p0, q0, q1, limit, jump, flat):
-        across = q0 - p0
-        d = (np.float32(4.0) * across + (p1 - q1)) * np.float32(0.125)
-        d = min(max(d, -limit), limit)
-        if abs(across) < jump and abs(p1 - p0) < flat and abs(q1 - q0) < flat:
-            return p0 + d, q0 - d
-        return p0, q0
-
-    @nb.njit(cache=True, nogil=True)
-    def kernel(planes, block, limit, jump, flat):
-        n, h, w = planes.shape
-        for i in range(n):
-            for y in range(h):
-                for x in range(block, w, block):
-                    planes[i, y, x - 1], planes[i, y, x] = edge(planes[i, y, x - 2], planes[i, y, x - 1],
-                                                                planes[i, y, x], planes[i, y, x + 1], limit, jump, flat)
-            for y in range(block, h, block):
-                for x in range(w):
-                    planes[i, y - 1, x], planes[i, y, x] = edge(planes[i, y - 2, x], planes[i, y - 1, x],
-                                                                planes[i, y, x], planes[i, y + 1, x], limit, jump, flat)
-
-    _DEBLOCK = kernel
-    return _DEBLOCK
 
 
 EDGE_SAMPLE = 16  # the encoder judges the filter on two adjacent patch rows in this many
@@ -340,13 +304,14 @@ def rdo_levels(x: np.ndarray, q: np.ndarray, lam: float = RDOQ_LAMBDA) -> np.nda
     error that adds is worth less than its bits and those of the zeros coded before it (the
     extent shrinks to the previous non-zero). Component 0 is left alone (the planar
     predictor codes it). The rate table comes from the non-zero levels; the choices are made
-    patch by patch in compiled code (:func:`_rdo_kernel`). Returns ``q`` changed in place (a
+    patch by patch in compiled code (:mod:`workbench.codecs.compiled`). Returns ``q`` changed in place (a
     contiguous copy of it if it was not contiguous).
     """
     k, n = q.shape
     q = np.ascontiguousarray(q)
-    histogram, choose = _rdo_kernels()
-    hist = histogram(q, _RDOQ_MAGS)  # of components 1..K-1 (component 0 is left alone)
+    from . import compiled
+
+    hist = compiled.rdo_histogram(q, _RDOQ_MAGS)  # of components 1..K-1 (component 0 is left alone)
     if not hist[:, 1:].any():
         return q
     hist[:, 0] = n - hist[:, 1:].sum(axis=1)
@@ -355,76 +320,8 @@ def rdo_levels(x: np.ndarray, q: np.ndarray, lam: float = RDOQ_LAMBDA) -> np.nda
     bits[:, 1:] += 1.0  # the sign
     table = (lam * bits).astype(np.float32).reshape(-1)
     zero_run = np.concatenate([[0.0], np.cumsum(bits[:, 0])])  # zero_run[j]: bits of zeros in 0..j-1
-    choose(q, np.ascontiguousarray(x.reshape(k, n)), table, bits, zero_run, float(lam), _RDOQ_MAGS)
+    compiled.rdo_choose(q, np.ascontiguousarray(x.reshape(k, n)), table, bits, zero_run, float(lam), _RDOQ_MAGS)
     return q
-
-
-_RDO = None
-
-
-def _rdo_kernels():
-    """The counting and choosing of :func:`rdo_levels`, compiled (numba, cached beside this
-    module): the same float32 and float64 operations in the same order as the array version
-    they replaced, so the same levels (64 x 65,536 coefficients at step 5: 76 -> 14 ms)."""
-    global _RDO
-    if _RDO is not None:
-        return _RDO
-    import numba as nb
-
-    @nb.njit(cache=True, nogil=True)
-    def histogram(q, mags):
-        """(K, mags) float64 counts of the non-zero magnitudes (capped) of components 1..K-1."""
-        kk, n = q.shape
-        hist = np.zeros((kk, mags), np.float64)
-        for k in range(1, kk):
-            for j in range(n):
-                v = q[k, j]
-                if v != 0:
-                    hist[k, min(abs(v), mags - 1)] += 1.0
-        return hist
-
-    @nb.njit(cache=True, nogil=True)
-    def choose(q, x, table, bits, zero_run, lam, mags):
-        kk, n = q.shape
-        one = np.float32(1.0)
-        for k in range(1, kk):  # row by row: the arrays are component-major
-            for j in range(n):
-                v = q[k, j]
-                if v == 0:
-                    continue
-                m = abs(v)
-                a = np.float32(abs(x[k, j]))
-                d = a - np.float32(m)
-                cell = k * mags + min(m, mags - 1)
-                keep = d * d + table[cell]
-                d1 = d + one
-                drop = d1 * d1 + table[cell - 1 if m < mags else cell]
-                if drop < keep:
-                    m -= 1
-                q[k, j] = -m if v < 0 else m
-        last = np.zeros(n, np.int64)
-        prev = np.zeros(n, np.int64)
-        for _ in range(2):  # each patch's last non-zero level, twice
-            last[:] = 0
-            prev[:] = 0
-            for k in range(1, kk):
-                for j in range(n):
-                    if q[k, j] != 0:
-                        prev[j] = last[j]
-                        last[j] = k
-            for j in range(n):
-                lk, pk = last[j], prev[j]
-                if lk == 0:
-                    continue
-                lm = abs(q[lk, j])
-                la = abs(x[lk, j])
-                saved = bits[lk, min(lm, mags - 1)] - bits[lk, 0] + zero_run[lk] - zero_run[pk + 1]
-                e = np.float64(la) - np.float64(lm)
-                if np.float64(la * la) - e * e < lam * saved:
-                    q[lk, j] = 0
-
-    _RDO = histogram, choose
-    return _RDO
 
 
 def deadzone_quantise(c: np.ndarray, step: float, offset: float) -> np.ndarray:
