@@ -37,7 +37,8 @@ SWEEP_POINTS = 4  # Bjøntegaard's method fits a cubic through four points per c
 WORKERS = 2
 CURVE_WEIGHT = 12.0  # one image's curves cost about twelve of its encodes (ours and the baselines')
 TARGET_WEIGHT = 2.0
-LIBRARIES = ("numpy", "scipy", "Pillow", "scikit-image", "opencv-python-headless", "constriction", "matplotlib")
+LIBRARIES = ("numpy", "scipy", "Pillow", "scikit-image", "opencv-python-headless", "constriction", "numba",
+             "matplotlib")
 
 
 @dataclass

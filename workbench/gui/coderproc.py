@@ -1,8 +1,8 @@
 """Entropy coding in a helper process, for interactive read-outs.
 
-The adaptive coder is Python driving constriction and holds the GIL most of the time; in
-the app's process it would slow the synthesis, SSIM and the GUI thread running beside
-it. A :class:`CoderProcess` runs it in a child process instead. The coefficient arrays
+The adaptive coder's context modelling is numpy driven from Python and holds the GIL most
+of the time (only its compiled token pass releases it); in the app's process it would slow
+the synthesis, SSIM and the GUI thread running beside it. A :class:`CoderProcess` runs it in a child process instead. The coefficient arrays
 travel through one shared-memory block (a copy, no pickling); only their layout and the
 resulting size go through the pipe.
 """

@@ -436,7 +436,7 @@ class MainWindow(PreviewFlow, JobActions, QMainWindow):
 
     def about_text(self) -> str:
         libs = []
-        for name in ("numpy", "scipy", "Pillow", "scikit-image", "opencv-python-headless", "constriction",
+        for name in ("numpy", "scipy", "Pillow", "scikit-image", "opencv-python-headless", "constriction", "numba",
                      "matplotlib", "PySide6-Essentials", "torch"):
             try:
                 libs.append(f"{name} {md.version(name)}")
