@@ -264,12 +264,24 @@ def _tail_positions(ext: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return idx, k
 
 
+def _class_table(edges: np.ndarray) -> np.ndarray:
+    return np.searchsorted(edges, np.arange(edges[-1] + 1), side="right").astype(np.int64)
+
+
+_TAIL_TABLES = tuple(_class_table(e) for e in (K_EDGES, TAIL_OWN_EDGES, TAIL_GAP_EDGES))
+
+
 def _tail_context(own: np.ndarray, ext: np.ndarray, idx: np.ndarray, k: np.ndarray) -> np.ndarray:
     """Context of the tail coefficients at (``idx``, ``k``) from the patch's own activity at
-    components LOW-1 and LOW (``own``) and the distance to its extent."""
-    own_cls = _own_class(own.reshape(-1).take(idx))
-    gap_cls = _gap_class(ext.reshape(-1).take(idx) - k)
-    return (_k_group(k) * N_OWN + own_cls) * N_GAP + gap_cls
+    components LOW-1 and LOW (``own``) and the distance to its extent:
+    ``(group(k) * N_OWN + own class) * N_GAP + gap class``, each class by table lookup
+    (compiled: the array version's five passes cost 20 ms at 4 MP and 2 bpp)."""
+    from . import compiled
+
+    out = np.empty(idx.size, np.int64)
+    compiled.tail_context(np.ascontiguousarray(own).reshape(-1), np.ascontiguousarray(ext).reshape(-1), idx, k,
+                          *_TAIL_TABLES, N_OWN, N_GAP, out)
+    return out
 
 
 class _Grid:
@@ -360,8 +372,10 @@ def _traverse(grids: list[_Grid], models: _Models, io) -> None:
             for (g, r0, r1, k, a), vk in zip(low, parts):
                 g.q[k, r0:r1][a] = vk
                 np.abs(g.q[k, r0:r1], out=g.mag[k, r0:r1])  # inactive patches hold zeros
+            from . import compiled
+
             for (g, r0, r1, idx, kk), vt in zip(tail, parts[len(low):]):
-                g.q[:, r0:r1].reshape(g.K, -1)[kk, idx] = vt
+                compiled.scatter(g.q[:, r0:r1].reshape(g.K, -1), kk, idx, vt)  # a view: filled in place
 
 
 def _check_kinds(shapes, kinds):

@@ -335,6 +335,28 @@ def get_tokens(st, data, counts, tail, split, ctx, n_signed, raw, pos, inc, limi
     return mp
 
 
+# ------------------------------------------------------------------ context models (coefcode.py)
+
+@_jit
+def tail_context(own, ext, idx, k, k_table, own_table, gap_table, n_own, n_gap, out):
+    """``coefcode._tail_context``: each class a lookup in its table, values past the table's
+    end in its last class."""
+    kt, ot, gt = k_table.size - 1, own_table.size - 1, gap_table.size - 1
+    for i in range(idx.size):
+        j = idx[i]
+        kk = k[i]
+        o = own[j]
+        g = ext[j] - kk
+        out[i] = ((k_table[min(kk, kt)] * n_own + own_table[min(o, ot)]) * n_gap + gap_table[min(g, gt)])
+
+
+@_jit
+def scatter(grid, rows, cols, values):
+    """``grid[rows, cols] = values`` (the indices are the coder's own, in range)."""
+    for i in range(values.size):
+        grid[rows[i], cols[i]] = values[i]
+
+
 # ------------------------------------------------------------------ block KLT (klt.py)
 
 @_jit
