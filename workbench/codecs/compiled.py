@@ -1,6 +1,7 @@
-"""The compiled loops (numba) of the entropy coder (:mod:`workbench.codecs.ans`) and of the
-block KLT (:mod:`workbench.codecs.klt`): loops over every symbol or pixel that numpy can only
-express in many passes over whole arrays.
+"""The compiled loops (numba) of the entropy coder (:mod:`workbench.codecs.ans`), the context
+models (:mod:`workbench.codecs.coefcode`) and the block KLT (:mod:`workbench.codecs.klt`):
+loops over every symbol or pixel that numpy can only express in many passes over whole
+arrays.
 
 Imported on first use only (numba's import and its cache cost about 0.3 s). Every function
 is defined at module level, so that numba's on-disk cache (beside this file, or numba's
