@@ -1,4 +1,5 @@
-"""Entropy coding of the adaptive models' tokens with rANS over integer counts (numba).
+"""Entropy coding of the adaptive models' tokens with rANS over integer counts (the loops
+compiled by numba in :mod:`workbench.codecs.compiled`).
 
 The adaptive coders (:mod:`workbench.codecs.coefcode`, the hyperprior's latent coder) hand
 over one call's symbols at a time with each symbol's context and the count table it is
@@ -17,8 +18,8 @@ a symbol costs a mask, a search of its row and a multiply; rANS codes last-in fi
 the encoder records each symbol's interval and codes them all backwards at :meth:`finish`.
 
 A decoder fed bytes that no encoder wrote decodes some symbols and never reads or writes
-outside its arrays: bytes past the end read as zeros, the symbol found is always one of
-its row's, and the state grows by at most 2**16 a symbol.
+outside its arrays: where the bytes run out the state is set to its lower bound, the
+symbol found is always one of its row's, and the state grows by at most 2**16 a symbol.
 
 Measured on this 2-core machine (2026-12-04), the tokens of a 4-MP KLT decode at 2 bpp
 (3.0 M tokens): constriction's range coder with a probability row per symbol 84 ms, plus
@@ -32,6 +33,7 @@ from __future__ import annotations
 import numpy as np
 
 MAX_TOTAL = 1 << 16  # the largest total a row of counts may have (compiled.MAX_TOTAL)
+
 
 def _compile():
     """The compiled kernels (:mod:`workbench.codecs.compiled`), imported on first use."""
