@@ -53,7 +53,7 @@ def _table(counts) -> np.ndarray:
 
 
 def _grown(buf: np.ndarray, used: int, size: int) -> np.ndarray:
-    out = np.zeros(max(size, 2 * buf.size), buf.dtype)
+    out = np.empty(max(size, 2 * buf.size), buf.dtype)  # every element past ``used`` is written before read
     out[:used] = buf[:used]
     return out
 
@@ -61,9 +61,10 @@ def _grown(buf: np.ndarray, used: int, size: int) -> np.ndarray:
 class Encoder:
     """Symbols in (:meth:`encode`, :meth:`tokens`), bytes out (:meth:`finish`)."""
 
-    def __init__(self):
-        self._start = np.zeros(1 << 12, np.uint32)
-        self._freq = np.zeros(1 << 12, np.uint32)
+    def __init__(self, reserve: int = 0):
+        """``reserve``: the symbols expected, to allocate once (more are still taken)."""
+        self._start = np.empty(max(1 << 12, reserve), np.uint32)
+        self._freq = np.empty(max(1 << 12, reserve), np.uint32)
         self._k = 0
         self._raw = np.zeros(1 << 12, np.uint8)
         self._nraw = 0
@@ -118,7 +119,7 @@ class Encoder:
         return self._raw[: self._nraw]
 
     def finish(self) -> bytes:
-        out = np.zeros(2 * self._k + 8, np.uint8)  # a symbol renormalises at most 2 bytes out
+        out = np.empty(2 * self._k + 8, np.uint8)  # a symbol renormalises at most 2 bytes out; only [p:] is read
         p = _compile().encode_all(self._start, self._freq, self._k, out)
         return out[p:].tobytes()
 

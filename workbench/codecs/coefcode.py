@@ -413,7 +413,7 @@ def encode_grids(grids: list[np.ndarray], kinds: list[int], split: int | None = 
             raise ValueError(f"coefficient grid must be 3-D with at least one component, got shape {q.shape}")
     _check_kinds(qs, kinds)
     models = _Models(kinds, split)
-    w = Writer(INT_CODER if int_coder is None else int_coder)
+    w = Writer(INT_CODER if int_coder is None else int_coder, sum(q.size for q in qs))
     _traverse([_Grid(q.shape, kind, models, q) for q, kind in zip(qs, kinds)], models, _Encoding(w))
     return w.finish()
 

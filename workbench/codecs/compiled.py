@@ -206,7 +206,9 @@ def encode_all(start, freq, k, out):
             p -= 1
             out[p] = np.uint8(x & np.uint64(0xFF))
             x >>= np.uint64(8)
-        x = ((x // f) << np.uint64(16)) + (x % f) + np.uint64(start[i])
+        # x < 2**31 and f < 2**16 here: a 32-bit division serves
+        q = np.uint32(x) // np.uint32(f)
+        x = (np.uint64(q) << np.uint64(16)) + (x - np.uint64(q) * f) + np.uint64(start[i])
     for _ in range(4):
         p -= 1
         out[p] = np.uint8(x & np.uint64(0xFF))

@@ -218,7 +218,7 @@ def encode_latents(values: np.ndarray, table: np.ndarray, tables: np.ndarray, in
         check_magnitudes(values, "latent")
     from .coefcode import INT_CODER
 
-    models, w = _ScaleModels(tables), Writer(INT_CODER if int_coder is None else int_coder)
+    models, w = _ScaleModels(tables), Writer(INT_CODER if int_coder is None else int_coder, values.size)
     # int32 rows, as the decoder holds them: half the memory to copy and scan
     base, rows = _base_context(table), np.ascontiguousarray(values.transpose(1, 0, 2), dtype=np.int32)
     for r in range(rows.shape[0]):

@@ -54,9 +54,10 @@ class Writer:
     adaptive tokens go through :mod:`workbench.codecs.ans` (reading the models' integer
     counts); otherwise through constriction's range coder (older streams, fixed tables)."""
 
-    def __init__(self, int_coder: bool = False):
+    def __init__(self, int_coder: bool = False, reserve: int = 0):
+        """``reserve``: the tokens expected (with ``int_coder``, allocated once)."""
         self.int_coder = int_coder
-        self.enc = ans.Encoder() if int_coder else constriction.stream.queue.RangeEncoder()
+        self.enc = ans.Encoder(reserve) if int_coder else constriction.stream.queue.RangeEncoder()
         self.raw: list[np.ndarray] = []
 
     def put(self, models, ctx: np.ndarray, values: np.ndarray, n_signed: int | None = None) -> None:
