@@ -215,6 +215,24 @@ def encode_all(start, freq, k, out):
         x >>= np.uint64(8)
     return p
 
+@nb.njit(cache=True, nogil=True, inline="always")
+def _decode_one(x, p, data, cdf, c, width):
+    """One rANS decoding step under cumulative row ``cdf[c]``: (symbol, state, position).
+    Where the bytes run out (only in a stream no encoder wrote) the state is set to its
+    lower bound."""
+    slot = np.int64(x & np.uint64(0xFFFF))
+    s = 0
+    while s < width - 1 and cdf[c, s + 1] <= slot:
+        s += 1
+    x = np.uint64(cdf[c, s + 1] - cdf[c, s]) * (x >> np.uint64(16)) + np.uint64(slot - cdf[c, s])
+    while x < np.uint64(_L) and p < data.size:
+        x = (x << np.uint64(8)) | np.uint64(data[p])
+        p += 1
+    if x < np.uint64(_L):
+        x = np.uint64(_L)
+    return s, x, p
+
+
 @_jit
 def decode(st, data, counts, ctx, sym, inc, limit):
     """Decode ``sym.size`` symbols under rows ``counts[ctx[i]]`` (st: state, position),
@@ -227,21 +245,11 @@ def decode(st, data, counts, ctx, sym, inc, limit):
     if not ok:
         return -1
     x, p = st[0], np.int64(st[1])
-    size = data.size
     lo, hi = rows, -1
     for i in range(sym.size):
         c = ctx[i]
-        slot = np.int64(x & np.uint64(0xFFFF))
-        s = 0
-        while s < width - 1 and cdf[c, s + 1] <= slot:
-            s += 1
+        s, x, p = _decode_one(x, p, data, cdf, c, width)
         sym[i] = s
-        x = np.uint64(cdf[c, s + 1] - cdf[c, s]) * (x >> np.uint64(16)) + np.uint64(slot - cdf[c, s])
-        while x < np.uint64(_L) and p < size:
-            x = (x << np.uint64(8)) | np.uint64(data[p])
-            p += 1
-        if x < np.uint64(_L):  # past the end: only a stream no encoder wrote gets here
-            x = np.uint64(_L)
         if inc > 0:
             counts[c, s] += inc
             lo, hi = min(lo, c), max(hi, c)
@@ -266,23 +274,13 @@ def get_tokens(st, data, counts, tail, split, ctx, n_signed, raw, pos, inc, limi
         return -1
     hw = head.shape[1] - 1
     x, p = st[0], np.int64(st[1])
-    size = data.size
     n_big = 0
     n_signs = 0
     lo, hi = rows, -1
     for i in range(m):
         c = ctx[i]
-        slot = np.int64(x & np.uint64(0xFFFF))
-        s = 0
-        while s < hw - 1 and head[c, s + 1] <= slot:
-            s += 1
+        s, x, p = _decode_one(x, p, data, head, c, hw)
         out[i] = s
-        x = np.uint64(head[c, s + 1] - head[c, s]) * (x >> np.uint64(16)) + np.uint64(slot - head[c, s])
-        while x < np.uint64(_L) and p < size:
-            x = (x << np.uint64(8)) | np.uint64(data[p])
-            p += 1
-        if x < np.uint64(_L):  # past the end: only a stream no encoder wrote gets here
-            x = np.uint64(_L)
         counts[c, s] += inc
         lo, hi = min(lo, c), max(hi, c)
         if split >= 0 and s == split:
@@ -301,17 +299,8 @@ def get_tokens(st, data, counts, tail, split, ctx, n_signed, raw, pos, inc, limi
         for i in range(m):
             if out[i] == split:
                 c = ctx[i]
-                slot = np.int64(x & np.uint64(0xFFFF))
-                s = 0
-                while s < tw - 1 and tails[c, s + 1] <= slot:
-                    s += 1
+                s, x, p = _decode_one(x, p, data, tails, c, tw)
                 out[i] += s
-                x = np.uint64(tails[c, s + 1] - tails[c, s]) * (x >> np.uint64(16)) + np.uint64(slot - tails[c, s])
-                while x < np.uint64(_L) and p < size:
-                    x = (x << np.uint64(8)) | np.uint64(data[p])
-                    p += 1
-                if x < np.uint64(_L):
-                    x = np.uint64(_L)
                 tail[c, s] += inc
                 lo, hi = min(lo, c), max(hi, c)
         halve(tail, lo, hi, limit)
