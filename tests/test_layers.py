@@ -110,7 +110,7 @@ LAYERS = [  # lowest first; the same table as DEVELOPERS.md's architecture scree
      "codecs.symbols", "codecs.ans", "codecs.compiled", "codecs.conv_model", "codecs.hyperprior"},
     {"quality"},
     {"pipeline", "ratecontrol", "blockchoice", "preview", "sheet", "sheetpdf", "archive", "training", "session",
-     "jobs", "demo", "models.make_default"},
+     "jobs", "demo", "models.make_default", "models.dead_leaves"},
     {"cli", "cliargs", "cli_extra", "cli_archive", "api", "__main__", "gui"},
 ]
 # File formats that read a codec part's data type: the basis file holds a klt_basis.Basis, the model

@@ -171,7 +171,7 @@ class Analysis:
     prior: tuple | None = None  # their integer (mean16, log8), the same at every step
     source: list | None = None  # the planes coded (for a residual layer)
     _tables: tuple | None = None  # (step index, the prior's table, offset) of the last step asked for
-    _residual: tuple | None = None  # ((step index, kept), base planes, residual's klt analysis)
+    _residual: tuple | None = None  # ((step index, kept), base planes, residual's klt analysis, latent stream future)
     bf16: bool = False  # GDN paths in bfloat16; the payload says so for decoders that can follow
 
     def tables_at(self, j: int, kept: int):
@@ -234,6 +234,18 @@ def _levels(a: Analysis, kept: int, j: int, s: float) -> np.ndarray:
     if off is not None:
         q += off
     return q
+
+
+_CODER_THREAD = []
+
+
+def _on_coder_thread(fn, *args):
+    """A future of ``fn(*args)`` run on the module's one coder thread."""
+    if not _CODER_THREAD:
+        from concurrent.futures import ThreadPoolExecutor
+
+        _CODER_THREAD.append(ThreadPoolExecutor(1, thread_name_prefix="latent-coder"))
+    return _CODER_THREAD[0].submit(fn, *args)
 
 
 def _step_index(step: float) -> int:
@@ -319,22 +331,32 @@ class ConvCodec(CodecBase):
             # residual's analysis are done once.
             if a._residual is None or a._residual[0] != (j, kept):
                 base = c.planes
+                # The knee's latent stream is coded on a second thread while the residual is
+                # worked out: the coders run on one core, and the residual's numpy work
+                # mostly on one too (started before the synthesis, whose convolutions use both
+                # cores, it gained a third as much).
+                latents = _on_coder_thread(self._serialise_latents, Coded(8.0 * s, j, c.q, kept, a))
                 rest = [src.astype(np.float64) - b for src, b in zip(a.source, base)]
-                a._residual = ((j, kept), base, klt.CODEC.analyse(rest, _residual_settings(), klt_basis.dct_basis(8)))
-            _, base, ra = a._residual
+                a._residual = ((j, kept), base, klt.CODEC.analyse(rest, _residual_settings(), klt_basis.dct_basis(8)),
+                               latents)
+            _, base, ra, _ = a._residual
             r = klt.CODEC.quantise(ra, step=residual_step(step), count=None, deblock=False)
             c.residual, c.step = r, float(step)
             c._planes = [b + p for b, p in zip(base, r.planes)]
         return c
 
     def serialise(self, c: Coded) -> bytes:
-        latents = self._serialise_latents(c)
         if c.residual is None:
-            return latents
+            return self._serialise_latents(c)
+        residual = klt.CODEC.serialise(c.residual)  # while the coder thread finishes the latents
+        knee = c.analysis._residual
+        if knee is not None and knee[0] == (c.step_index, c.kept):
+            latents = knee[3].result()  # every step below the knee shares its latents
+        else:
+            latents = self._serialise_latents(c)
         head = bytearray(latents[:_HEAD.size])
         head[-1] |= RESIDUAL
-        return bytes(head) + _SIDE.pack(len(latents) - _HEAD.size) + latents[_HEAD.size:] \
-            + klt.CODEC.serialise(c.residual)
+        return bytes(head) + _SIDE.pack(len(latents) - _HEAD.size) + latents[_HEAD.size:] + residual
 
     def _serialise_latents(self, c: Coded) -> bytes:
         # The model's own entropy model, or the adaptive context coder where it does better

@@ -41,7 +41,9 @@ OPEN_IMAGES = ["camera", "hubble_deep_field", "immunohistochemistry", "retina", 
                "colorwheel", "moon", "page", "text", "coins", "clock", "horse", "logo", "cell", "microaneurysms"]
 
 
-def training_images():
+def training_images(dead_leaves: int = 0):
+    """The training images; ``dead_leaves`` synthetic dead-leaves images (coloured from the
+    photographs' own pixels) are added at the end."""
     from skimage import data
 
     from workbench.formats.imagefiles import SourceImage
@@ -65,6 +67,14 @@ def training_images():
     for i in range(6):
         out.append(SourceImage(f"loom{i}", make_samples.fabric(rng, defect=i == 3)))
         out.append(SourceImage(f"drone{i}", make_samples.aerial(rng)))
+    if dead_leaves:
+        from .dead_leaves import dead_leaves as leaves
+
+        photos = [i.pixels for i in out if i.pixels.ndim == 3 and not i.name.startswith(("loom", "drone"))]
+        palette = np.concatenate([p.reshape(-1, 3)[::7] for p in photos])
+        lrng = np.random.default_rng(777)
+        for i in range(dead_leaves):
+            out.append(SourceImage(f"leaves{i}", leaves(lrng, 384, palette, rmin=float(lrng.uniform(2, 8)))))
     return out
 
 
@@ -109,8 +119,10 @@ def main(argv=None):
     ap.add_argument("--resume", action="store_true", help="continue the checkpoint at --output")
     ap.add_argument("--no-augment", dest="augment", action="store_false",
                     help="train on the crops' own colours only (default: random hue and saturation)")
+    ap.add_argument("--dead-leaves", type=int, default=0, metavar="N",
+                    help="add N synthetic dead-leaves images (384 px) to the training data")
     a = ap.parse_args(argv)
-    images = training_images()
+    images = training_images(a.dead_leaves)
     print("training on", len(images), "images:", " ".join(i.name for i in images), flush=True)
     start = None if a.start_from == "none" else a.start_from
     cfg = TrainConfig(minutes=a.minutes, lam=a.lam, lr=a.lr, step_range=tuple(a.step_range), seed=2026,
