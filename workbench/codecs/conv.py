@@ -171,16 +171,16 @@ class Analysis:
     prior: tuple | None = None  # their integer (mean16, log8), the same at every step
     source: list | None = None  # the planes coded (for a residual layer)
     _tables: tuple | None = None  # (step index, the prior's table, offset) of the last step asked for
-    _residual: tuple | None = None  # ((step index, kept), base planes, residual's klt analysis, latent stream future)
+    _residual: tuple | None = None  # ((step index, kept), base planes, residual's klt analysis, latent streams)
     bf16: bool = False  # GDN paths in bfloat16; the payload says so for decoders that can follow
 
     def tables_at(self, j: int, kept: int):
         """The hyperprior's (table, whole-step offset) of the first ``kept`` channels at step
         index ``j``, computed once per step (quantise and serialise both need them)."""
-        if self._tables is None or self._tables[0] != j:
-            self._tables = (j,) + hyperprior.table_and_offset(self.prior[0], self.prior[1], j, TABLE_MIN, TABLE_MAX)
-        _, table, offset = self._tables
-        return table[:kept], offset[:kept]
+        t = self._tables  # read once: the coder thread asks too
+        if t is None or t[0] != j:
+            t = self._tables = (j,) + hyperprior.table_and_offset(self.prior[0], self.prior[1], j, TABLE_MIN, TABLE_MAX)
+        return t[1][:kept], t[2][:kept]
 
 
 @dataclass
@@ -331,11 +331,12 @@ class ConvCodec(CodecBase):
             # residual's analysis are done once.
             if a._residual is None or a._residual[0] != (j, kept):
                 base = c.planes
-                # The knee's latent stream is coded on a second thread while the residual is
-                # worked out: the coders run on one core, and the residual's numpy work
-                # mostly on one too (started before the synthesis, whose convolutions use both
-                # cores, it gained a third as much).
-                latents = _on_coder_thread(self._serialise_latents, Coded(8.0 * s, j, c.q, kept, a))
+                # The model's own latent stream at the knee is coded on a second thread while
+                # the residual is worked out (the coders and most of the residual's numpy
+                # work run on one core each); the context coder's follows on this thread
+                # in serialise. Started before the synthesis, whose convolutions use both
+                # cores, it gained a third as much.
+                latents = _on_coder_thread(_model_streams, Coded(8.0 * s, j, c.q, kept, a))
                 rest = [src.astype(np.float64) - b for src, b in zip(a.source, base)]
                 a._residual = ((j, kept), base, klt.CODEC.analyse(rest, _residual_settings(), klt_basis.dct_basis(8)),
                                latents)
@@ -348,20 +349,24 @@ class ConvCodec(CodecBase):
     def serialise(self, c: Coded) -> bytes:
         if c.residual is None:
             return self._serialise_latents(c)
-        residual = klt.CODEC.serialise(c.residual)  # while the coder thread finishes the latents
+        residual = klt.CODEC.serialise(c.residual)  # while the coder thread codes the latents
         knee = c.analysis._residual
         if knee is not None and knee[0] == (c.step_index, c.kept):
-            latents = knee[3].result()  # every step below the knee shares its latents
+            # every step below the knee shares its latents
+            if not isinstance(knee[3], bytes):
+                context = _context_stream(c)
+                c.analysis._residual = knee = knee[:3] + (self._serialise_latents(c, {**context, **knee[3].result()}),)
+            latents = knee[3]
         else:
             latents = self._serialise_latents(c)
         head = bytearray(latents[:_HEAD.size])
         head[-1] |= RESIDUAL
         return bytes(head) + _SIDE.pack(len(latents) - _HEAD.size) + latents[_HEAD.size:] + residual
 
-    def _serialise_latents(self, c: Coded) -> bytes:
+    def _serialise_latents(self, c: Coded, streams: dict | None = None) -> bytes:
         # The model's own entropy model, or the adaptive context coder where it does better
         # (a model early in its training, or images unlike its training set).
-        coder, body = min(_latent_streams(c).values(), key=lambda cb: len(cb[1]))
+        coder, body = min((streams or _latent_streams(c)).values(), key=lambda cb: len(cb[1]))
         if coefcode.INT_CODER and coder in (ADAPTIVE, ADAPTIVE_ONE_STAGE, HYPER_ADAPTIVE):
             coder |= INT_TOKENS
         return _HEAD.pack(c.step_index, c.kept, coder | (BF16 if c.analysis.bf16 else 0)) + body
@@ -439,11 +444,19 @@ class ConvCodec(CodecBase):
 def _latent_streams(c: Coded) -> dict:
     """``{kind: (coder byte, stream)}`` of the latent coders this model tries: ``context``
     (the adaptive context coder), and ``hyperprior`` or ``tables`` (the model's own)."""
-    a = c.analysis
+    return {**_context_stream(c), **_model_streams(c)}  # in this order: the context coder wins a tie
+
+
+def _context_stream(c: Coded) -> dict:
     # The context coder holds grids component-major: the (h, w, C) view it is handed is
     # turned back into c.q's own layout without a copy (a transposing copy cost 0.2 s at 4 MP).
-    out = {"context": (ADAPTIVE if TOKEN_SPLIT is not None else ADAPTIVE_ONE_STAGE,
-                       coefcode.encode_grids([c.q.transpose(1, 2, 0)], [3], TOKEN_SPLIT))}
+    return {"context": (ADAPTIVE if TOKEN_SPLIT is not None else ADAPTIVE_ONE_STAGE,
+                        coefcode.encode_grids([c.q.transpose(1, 2, 0)], [3], TOKEN_SPLIT))}
+
+
+def _model_streams(c: Coded) -> dict:
+    a = c.analysis
+    out = {}
     if a.model.uses_hyper:
         tabs = a.model.data.tables
         side = symbols.encode_fixed(list(a.side), [tabs[t] for t in a.model.side_tables])
