@@ -151,6 +151,24 @@ def test_adapted_latent_coding_round_trips_every_magnitude(int_coder):
     assert np.array_equal(hyperprior.decode_latents(data, table, tabs, int_coder), values)
 
 
+def test_latents_coded_about_their_offsets_equal_the_residuals_coded():
+    rng = np.random.default_rng(9)
+    tabs = modelfile.scale_tables()
+    values = np.round(rng.laplace(0, 3, (4, 6, 8))).astype(np.int64)
+    offset = rng.integers(-50, 50, values.shape)
+    table = rng.integers(0, len(tabs), values.shape)
+    assert hyperprior.encode_latents(values, table + 7, tabs, offset=offset, table_min=7) == \
+        hyperprior.encode_latents(values - offset, table, tabs)
+
+
+def test_a_latent_beyond_the_coders_range_is_refused_before_it_wraps():
+    tabs = modelfile.scale_tables()
+    values = np.zeros((2, 3, 4), np.int64)
+    values[1, 2, 3] = 2**32 + 5  # 5 once wrapped to 32 bits
+    with pytest.raises(ValueError, match="latent magnitude 4294967301"):
+        hyperprior.encode_latents(values, np.zeros(values.shape, np.int64), tabs)
+
+
 def test_adapted_coding_recovers_from_miscalibrated_scales():
     # Coding a source under a wrong model costs its cross-entropy, more than its entropy
     # (Cover & Thomas, Elements of Information Theory, 2nd ed., sec. 5.4): latents of

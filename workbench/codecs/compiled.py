@@ -433,3 +433,34 @@ def deblock(planes, block, limit, jump, flat):
             for x in range(w):
                 planes[i, y - 1, x], planes[i, y, x] = _edge(planes[i, y - 2, x], planes[i, y - 1, x],
                                                             planes[i, y, x], planes[i, y + 1, x], limit, jump, flat)
+
+
+# ------------------------------------------------------------------ hyperprior latent contexts
+
+@_jit
+def latent_contexts(values, offset, table, table_min, bucket, activity, rows, ctx):
+    """For hyperprior.encode_latents: ``rows[y, c, x] = values - offset`` and every latent's
+    context, its scale bucket ``(table - table_min) // bucket * activity`` plus, below row 0,
+    the row above's activity ``min((TL + 2T + TR + 1) // 2, activity - 1)`` of magnitudes in
+    the same channel (edges replicated), as hyperprior._row_context makes it for the decoder.
+    All (C, h, w) in, (h, C, w) out. Returns the largest magnitude (rows hold it wrapped to
+    32 bits; the caller checks it first)."""
+    n_c, h, w = values.shape
+    big = 0
+    for c in range(n_c):
+        for y in range(h):
+            for x in range(w):
+                v = np.int64(values[c, y, x]) - np.int64(offset[c, y, x])
+                m = v if v >= 0 else -v
+                if m > big:
+                    big = m
+                rows[y, c, x] = v
+                ctx[y, c, x] = (np.int64(table[c, y, x]) - table_min) // bucket * activity
+    for y in range(1, h):
+        for c in range(n_c):
+            for x in range(w):
+                t = abs(np.int64(rows[y - 1, c, x]))
+                tl = abs(np.int64(rows[y - 1, c, x - 1])) if x > 0 else t
+                tr = abs(np.int64(rows[y - 1, c, x + 1])) if x < w - 1 else t
+                ctx[y, c, x] += min((tl + 2 * t + tr + 1) // 2, activity - 1)
+    return big

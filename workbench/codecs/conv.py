@@ -462,7 +462,7 @@ def _model_streams(c: Coded) -> dict:
         side = symbols.encode_fixed(list(a.side), [tabs[t] for t in a.model.side_tables])
         table, offset = a.tables_at(c.step_index, c.kept)
         out["hyperprior"] = (HYPER_ADAPTIVE, _SIDE.pack(len(side)) + side
-                             + hyperprior.encode_latents(c.q - offset, table - TABLE_MIN, tabs))
+                             + hyperprior.encode_latents(c.q, table, tabs, offset=offset, table_min=TABLE_MIN))
     elif not a.model.hyper:
         counts = [a.model.data.counts(ch, c.step_index) for ch in range(c.kept)]
         out["tables"] = (LEARNED, symbols.encode_fixed(list(c.q), counts))
