@@ -59,3 +59,19 @@ def test_too_small_a_size_is_refused(size):
 def test_a_palette_of_the_wrong_shape_is_refused():
     with pytest.raises(ValueError, match=r"palette.*\(4,\)"):
         dead_leaves(np.random.default_rng(0), 64, np.zeros(4))
+
+
+def test_the_shipped_models_training_set_leaves_the_benchmark_photographs_out():
+    # The benchmarks test on scikit-image's astronaut, coffee, chelsea and rocket (and the
+    # stereo motorcycle pair): none of them, nor a crop of them, may be trained on.
+    from skimage import data
+
+    from workbench.models.make_default import HELD_OUT, training_images
+
+    images = training_images(dead_leaves=2)
+    names = [i.name for i in images]
+    assert not HELD_OUT & set(names) and not any("motorcycle" in n for n in names)
+    held = [getattr(data, n)() for n in ("astronaut", "coffee", "chelsea", "rocket")]
+    assert not any(i.pixels.shape == h.shape and np.array_equal(i.pixels, h) for i in images for h in held)
+    leaves = [i for i in images if i.name.startswith("leaves")]
+    assert [i.pixels.shape for i in leaves] == [(384, 384, 3)] * 2

@@ -4,7 +4,9 @@ Training data: scikit-image's bundled images except the four colour photographs 
 benchmarks test on (astronaut, coffee, chelsea, rocket; the stereo motorcycle pair is not
 used either), the open photographs bundled with scikit-learn (china, flower; CC BY 2.0) and
 PyWavelets (aero, ascent) when the ``train`` extra is installed, plus synthetic images made
-by ``sample_images/make_samples.py`` with a seed of their own. Crops get a random hue and
+by ``sample_images/make_samples.py`` with a seed of their own and, with ``--dead-leaves N``,
+N seeded dead-leaves images coloured from those photographs' pixels
+(:mod:`workbench.models.dead_leaves`). Crops get a random hue and
 saturation (``--no-augment`` turns that off): the data hold few colour photographs. Writes
 ``workbench/models/default.wmodel``: 192 latents (a complete transform of an 8x8x3 block,
 so fine steps reach high PSNR) and a mean-scale hyperprior. ``--resume`` continues a run
