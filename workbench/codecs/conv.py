@@ -58,7 +58,7 @@ from .base import CodecBase
 
 MODELS = Path(__file__).resolve().parents[1] / "models"
 DEFAULT_MODEL = MODELS / "default.wmodel"
-EARLIER_MODELS = (MODELS / "conv-v1.wmodel", MODELS / "conv-v2.wmodel")  # shipped before; their bundles decode
+EARLIER_MODELS = (MODELS / "conv-v1.wmodel", MODELS / "conv-v2.wmodel", MODELS / "conv-v3.wmodel")  # shipped before; their bundles decode
 _HEAD = struct.Struct("<bHB")
 _SIDE = struct.Struct("<I")
 LEARNED, ADAPTIVE, ADAPTIVE_ONE_STAGE, HYPER, HYPER_ADAPTIVE = 0, 2, 1, 3, 4
