@@ -236,16 +236,12 @@ def _levels(a: Analysis, kept: int, j: int, s: float) -> np.ndarray:
     return q
 
 
-_CODER_THREAD = []
+@lru_cache(maxsize=1)
+def _coder_thread():
+    """The module's one latent-coder thread, made on first use."""
+    from concurrent.futures import ThreadPoolExecutor
 
-
-def _on_coder_thread(fn, *args):
-    """A future of ``fn(*args)`` run on the module's one coder thread."""
-    if not _CODER_THREAD:
-        from concurrent.futures import ThreadPoolExecutor
-
-        _CODER_THREAD.append(ThreadPoolExecutor(1, thread_name_prefix="latent-coder"))
-    return _CODER_THREAD[0].submit(fn, *args)
+    return ThreadPoolExecutor(1, thread_name_prefix="latent-coder")
 
 
 def _step_index(step: float) -> int:
@@ -333,10 +329,10 @@ class ConvCodec(CodecBase):
                 base = c.planes
                 # The model's own latent stream at the knee is coded on a second thread while
                 # the residual is worked out (the coders and most of the residual's numpy
-                # work run on one core each); the context coder's follows on this thread
-                # in serialise. Started before the synthesis, whose convolutions use both
+                # work run on one core each); the context coder's follows on the calling
+                # thread in serialise. Started before the synthesis, whose convolutions use both
                 # cores, it gained a third as much.
-                latents = _on_coder_thread(_model_streams, Coded(8.0 * s, j, c.q, kept, a))
+                latents = _coder_thread().submit(_model_streams, Coded(8.0 * s, j, c.q, kept, a))
                 rest = [src.astype(np.float64) - b for src, b in zip(a.source, base)]
                 a._residual = ((j, kept), base, klt.CODEC.analyse(rest, _residual_settings(), klt_basis.dct_basis(8)),
                                latents)
