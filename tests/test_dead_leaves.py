@@ -75,3 +75,13 @@ def test_the_shipped_models_training_set_leaves_the_benchmark_photographs_out():
     assert not any(i.pixels.shape == h.shape and np.array_equal(i.pixels, h) for i in images for h in held)
     leaves = [i for i in images if i.name.startswith("leaves")]
     assert [i.pixels.shape for i in leaves] == [(384, 384, 3)] * 2
+
+
+def test_a_negative_count_of_dead_leaves_images_is_refused_in_one_line(capsys):
+    from workbench.models import make_default
+
+    with pytest.raises(SystemExit) as exc:
+        make_default.main(["--dead-leaves", "-3", "--minutes", "0"])
+    assert exc.value.code == 2
+    err = capsys.readouterr().err.strip().splitlines()[-1]
+    assert "--dead-leaves must be 0 or more, got -3" in err

@@ -132,6 +132,8 @@ def main(argv=None):
     ap.add_argument("--dead-leaves", type=int, default=0, metavar="N",
                     help="add N synthetic dead-leaves images (384 px) to the training data")
     a = ap.parse_args(argv)
+    if a.dead_leaves < 0:
+        ap.error(f"--dead-leaves must be 0 or more, got {a.dead_leaves}")
     images = training_images(a.dead_leaves)
     print("training on", len(images), "images:", " ".join(i.name for i in images), flush=True)
     start = None if a.start_from == "none" else a.start_from
